@@ -1,0 +1,24 @@
+"""xrec: prototype cross-modal recommenders and prove offline which blend wins."""
+
+from xrec.data import Catalog, CatalogSchema, Dataset, Interactions
+from xrec.errors import ConfigError, DataError, FingerprintMismatch, XrecError
+from xrec.fold import Fold
+from xrec.sources import LowRankSource, Source, make_source, source_kinds
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "Catalog",
+    "CatalogSchema",
+    "ConfigError",
+    "DataError",
+    "Dataset",
+    "FingerprintMismatch",
+    "Fold",
+    "Interactions",
+    "LowRankSource",
+    "Source",
+    "XrecError",
+    "make_source",
+    "source_kinds",
+]

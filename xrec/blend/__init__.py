@@ -1,0 +1,1 @@
+"""Blending sources: normalizers, weights, rank fusion."""

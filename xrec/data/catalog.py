@@ -1,0 +1,191 @@
+"""The item catalog: one row per item, with declared columns for each modality."""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from xrec.data._report import raise_if_any
+from xrec.errors import DataError
+
+ITEM = "item"
+
+
+@dataclass(frozen=True)
+class CatalogSchema:
+    """Which catalog columns carry which modality.
+
+    Parameters
+    ----------
+    categorical
+        Columns with one label per item (e.g. product type).
+    multilabel
+        Columns with a set of labels per item (e.g. genres); stored as tuples of str.
+    numeric
+        Columns with one number per item (e.g. price, year).
+    text
+        Columns holding free text (title, description).
+    image
+        Column holding an image path, relative to ``image_root`` when relative.
+    """
+
+    categorical: tuple[str, ...] = ()
+    multilabel: tuple[str, ...] = ()
+    numeric: tuple[str, ...] = ()
+    text: tuple[str, ...] = ()
+    image: str | None = None
+
+    @property
+    def attribute_columns(self) -> tuple[str, ...]:
+        return self.categorical + self.multilabel + self.numeric
+
+    @property
+    def columns(self) -> tuple[str, ...]:
+        return self.attribute_columns + self.text + ((self.image,) if self.image else ())
+
+    def to_dict(self) -> dict:
+        out: dict = {
+            "categorical": list(self.categorical),
+            "multilabel": list(self.multilabel),
+            "numeric": list(self.numeric),
+            "text": list(self.text),
+        }
+        if self.image:
+            out["image"] = self.image
+        return out
+
+
+def _as_labels(value, sep: str) -> tuple[str, ...]:
+    if isinstance(value, (list, tuple, set, np.ndarray)):
+        return tuple(sorted(str(v) for v in value))
+    if value is None or (isinstance(value, float) and np.isnan(value)):
+        return ()
+    text = str(value).strip()
+    if not text:
+        return ()
+    return tuple(sorted(part.strip() for part in text.split(sep) if part.strip()))
+
+
+@dataclass(frozen=True)
+class Catalog:
+    """Items and their content. Row order defines the item index used everywhere inside xrec.
+
+    Build with :meth:`from_frame`, which validates the input.
+    """
+
+    items: pd.DataFrame
+    schema: CatalogSchema
+    image_root: Path | None = None
+    _positions: dict = field(default=None, repr=False, compare=False)  # type: ignore[assignment]
+
+    @classmethod
+    def from_frame(
+        cls,
+        frame: pd.DataFrame,
+        *,
+        item_col: str = "item",
+        categorical: Sequence[str] = (),
+        multilabel: Sequence[str] = (),
+        numeric: Sequence[str] = (),
+        text: Sequence[str] = (),
+        image: str | None = None,
+        image_root: str | Path | None = None,
+        multilabel_sep: str = "|",
+        check_images: bool = True,
+    ) -> Catalog:
+        """Validate ``frame`` and build a catalog.
+
+        Raises
+        ------
+        DataError
+            On an empty frame, missing or unknown columns, duplicate or missing item ids,
+            NaN in numeric columns, non-numeric numeric columns, or missing image files.
+        """
+        if not isinstance(frame, pd.DataFrame):
+            raise DataError(f"catalog must be a pandas DataFrame, got {type(frame).__name__}")
+        if frame.empty:
+            raise DataError("catalog is empty: it needs at least one item")
+        schema = CatalogSchema(tuple(categorical), tuple(multilabel), tuple(numeric), tuple(text), image)
+        declared = (item_col, *schema.columns)
+        dupes = sorted({c for c in declared if declared.count(c) > 1})
+        if dupes:
+            raise DataError(f"catalog columns declared twice: {dupes}")
+        missing = [c for c in declared if c not in frame.columns]
+        if missing:
+            raise DataError(f"catalog lacks declared columns {missing}; it has {list(frame.columns)}")
+        items = frame.reset_index(drop=True).copy()
+        raise_if_any(items, items[item_col].isna(), "have no item id", [item_col], "catalog")
+        items[item_col] = items[item_col].astype(str)
+        raise_if_any(items, items[item_col].duplicated(keep=False), "share an item id", [item_col], "catalog")
+        for col in schema.numeric:
+            values = pd.to_numeric(items[col], errors="coerce")
+            raise_if_any(items, values.isna() & items[col].notna(), f"have a non-numeric {col!r}", [item_col, col], "catalog")
+            raise_if_any(items, values.isna(), f"have NaN in numeric column {col!r}", [item_col, col], "catalog")
+            items[col] = values.astype("float64")
+        for col in schema.categorical:
+            raise_if_any(items, items[col].isna(), f"have no value in categorical column {col!r}", [item_col, col], "catalog")
+            items[col] = items[col].astype(str)
+        for col in schema.multilabel:
+            items[col] = [_as_labels(v, multilabel_sep) for v in items[col]]
+        for col in schema.text:
+            raise_if_any(
+                items,
+                ~items[col].map(lambda v: isinstance(v, str)),
+                f"have a non-string text in {col!r}",
+                [item_col, col],
+                "catalog",
+            )
+        root = Path(image_root) if image_root is not None else None
+        if image and check_images:
+            paths = [(root / p if root is not None and not Path(p).is_absolute() else Path(p)) for p in items[image].astype(str)]
+            raise_if_any(items, [not p.is_file() for p in paths], f"point to a missing image file in {image!r}", [item_col, image], "catalog")
+        items = items.rename(columns={item_col: ITEM})
+        keep = [ITEM, *schema.columns] + [c for c in items.columns if c not in (ITEM, *schema.columns)]
+        return cls(items=items[keep], schema=schema, image_root=root)
+
+    @classmethod
+    def from_ids(cls, ids: Iterable) -> Catalog:
+        """A catalog with ids only (no content), e.g. for a purely collaborative study."""
+        return cls.from_frame(pd.DataFrame({ITEM: list(ids)}))
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "_positions", {item: i for i, item in enumerate(self.items[ITEM])})
+
+    @property
+    def item_ids(self) -> np.ndarray:
+        return self.items[ITEM].to_numpy()
+
+    @property
+    def n_items(self) -> int:
+        return len(self.items)
+
+    def __len__(self) -> int:
+        return self.n_items
+
+    def index_of(self, ids: Iterable) -> np.ndarray:
+        """Positions of ``ids``; raises :class:`DataError` naming unknown ids."""
+        ids = [str(i) for i in ids]
+        unknown = [i for i in ids if i not in self._positions]
+        if unknown:
+            raise DataError(f"{len(unknown)} unknown item ids, first: {unknown[:5]}")
+        return np.fromiter((self._positions[i] for i in ids), dtype=np.int64, count=len(ids))
+
+    def image_path(self, position: int) -> Path:
+        if not self.schema.image:
+            raise DataError("catalog declares no image column")
+        p = Path(str(self.items[self.schema.image].iat[position]))
+        return self.image_root / p if self.image_root is not None and not p.is_absolute() else p
+
+    def fingerprint(self) -> str:
+        """Hash of item ids and declared content columns (order-sensitive)."""
+        h = hashlib.sha256()
+        h.update(repr(self.schema.to_dict()).encode())
+        for col in (ITEM, *self.schema.columns):
+            h.update(col.encode())
+            h.update("\x1f".join(map(str, self.items[col].tolist())).encode())
+        return h.hexdigest()[:16]

@@ -1,0 +1,5 @@
+"""Encoders: images, text and attributes to vectors, with an on-disk cache."""
+
+from xrec.encoders.base import Encoder
+
+__all__ = ["Encoder"]

@@ -1,0 +1,1 @@
+"""Offline evaluation: full-ranking metrics, scorecards, paired comparisons."""

@@ -1,0 +1,1 @@
+"""Notebook widgets and rich display."""

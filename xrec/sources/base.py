@@ -1,0 +1,95 @@
+"""The source interface: anything that scores users × items from one signal."""
+
+from __future__ import annotations
+
+import inspect
+from abc import ABC, abstractmethod
+from typing import Any, ClassVar, Self
+
+import numpy as np
+
+from xrec.errors import ConfigError
+from xrec.fold import Fold
+
+_REGISTRY: dict[str, type[Source]] = {}
+
+
+class Source(ABC):
+    """Scores a block of users against every catalog item.
+
+    Subclasses set ``kind`` (the name used in specs and blend files), store their
+    settings in ``__init__`` under the same names as its parameters, learn in
+    :meth:`fit` (state ends with ``_``) and return float32 blocks from :meth:`score`.
+    """
+
+    kind: ClassVar[str] = ""
+
+    def __init_subclass__(cls, **kwargs: Any) -> None:
+        super().__init_subclass__(**kwargs)
+        if cls.kind:
+            if cls.kind in _REGISTRY and _REGISTRY[cls.kind] is not cls:
+                raise TypeError(f"source kind {cls.kind!r} registered twice")
+            _REGISTRY[cls.kind] = cls
+
+    @abstractmethod
+    def fit(self, fold: Fold) -> Self:
+        """Learn from ``fold.train`` (never from ``fold.heldout``); return ``self``."""
+
+    @abstractmethod
+    def score(self, users: np.ndarray) -> np.ndarray:
+        """Scores of shape ``(len(users), n_items)``, float32; higher is better."""
+
+    @property
+    def is_low_rank(self) -> bool:
+        """True when scores are ``user_factors_[users] @ item_factors_.T``."""
+        return False
+
+    def get_params(self) -> dict[str, Any]:
+        """Settings given to ``__init__`` (what a blend file records)."""
+        sig = inspect.signature(type(self).__init__)
+        return {name: getattr(self, name) for name in sig.parameters if name != "self"}
+
+    def _check_fitted(self) -> None:
+        if not getattr(self, "fitted_", False):
+            raise RuntimeError(f"{type(self).__name__} is not fitted: call fit(fold) first")
+
+    def __repr__(self) -> str:
+        args = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items())
+        return f"{type(self).__name__}({args})"
+
+
+class LowRankSource(Source):
+    """A source whose scores factor into user and item vectors (computed by chunked matmul)."""
+
+    user_factors_: np.ndarray
+    item_factors_: np.ndarray
+
+    @property
+    def is_low_rank(self) -> bool:
+        return True
+
+    def score(self, users: np.ndarray) -> np.ndarray:
+        self._check_fitted()
+        users = np.asarray(users)
+        return np.ascontiguousarray(self.user_factors_[users] @ self.item_factors_.T, dtype=np.float32)
+
+
+def source_kinds() -> list[str]:
+    """Names of every registered source kind."""
+    import xrec.sources  # noqa: F401  (registers the built-in kinds)
+
+    return sorted(_REGISTRY)
+
+
+def make_source(kind: str, **params: Any) -> Source:
+    """Build a source by its kind name; unknown kinds or settings give a :class:`ConfigError`."""
+    import xrec.sources  # noqa: F401
+
+    if kind not in _REGISTRY:
+        raise ConfigError(f"unknown source kind {kind!r}; known: {sorted(_REGISTRY)}")
+    cls = _REGISTRY[kind]
+    allowed = set(inspect.signature(cls.__init__).parameters) - {"self"}
+    unknown = set(params) - allowed
+    if unknown:
+        raise ConfigError(f"source {kind!r} has no setting(s) {sorted(unknown)}; it takes {sorted(allowed)}")
+    return cls(**params)
