@@ -3,5 +3,6 @@
 from xrec.data.catalog import Catalog, CatalogSchema
 from xrec.data.dataset import Dataset
 from xrec.data.interactions import Interactions
+from xrec.data.movielens import load_movielens
 
-__all__ = ["Catalog", "CatalogSchema", "Dataset", "Interactions"]
+__all__ = ["Catalog", "CatalogSchema", "Dataset", "Interactions", "load_movielens"]

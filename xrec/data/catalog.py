@@ -126,6 +126,7 @@ class Catalog:
             values = pd.to_numeric(items[col], errors="coerce")
             raise_if_any(items, values.isna() & items[col].notna(), f"have a non-numeric {col!r}", [item_col, col], "catalog")
             raise_if_any(items, values.isna(), f"have NaN in numeric column {col!r}", [item_col, col], "catalog")
+            raise_if_any(items, np.isinf(values.to_numpy(dtype="float64")), f"have an infinite value in numeric column {col!r}", [item_col, col], "catalog")
             items[col] = values.astype("float64")
         for col in schema.categorical:
             raise_if_any(items, items[col].isna(), f"have no value in categorical column {col!r}", [item_col, col], "catalog")

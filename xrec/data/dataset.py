@@ -27,7 +27,9 @@ class Dataset:
         unknown = ~self.interactions.frame["item"].isin(set(self.catalog.item_ids))
         if unknown.any():
             bad = self.interactions.frame.loc[unknown, "item"].unique()
-            raise DataError(f"{int(unknown.sum())} interactions name items missing from the catalog, first: {list(bad[:5])}")
+            count = int(unknown.sum())
+            what = "interaction names an item" if count == 1 else "interactions name items"
+            raise DataError(f"{count} {what} missing from the catalog, first: {list(bad[:5])}")
 
     def fingerprint(self) -> str:
         """Identifies the data a blend was chosen on: interactions hash + catalog hash."""

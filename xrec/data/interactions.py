@@ -74,6 +74,7 @@ class Interactions:
         times = _to_seconds(raw[time_col])
         raise_if_any(raw, np.isnan(times) & raw[time_col].notna().to_numpy(), f"have a non-numeric timestamp in {time_col!r}", needed, "interactions")
         raise_if_any(raw, np.isnan(times), f"have no timestamp in {time_col!r}", needed, "interactions")
+        raise_if_any(raw, np.isinf(times), f"have an infinite timestamp in {time_col!r}", needed, "interactions")
         if weight_col:
             weights = pd.to_numeric(raw[weight_col], errors="coerce").to_numpy(dtype="float64")
             raise_if_any(raw, ~np.isfinite(weights), f"have a missing or non-numeric weight in {weight_col!r}", needed, "interactions")
@@ -123,7 +124,8 @@ class Interactions:
 def _to_seconds(col: pd.Series) -> np.ndarray:
     """Timestamps as float seconds: numbers pass through, datetimes become epoch seconds."""
     if pd.api.types.is_datetime64_any_dtype(col):
-        values = col.astype("int64").to_numpy(dtype="float64") / 1e9
-        values[col.isna().to_numpy()] = np.nan
-        return values
+        # Subtracting the epoch works whatever the stored unit (pandas 3 defaults to us, not ns)
+        # and whether or not the column carries a time zone; NaT becomes NaN.
+        epoch = pd.Timestamp(0, tz=getattr(col.dt, "tz", None))
+        return ((col - epoch) / pd.Timedelta(1, "s")).to_numpy(dtype="float64", na_value=np.nan)
     return pd.to_numeric(col, errors="coerce").to_numpy(dtype="float64")

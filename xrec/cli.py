@@ -1,0 +1,160 @@
+"""The ``xrec`` command line: run specs, compare them, export and serve blend files, run the demo."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+from typing import Any
+
+from xrec.errors import XrecError
+
+
+def _print_json(payload: Any) -> None:
+    json.dump(payload, sys.stdout, indent=2, sort_keys=False, default=_json_default)
+    sys.stdout.write("\n")
+
+
+def _json_default(value: Any) -> Any:
+    import numpy as np
+
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    if isinstance(value, Path):
+        return str(value)
+    raise TypeError(f"not JSON-serializable: {type(value).__name__}")
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    from xrec.experiment import run_experiment
+    from xrec.report import experiment_payload, format_experiment
+    from xrec.spec import load_spec
+
+    spec = load_spec(args.spec)
+    result = run_experiment(spec, progress=not args.quiet and not args.json)
+    if args.json:
+        _print_json(experiment_payload(result))
+    else:
+        print(format_experiment(result))
+    return 0
+
+
+def _cmd_compare(args: argparse.Namespace) -> int:
+    from xrec.experiment import compare_specs
+    from xrec.report import format_comparison
+    from xrec.spec import load_spec
+
+    comparison = compare_specs(load_spec(args.baseline), load_spec(args.candidate), progress=not args.quiet and not args.json)
+    if args.json:
+        _print_json(comparison.to_dict())
+    else:
+        print(format_comparison(comparison))
+    return 0
+
+
+def _cmd_export(args: argparse.Namespace) -> int:
+    from xrec.experiment import export_spec
+    from xrec.spec import load_spec
+
+    path = export_spec(load_spec(args.spec), args.output, scorer=args.scorer, progress=not args.quiet)
+    print(f"blend file written: {path}")
+    return 0
+
+
+def _cmd_recommend(args: argparse.Namespace) -> int:
+    from xrec.experiment import runtime_for_blend_file
+
+    runtime = runtime_for_blend_file(args.blend_file, data_folder=args.data, progress=not args.quiet and not args.json)
+    frames = {user: runtime.recommend(user, k=args.k) for user in args.user}
+    if args.json:
+        _print_json({user: frame.to_dict(orient="records") for user, frame in frames.items()})
+    else:
+        for user, frame in frames.items():
+            print(f"user {user}")
+            print(frame.to_string(index=False))
+    return 0
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from xrec.demo import run_demo
+
+    summary = run_demo(output=Path(args.output), shop=args.shop, progress=not args.quiet, quick=args.quick)
+    if args.json:
+        _print_json(summary)
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="xrec",
+        description="Prototype cross-modal recommenders: evaluate sources and blends offline, compare them, export the winner.",
+    )
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    def common(p: argparse.ArgumentParser, json_flag: bool = True) -> None:
+        p.add_argument("-q", "--quiet", action="store_true", help="no progress bars")
+        if json_flag:
+            p.add_argument("--json", action="store_true", help="machine-readable JSON on stdout")
+
+    p = sub.add_parser("demo", help="run the whole product on the demo shop and write a report", description=(
+        "Encode the demo shop, fit every source, search blend weights on the validation split, "
+        "evaluate on the test split, compare, and write scorecard JSON, blend file and HTML report."))
+    p.add_argument("-o", "--output", default="xrec-out", help="output folder (default: %(default)s)")
+    p.add_argument("--shop", default=None, help="demo shop folder (default: the one shipped in the repository)")
+    p.add_argument("--quick", action="store_true", help="smaller search, for smoke tests")
+    common(p)
+    p.set_defaults(func=_cmd_demo)
+
+    p = sub.add_parser("run", help="evaluate the sources and blends of a spec", description=(
+        "Evaluate every source and blend of an experiment spec (a TOML file or a built-in name such as "
+        "'movielens') and print a scorecard table with paired comparisons against the baseline."))
+    p.add_argument("spec", help="spec file, or a built-in spec name")
+    common(p)
+    p.set_defaults(func=_cmd_run)
+
+    p = sub.add_parser("compare", help="compare the primary scorers of two specs on the same split", description=(
+        "Evaluate the primary scorer of each spec on the same data and split, and report paired "
+        "differences with bootstrap confidence intervals and randomization p-values."))
+    p.add_argument("baseline", help="baseline spec file or built-in name")
+    p.add_argument("candidate", help="candidate spec file or built-in name")
+    common(p)
+    p.set_defaults(func=_cmd_compare)
+
+    p = sub.add_parser("export", help="write a blend file for a spec's scorer", description=(
+        "Fit, evaluate on the test split and write the blend file (TOML) that a service loads."))
+    p.add_argument("spec", help="spec file or built-in name")
+    p.add_argument("-o", "--output", required=True, help="blend file to write (.toml)")
+    p.add_argument("--scorer", default=None, help="which source or blend to export (default: the spec's primary)")
+    common(p, json_flag=False)
+    p.set_defaults(func=_cmd_export)
+
+    p = sub.add_parser("recommend", help="top-K items for users from a blend file", description=(
+        "Load a blend file, refit its sources on the recorded data and split, and list the top-K items."))
+    p.add_argument("blend_file", help="blend file written by 'xrec export' or 'xrec demo'")
+    p.add_argument("--user", action="append", required=True, help="user id (repeat for several)")
+    p.add_argument("-k", type=int, default=10, help="list length (default: %(default)s)")
+    p.add_argument("--data", default=None, help="data folder, when the blend file's data is not at its recorded place")
+    common(p)
+    p.set_defaults(func=_cmd_recommend)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``xrec`` console script."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.func(args) or 0)
+    except XrecError as exc:
+        print(f"xrec: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("xrec: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,182 @@
+"""Experiment specs: a TOML file naming the data, the split, the sources, the blend and the metrics.
+
+Example (``xrec/specs/movielens.toml`` is a complete one)::
+
+    [data]
+    dataset = "movielens"        # "movielens", "demo_shop" or "files"
+    # folder = "path/to/ml-1m"   # optional: a GroupLens folder / demo shop folder
+
+    [split]
+    rule = "leave_last"          # leave_last | time_cutoff | random | cold_items
+    seed = 0
+
+    [evaluate]
+    ks = [10, 20]
+    metrics = ["hit_rate", "ndcg", "recall", "mrr", "coverage", "popularity"]
+    baseline = "popularity"      # the source or blend the others are compared with
+    # primary = "als_genres"     # the scorer `xrec compare` / `xrec export` use (default: first blend)
+    # protocol = "sampled"       # full ranking unless asked; sampled takes `negatives`
+
+    [sources.popularity]
+    kind = "popularity"
+
+    [sources.als]
+    kind = "als"
+    factors = 64
+
+    [blends.als_genres]
+    normalizer = "zscore"        # one for all, or a table per source
+    weights = { als = 1.0, genres = 0.5 }
+
+For ``dataset = "files"`` the ``[data]`` table also takes ``catalog`` and
+``interactions`` (CSV paths, relative to the spec file) and the column
+declarations ``item_col``, ``user_col``, ``time_col``, ``weight_col``,
+``categorical``, ``multilabel``, ``numeric``, ``text``, ``image``.
+"""
+
+from __future__ import annotations
+
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from xrec.errors import ConfigError
+
+_DATASETS = ("movielens", "demo_shop", "files")
+_DATA_KEYS = {
+    "dataset", "folder", "catalog", "interactions", "item_col", "user_col", "time_col", "weight_col",
+    "categorical", "multilabel", "numeric", "text", "image", "image_root", "name",
+}
+_SPLIT_KEYS = {"rule", "seed", "validation", "test_fraction", "cutoff", "cold_fraction", "min_train"}
+_EVAL_KEYS = {"ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size"}
+_BLEND_KEYS = {"weights", "normalizer"}
+_TOP_KEYS = {"data", "split", "evaluate", "sources", "blends", "name"}
+
+
+@dataclass
+class ExperimentSpec:
+    """A validated experiment spec (see the module docstring for the file format)."""
+
+    data: dict[str, Any]
+    split: dict[str, Any] = field(default_factory=dict)
+    evaluate: dict[str, Any] = field(default_factory=dict)
+    sources: dict[str, dict[str, Any]] = field(default_factory=dict)
+    blends: dict[str, dict[str, Any]] = field(default_factory=dict)
+    name: str = "experiment"
+    base_dir: Path = field(default_factory=Path.cwd)
+
+    @property
+    def ks(self) -> tuple[int, ...]:
+        return tuple(self.evaluate.get("ks", (10,)))
+
+    @property
+    def baseline(self) -> str | None:
+        return self.evaluate.get("baseline")
+
+    @property
+    def primary(self) -> str:
+        """The scorer this spec stands for: ``evaluate.primary``, else the first blend, else the first source."""
+        if "primary" in self.evaluate:
+            return self.evaluate["primary"]
+        return next(iter(self.blends)) if self.blends else next(iter(self.sources))
+
+    def resolve(self, path: str) -> Path:
+        p = Path(path)
+        return p if p.is_absolute() else self.base_dir / p
+
+
+def _check_keys(table: dict, allowed: set[str], where: str) -> None:
+    unknown = sorted(set(table) - allowed)
+    if unknown:
+        raise ConfigError(f"{where}: unknown key(s) {unknown}; allowed: {sorted(allowed)}")
+
+
+def _check_table(value: Any, where: str) -> dict:
+    if not isinstance(value, dict):
+        raise ConfigError(f"{where}: must be a table, got {type(value).__name__}")
+    return value
+
+
+def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentSpec:
+    """Validate a spec already read into a dict; errors name the offending field."""
+    _check_keys(raw, _TOP_KEYS, "spec")
+    data = _check_table(raw.get("data", {}), "data")
+    _check_keys(data, _DATA_KEYS, "data")
+    dataset = data.get("dataset", "movielens")
+    if dataset not in _DATASETS:
+        raise ConfigError(f"data.dataset: must be one of {list(_DATASETS)}, got {dataset!r}")
+    if dataset == "files":
+        for key in ("catalog", "interactions"):
+            if not isinstance(data.get(key), str):
+                raise ConfigError(f"data.{key}: a CSV path is required when data.dataset = 'files'")
+    split = _check_table(raw.get("split", {}), "split")
+    _check_keys(split, _SPLIT_KEYS, "split")
+    evaluate = _check_table(raw.get("evaluate", {}), "evaluate")
+    _check_keys(evaluate, _EVAL_KEYS, "evaluate")
+    ks = evaluate.get("ks", [10])
+    if not isinstance(ks, list) or not ks or not all(isinstance(k, int) and not isinstance(k, bool) and k > 0 for k in ks):
+        raise ConfigError(f"evaluate.ks: must be a non-empty list of positive integers, got {ks!r}")
+    if evaluate.get("protocol", "full") not in ("full", "sampled"):
+        raise ConfigError(f"evaluate.protocol: must be 'full' or 'sampled', got {evaluate.get('protocol')!r}")
+    sources = _check_table(raw.get("sources", {}), "sources")
+    if not sources:
+        raise ConfigError("sources: at least one [sources.NAME] table is needed")
+    for name, table in sources.items():
+        _check_table(table, f"sources.{name}")
+        if not isinstance(table.get("kind"), str):
+            raise ConfigError(f"sources.{name}.kind: required (e.g. 'popularity', 'als')")
+    blends = _check_table(raw.get("blends", {}), "blends")
+    for name, table in blends.items():
+        where = f"blends.{name}"
+        _check_table(table, where)
+        _check_keys(table, _BLEND_KEYS, where)
+        if name in sources:
+            raise ConfigError(f"{where}: a blend may not share its name with a source")
+        weights = _check_table(table.get("weights"), f"{where}.weights")
+        for src, w in weights.items():
+            if src not in sources:
+                raise ConfigError(f"{where}.weights.{src}: no source of that name; sources: {sorted(sources)}")
+            if not isinstance(w, (int, float)) or isinstance(w, bool):
+                raise ConfigError(f"{where}.weights.{src}: must be a number, got {w!r}")
+        norm = table.get("normalizer", "zscore")
+        if not isinstance(norm, (str, dict)):
+            raise ConfigError(f"{where}.normalizer: a name or a table per source, got {norm!r}")
+    for key in ("baseline", "primary"):
+        value = evaluate.get(key)
+        if value is not None and value not in sources and value not in blends:
+            raise ConfigError(f"evaluate.{key}: {value!r} is neither a source nor a blend")
+    return ExperimentSpec(
+        data=data,
+        split=split,
+        evaluate=evaluate,
+        sources={k: dict(v) for k, v in sources.items()},
+        blends={k: dict(v) for k, v in blends.items()},
+        name=str(raw.get("name", "experiment")),
+        base_dir=base_dir or Path.cwd(),
+    )
+
+
+BUILTIN_DIR = Path(__file__).with_name("specs")
+
+
+def builtin_specs() -> list[str]:
+    """Names of the specs shipped with xrec (usable instead of a path)."""
+    return sorted(p.stem for p in BUILTIN_DIR.glob("*.toml"))
+
+
+def load_spec(path_or_name: str | Path) -> ExperimentSpec:
+    """Read and validate a spec file, or a built-in spec by name (see :func:`builtin_specs`)."""
+    path = Path(path_or_name)
+    if not path.is_file():
+        builtin = BUILTIN_DIR / f"{path_or_name}.toml"
+        if builtin.is_file():
+            path = builtin
+        else:
+            raise ConfigError(f"no spec file {str(path_or_name)!r} and no built-in spec of that name; built-in: {builtin_specs()}")
+    try:
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{path}: not valid TOML: {exc}") from exc
+    base = path.parent if path.parent != BUILTIN_DIR else Path.cwd()
+    return parse_spec(raw, base_dir=base)

@@ -1,0 +1,337 @@
+"""Split a dataset into test and validation folds without leakage.
+
+Every fold made here shares one user index (all users of the dataset, ids sorted as strings)
+and the catalog's item index, so score blocks computed on one fold line up with any other.
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+import re
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from xrec.data.dataset import Dataset
+from xrec.errors import ConfigError
+from xrec.fold import Fold
+
+__all__ = ["SPLIT_RULES", "SplitResult", "split_dataset"]
+
+#: Names accepted by :func:`split_dataset` as ``rule``.
+SPLIT_RULES = ("leave_last", "time_cutoff", "random", "cold_items")
+
+_QUANTILE = re.compile(r"^\s*q\s*(\d*\.?\d+)\s*$", re.IGNORECASE)
+
+
+@dataclass(frozen=True)
+class SplitResult:
+    """The folds of one split.
+
+    Attributes
+    ----------
+    test
+        ``train`` = every row not held out for test (the validation fold's train and held-out
+        rows together); ``heldout`` = the test rows.
+    validation
+        ``train`` = the inner training rows; ``heldout`` = the validation rows, carved from
+        ``test.train`` by the same rule. ``None`` when asked for no validation fold.
+    settings
+        Everything needed to reproduce the split: rule, parameters, seed, resolved cutoffs,
+        row counts (including rows dropped), dataset name and fingerprint. Plain str / int /
+        float / bool values only, so it can be written to a TOML file.
+    """
+
+    test: Fold
+    validation: Fold | None
+    settings: dict
+
+    @property
+    def folds(self) -> dict[str, Fold]:
+        """``{"validation": ..., "test": ...}``, without validation when there is none."""
+        out = {"validation": self.validation} if self.validation is not None else {}
+        out["test"] = self.test
+        return out
+
+
+@dataclass(frozen=True)
+class _Rows:
+    """Interactions as positional arrays, ordered by user, time, item id."""
+
+    user: np.ndarray  # int64 user index
+    item: np.ndarray  # int64 catalog row
+    item_rank: np.ndarray  # int64 rank of the item id in string order (tie-break)
+    time: np.ndarray  # float64 seconds
+    weight: np.ndarray  # float32
+
+    def take(self, mask_or_index: np.ndarray) -> _Rows:
+        return _Rows(*(a[mask_or_index] for a in (self.user, self.item, self.item_rank, self.time, self.weight)))
+
+    def __len__(self) -> int:
+        return len(self.user)
+
+    def frame(self) -> pd.DataFrame:
+        return pd.DataFrame(
+            {
+                "user_idx": self.user.astype(np.int64),
+                "item_idx": self.item.astype(np.int64),
+                "timestamp": self.time.astype(np.float64),
+                "weight": self.weight.astype(np.float32),
+            }
+        )
+
+
+def split_dataset(
+    dataset: Dataset,
+    rule: str = "leave_last",
+    *,
+    validation: bool = True,
+    seed: int = 0,
+    test_fraction: float = 0.2,
+    cutoff: float | str | None = None,
+    cold_fraction: float = 0.1,
+    min_train: int = 1,
+) -> SplitResult:
+    """Hold out interactions for testing (and validation) by one of four rules.
+
+    Parameters
+    ----------
+    dataset
+        The data to split.
+    rule
+        - ``"leave_last"``: each user's latest interaction is held out (among equal timestamps,
+          the greatest item id in string order counts as latest). Users with at most
+          ``min_train`` interactions stay wholly in training.
+        - ``"time_cutoff"``: one global cutoff time; rows at or after it are held out. Held-out
+          rows of users left with fewer than ``min_train`` training rows are dropped (they would
+          be cold users) and counted in ``settings``.
+        - ``"random"``: each row is held out with probability ``test_fraction`` (seeded); a user
+          keeps at least ``min_train`` training rows (the rows with the smallest draws are the
+          ones held out), users with at most ``min_train`` rows stay wholly in training.
+        - ``"cold_items"``: a seeded ``cold_fraction`` of the items that have interactions is
+          removed from training; all their rows are held out. Held-out rows of users left with
+          fewer than ``min_train`` training rows are dropped and counted.
+    validation
+        Also carve a validation fold from the test fold's training rows, by the same rule
+        (same fraction / quantile; the validation draws use a seed derived from ``seed``).
+    seed
+        Seed of the random rules (``"random"``, ``"cold_items"``); recorded for all rules.
+    test_fraction
+        ``"random"``: share of rows held out. ``"time_cutoff"`` with ``cutoff=None``: share of
+        the rows (in time order) after the cutoff.
+    cutoff
+        ``"time_cutoff"`` only. A float in (0, 1) or a string ``"q0.8"``: the share of rows, in
+        time order, that stay before the cutoff (the cutoff is the timestamp of the first row
+        past that share; ties stay together on the held-out side). Any other number: a timestamp
+        in epoch seconds. Any other string (or a ``pandas.Timestamp`` / ``datetime``): a date,
+        read by ``pandas.Timestamp`` and taken as UTC when it has no time zone. ``None``: the
+        ``1 - test_fraction`` share. For validation, the same share is applied to the test
+        fold's training rows; an absolute cutoff is turned into the share of rows before it.
+    cold_fraction
+        ``"cold_items"``: share of the items with interactions to make cold (at least one item).
+    min_train
+        Fewest training rows a user keeps (see each rule); at least 1.
+
+    Returns
+    -------
+    SplitResult
+
+    Raises
+    ------
+    ConfigError
+        On an unknown rule, a parameter out of range, a ``cutoff`` with a rule other than
+        ``"time_cutoff"``, or a split that holds out nothing (or leaves no training rows).
+    """
+    if not isinstance(dataset, Dataset):
+        raise ConfigError(f"dataset must be an xrec Dataset, got {type(dataset).__name__}")
+    if rule not in SPLIT_RULES:
+        raise ConfigError(f"rule must be one of {SPLIT_RULES}, got {rule!r}")
+    if not isinstance(validation, (bool, np.bool_)):
+        raise ConfigError(f"validation must be True or False, got {validation!r}")
+    seed = _check_int("seed", seed, 0)
+    min_train = _check_int("min_train", min_train, 1)
+    test_fraction = _check_fraction("test_fraction", test_fraction)
+    cold_fraction = _check_fraction("cold_fraction", cold_fraction)
+    if cutoff is not None and rule != "time_cutoff":
+        raise ConfigError(f"cutoff applies only to rule='time_cutoff', not rule={rule!r}")
+
+    rows, user_ids = _positional(dataset)
+    settings: dict = {
+        "rule": rule,
+        "seed": seed,
+        "min_train": min_train,
+        "validation": bool(validation),
+        "dataset": dataset.name,
+        "dataset_fingerprint": dataset.fingerprint(),
+        "n_users": len(user_ids),
+        "n_items": dataset.catalog.n_items,
+        "n_interactions": len(rows),
+    }
+    if rule == "random":
+        settings["test_fraction"] = test_fraction
+    elif rule == "cold_items":
+        settings["cold_fraction"] = cold_fraction
+    elif rule == "time_cutoff":
+        settings.update(_describe_cutoff(cutoff, test_fraction))
+
+    test_seed, val_seed = (int(s.generate_state(1)[0]) for s in np.random.SeedSequence(seed).spawn(2))
+    train, held, info = _apply(rule, rows, len(user_ids), test_seed, test_fraction, cutoff, cold_fraction, min_train, "test")
+    settings.update({f"test_{k}": v for k, v in info.items()})
+    val_fold = None
+    if validation:
+        share = info.get("share_before_cutoff")
+        inner, val_held, vinfo = _apply(
+            rule, train, len(user_ids), val_seed, test_fraction, share if rule == "time_cutoff" else cutoff,
+            cold_fraction, min_train, "validation",
+        )  # fmt: skip
+        settings.update({f"validation_{k}": v for k, v in vinfo.items()})
+        val_fold = Fold(dataset.catalog, user_ids, inner.frame(), val_held.frame(), settings={**settings, "part": "validation"})
+    test_fold = Fold(dataset.catalog, user_ids, train.frame(), held.frame(), settings={**settings, "part": "test"})
+    return SplitResult(test=test_fold, validation=val_fold, settings=settings)
+
+
+# --- parameter checks ---------------------------------------------------------------------------
+
+
+def _check_int(name: str, value, lowest: int) -> int:
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Integral) or value < lowest:
+        raise ConfigError(f"{name} must be an integer >= {lowest}, got {value!r}")
+    return int(value)
+
+
+def _check_fraction(name: str, value) -> float:
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Real) or not 0.0 < float(value) < 1.0:
+        raise ConfigError(f"{name} must be a number strictly between 0 and 1, got {value!r}")
+    return float(value)
+
+
+def _parse_cutoff(cutoff, test_fraction: float) -> tuple[str, float]:
+    """``("share", q)`` for a share of rows before the cutoff, ``("time", seconds)`` for a timestamp."""
+    if cutoff is None:
+        return "share", 1.0 - test_fraction
+    if isinstance(cutoff, (bool, np.bool_)):
+        raise ConfigError(f"cutoff must be a share, a 'q0.8' quantile, a timestamp or a date, got {cutoff!r}")
+    if isinstance(cutoff, numbers.Real):
+        value = float(cutoff)
+        if not math.isfinite(value):
+            raise ConfigError(f"cutoff must be finite, got {cutoff!r}")
+        return ("share", value) if 0.0 < value < 1.0 else ("time", value)
+    if isinstance(cutoff, str) and (m := _QUANTILE.match(cutoff)):
+        q = float(m.group(1))
+        if not 0.0 < q < 1.0:
+            raise ConfigError(f"cutoff quantile must be strictly between 0 and 1, got {cutoff!r}")
+        return "share", q
+    try:
+        stamp = pd.Timestamp(cutoff)
+    except (TypeError, ValueError) as exc:
+        raise ConfigError(f"cutoff {cutoff!r} is neither a share, a 'q0.8' quantile, a timestamp nor a date") from exc
+    if stamp is pd.NaT:
+        raise ConfigError(f"cutoff {cutoff!r} is not a date")
+    if stamp.tzinfo is None:
+        stamp = stamp.tz_localize("UTC")
+    return "time", float((stamp - pd.Timestamp(0, tz="UTC")) / pd.Timedelta(1, "s"))
+
+
+def _describe_cutoff(cutoff, test_fraction: float) -> dict:
+    kind, value = _parse_cutoff(cutoff, test_fraction)
+    out: dict = {"cutoff_kind": kind, "cutoff_value": value}
+    if cutoff is None:
+        out["test_fraction"] = test_fraction
+    else:
+        # Recorded so that split_dataset(dataset, cutoff=<this>) gives the same split again.
+        if isinstance(cutoff, str):
+            out["cutoff"] = cutoff
+        elif isinstance(cutoff, numbers.Real):
+            out["cutoff"] = float(cutoff)
+        else:
+            out["cutoff"] = pd.Timestamp(cutoff).isoformat()
+    return out
+
+
+# --- the rules ----------------------------------------------------------------------------------
+
+
+def _positional(dataset: Dataset) -> tuple[_Rows, np.ndarray]:
+    frame = dataset.interactions.frame
+    user_ids, user = np.unique(frame["user"].to_numpy(dtype=str), return_inverse=True)
+    ids = dataset.catalog.item_ids.astype(str)
+    item = pd.Index(ids).get_indexer(frame["item"].to_numpy(dtype=str)).astype(np.int64)
+    rank_of = np.empty(len(ids), dtype=np.int64)
+    rank_of[np.argsort(ids, kind="stable")] = np.arange(len(ids))
+    rows = _Rows(
+        user.astype(np.int64),
+        item,
+        rank_of[item],
+        frame["timestamp"].to_numpy(dtype=np.float64),
+        frame["weight"].to_numpy(dtype=np.float32),
+    )
+    order = np.lexsort((rows.item_rank, rows.time, rows.user))
+    return rows.take(order), user_ids.astype(object)
+
+
+def _apply(rule, rows: _Rows, n_users, seed, fraction, cutoff, cold_fraction, min_train, part) -> tuple[_Rows, _Rows, dict]:
+    """Split ``rows`` (ordered by user, time, item id) into (train, held-out, counts)."""
+    if len(rows) == 0:
+        raise ConfigError(f"no training rows are left to carve the {part} split from; pass validation=False")
+    info: dict = {}
+    if rule == "leave_last":
+        counts = np.bincount(rows.user, minlength=n_users)
+        last = np.r_[rows.user[1:] != rows.user[:-1], True]
+        held = last & (counts[rows.user] > min_train)
+        dropped = np.zeros(len(rows), dtype=bool)
+    elif rule == "random":
+        draws = np.random.default_rng(seed).random(len(rows))
+        counts = np.bincount(rows.user, minlength=n_users)
+        # Rank of each draw within its user: lowest draws are held out first, so capping a user
+        # at (count - min_train) held-out rows keeps exactly the draws that fell below `fraction`.
+        by_draw = np.lexsort((draws, rows.user))
+        starts = np.r_[0, np.cumsum(counts)[:-1]]
+        rank = np.empty(len(rows), dtype=np.int64)
+        rank[by_draw] = np.arange(len(rows)) - starts[rows.user[by_draw]]
+        held = (draws < fraction) & (rank < counts[rows.user] - min_train)
+        dropped = np.zeros(len(rows), dtype=bool)
+    elif rule == "time_cutoff":
+        kind, value = _parse_cutoff(cutoff, fraction)
+        if kind == "share":
+            ordered = np.sort(rows.time, kind="stable")
+            position = min(int(math.floor(value * len(rows))), len(rows) - 1)
+            at = float(ordered[position])
+        else:
+            at = value
+        held = rows.time >= at
+        info["cutoff_time"] = at
+        # What the validation carve reuses: the asked-for share, or for a fixed time the share
+        # of rows that fell before it.
+        info["share_before_cutoff"] = value if kind == "share" else float(1.0 - held.mean())
+        dropped = held & (np.bincount(rows.user[~held], minlength=n_users)[rows.user] < min_train)
+    else:  # cold_items
+        seen = np.unique(rows.item)
+        n_cold = max(1, int(round(cold_fraction * len(seen))))
+        if n_cold >= len(seen):
+            raise ConfigError(f"cold_fraction={cold_fraction} would make all {len(seen)} items with interactions cold in the {part} split")
+        cold = np.sort(np.random.default_rng(seed).choice(seen, size=n_cold, replace=False))
+        held = np.isin(rows.item, cold)
+        info["cold_items"] = int(n_cold)
+        dropped = held & (np.bincount(rows.user[~held], minlength=n_users)[rows.user] < min_train)
+    train = rows.take(~held)
+    kept = rows.take(held & ~dropped)
+    info.update({"train_rows": len(train), "heldout_rows": len(kept), "dropped_rows": int(dropped.sum())})
+    info["heldout_users"] = int(len(np.unique(kept.user)))
+    if len(train) == 0:
+        raise ConfigError(f"the {part} split leaves no training rows ({_params(rule, fraction, cutoff, cold_fraction, min_train)})")
+    if len(kept) == 0:
+        hint = "; pass validation=False" if part == "validation" else ""
+        raise ConfigError(f"the {part} split holds out no rows ({_params(rule, fraction, cutoff, cold_fraction, min_train)}){hint}")
+    return train, kept, info
+
+
+def _params(rule, fraction, cutoff, cold_fraction, min_train) -> str:
+    if rule == "random":
+        return f"rule='random', test_fraction={fraction}, min_train={min_train}"
+    if rule == "time_cutoff":
+        return f"rule='time_cutoff', cutoff={cutoff!r}, min_train={min_train}"
+    if rule == "cold_items":
+        return f"rule='cold_items', cold_fraction={cold_fraction}, min_train={min_train}"
+    return f"rule='leave_last', min_train={min_train}"
