@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import pandas as pd
@@ -156,3 +157,77 @@ def _progress(items, enabled: bool, desc: str):
 
     items = list(items)
     return tqdm(items, desc=desc, total=len(items))
+
+
+def _scorer_for(result: ExperimentResult, name: str | None):
+    from xrec.blend import Blend
+
+    name = name or result.spec.primary
+    if name not in result.scorers:
+        raise ConfigError(f"--scorer: {name!r} is neither a source nor a blend of the spec; have {sorted(result.scorers)}")
+    scorer = result.scorers[name]
+    if not isinstance(scorer, Blend):
+        # A lone source is exported as a one-source blend with its raw scores.
+        scorer = Blend({name: scorer}, weights={name: 1.0}, normalizers="none").fit(result.split.test)
+    return name, scorer
+
+
+def data_hints(spec: ExperimentSpec) -> dict[str, Any]:
+    """The spec's ``[data]`` table with paths made absolute, so a blend file can find its data again."""
+    hints = dict(spec.data)
+    for key in ("folder", "catalog", "interactions", "image_root"):
+        if isinstance(hints.get(key), str):
+            hints[key] = str(spec.resolve(hints[key]).resolve())
+    return hints
+
+
+def export_spec(spec: ExperimentSpec, output: str | Path, *, scorer: str | None = None, progress: bool = False) -> Path:
+    """Run ``spec`` and write the blend file of one of its scorers (default: the primary)."""
+    from xrec.blendfile import save_blend
+
+    result = run_experiment(spec, progress=progress)
+    name, blend = _scorer_for(result, scorer)
+    evidence: dict[str, Any] = {"scorer": name, "scorecard": result.scorecards[name].to_dict()}
+    if result.comparison is not None:
+        evidence["comparison"] = result.comparison.to_dict()
+    return save_blend(
+        Path(output), blend, dataset=result.dataset, split_settings=result.split.settings,
+        evidence=evidence, fold="test", dataset_load=data_hints(spec),
+    )
+
+
+def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progress: bool = False):
+    """Paired comparison of the primary scorers of two specs; both must use the same data and split."""
+    from xrec.evaluate import compare
+
+    base = run_experiment(baseline, progress=progress)
+    cand = run_experiment(candidate, progress=progress, dataset=base.dataset if baseline.data == candidate.data else None)
+    if base.dataset.fingerprint() != cand.dataset.fingerprint():
+        raise ConfigError("the two specs read different data (dataset fingerprints differ); a paired comparison needs the same data")
+    if base.split.settings != cand.split.settings:
+        raise ConfigError("the two specs split the data differently ([split] tables differ); a paired comparison needs the same split")
+    if base.spec.ks != cand.spec.ks:
+        raise ConfigError(f"evaluate.ks differ: {list(base.spec.ks)} vs {list(cand.spec.ks)}")
+    b_card = base.scorecards[baseline.primary]
+    c_card = cand.scorecards[candidate.primary]
+    if b_card.name == c_card.name:
+        c_card.name = f"{c_card.name} ({candidate.name})"
+        b_card.name = f"{b_card.name} ({baseline.name})"
+    return compare(b_card, c_card, seed=int(baseline.evaluate.get("seed", 0)))
+
+
+def runtime_for_blend_file(path: str | Path, *, data_folder: str | None = None, progress: bool = False):
+    """Load a blend file with the data its ``[dataset.load]`` hints name (or ``data_folder``)."""
+    from xrec.blendfile import read_blend
+    from xrec.runtime import load_blend
+    from xrec.spec import parse_spec
+
+    blend_spec = read_blend(path)
+    hints = dict(blend_spec.dataset_load or {})
+    if not hints:
+        raise ConfigError(f"{path}: the blend file records no [dataset.load] hints; load it from Python with xrec.runtime.load_blend(path, dataset)")
+    if data_folder is not None:
+        hints["folder"] = data_folder
+    spec = parse_spec({"data": hints, "sources": {"_": {"kind": "popularity"}}})
+    dataset = load_spec_dataset(spec, progress=progress)
+    return load_blend(path, dataset, progress=progress)

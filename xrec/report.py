@@ -1,0 +1,99 @@
+"""Plain-text and JSON views of experiment results, for the command line."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import pandas as pd
+
+from xrec.experiment import ExperimentResult
+
+
+def _fmt(mean: float, lo: float, hi: float) -> str:
+    if pd.isna(lo):
+        return f"{mean:.4f}"
+    return f"{mean:.4f} [{lo:.4f}, {hi:.4f}]"
+
+
+def scorecard_table(scorecards: dict[str, Any]) -> pd.DataFrame:
+    """One row per scorer; each cell "mean [ci_low, ci_high]" (bootstrap 95% CI)."""
+    rows = {}
+    for name, card in scorecards.items():
+        summary = card.summary()
+        rows[name] = {metric: _fmt(r["mean"], r["ci_low"], r["ci_high"]) for metric, r in summary.iterrows()}
+    return pd.DataFrame(rows).T
+
+
+HEADLINE_METRICS = ("hit_rate", "ndcg")
+
+
+def format_comparison(comparison: Any, metrics: tuple[str, ...] | None = None) -> str:
+    """The comparison with differences, CIs and p-values, one line per (metric, candidate).
+
+    ``metrics`` keeps only those metric names (e.g. ``("hit_rate", "ndcg")``); default all.
+    """
+    t = comparison.table
+    if metrics is not None:
+        t = t[t["metric"].str.rpartition("@")[0].isin(metrics)]
+    lines = [comparison._title()]
+    for _, r in t.iterrows():
+        verdict = "excludes 0" if (r["ci_low"] > 0 or r["ci_high"] < 0) else "includes 0"
+        lines.append(
+            f"  {r['metric']:<14} {r['candidate']:<22} {r['baseline_mean']:.4f} -> {r['candidate_mean']:.4f}  "
+            f"diff {r['difference']:+.4f} [{r['ci_low']:+.4f}, {r['ci_high']:+.4f}] ({verdict})  "
+            f"p={r['p_value']:.4f} holm={r['p_holm']:.4f}"
+        )
+    return "\n".join(lines)
+
+
+def format_experiment(result: ExperimentResult) -> str:
+    """Scorecard table (means with 95% CIs) and the paired comparison against the baseline."""
+    split = result.split.settings
+    fold = result.split.test
+    head = (
+        f"{result.spec.name}: {result.dataset.name}, {fold.n_users} users x {fold.n_items} items, "
+        f"split {split.get('rule')} (seed {split.get('seed', 0)}), {len(fold.eval_users)} test users, "
+        f"protocol {next(iter(result.scorecards.values())).protocol.get('kind', '?')}"
+    )
+    table = scorecard_table(result.scorecards).T
+    chance = ", ".join(f"HR@{k} {v:.4f}" for k, v in random_hit_rate(fold, result.spec.ks).items())
+    parts = [head, "", "Scorecards (mean [95% bootstrap CI]):", table.to_string(), "", f"A random ranking expects {chance}."]
+    if result.comparison is not None:
+        parts += ["", format_comparison(result.comparison, HEADLINE_METRICS), "(every metric's comparison: --json)"]
+    return "\n".join(parts)
+
+
+def random_hit_rate(fold: Any, ks: tuple[int, ...]) -> dict[int, float]:
+    """Expected hit rate of a uniformly random full ranking on ``fold``.
+
+    A user with ``r`` held-out items among ``n`` candidates misses all of them in a random
+    top-K with the hypergeometric probability ``C(n-r, K) / C(n, K)``.
+    """
+    import numpy as np
+    from scipy.stats import hypergeom
+
+    users = fold.eval_users
+    n_seen = np.diff(fold.train_matrix.indptr)[users]
+    n_candidates = fold.n_items - n_seen
+    relevant = np.diff(fold.heldout_matrix.indptr)[users]
+    return {int(k): float(np.mean(1.0 - hypergeom.pmf(0, n_candidates, relevant, np.minimum(k, n_candidates)))) for k in ks}
+
+
+def experiment_payload(result: ExperimentResult) -> dict[str, Any]:
+    """JSON-ready summary: settings, per-scorer summaries with CIs, the comparison."""
+    out: dict[str, Any] = {
+        "spec": result.spec.name,
+        "dataset": {"name": result.dataset.name, "fingerprint": result.dataset.fingerprint()},
+        "split": result.split.settings,
+        "scorecards": {},
+    }
+    for name, card in result.scorecards.items():
+        summary = card.summary()
+        out["scorecards"][name] = {
+            metric: {k: (None if pd.isna(v) else float(v)) for k, v in r[["mean", "ci_low", "ci_high"]].items()}
+            for metric, r in summary.iterrows()
+        }
+        out["scorecards"][name]["n_users"] = int(card.n_users)
+    if result.comparison is not None:
+        out["comparison"] = result.comparison.to_dict()
+    return out
