@@ -1,1 +1,26 @@
 """Offline evaluation: full-ranking metrics, scorecards, paired comparisons."""
+
+from xrec.evaluate._metrics import ALL_METRICS, metrics_from_ranks
+from xrec.evaluate._ranking import UNRANKED, BlockRanks, count_at_least, rank_heldout, top_k_items
+from xrec.evaluate.compare import Comparison, compare
+from xrec.evaluate.evaluator import as_score_fn, evaluate, evaluate_blocks
+from xrec.evaluate.protocols import FullRanking, SampledNegatives
+from xrec.evaluate.scorecard import Scorecard
+
+__all__ = [
+    "ALL_METRICS",
+    "UNRANKED",
+    "BlockRanks",
+    "Comparison",
+    "FullRanking",
+    "SampledNegatives",
+    "Scorecard",
+    "as_score_fn",
+    "compare",
+    "count_at_least",
+    "evaluate",
+    "evaluate_blocks",
+    "metrics_from_ranks",
+    "rank_heldout",
+    "top_k_items",
+]

@@ -1,0 +1,86 @@
+"""Resampling statistics over per-user values: bootstrap means, sign-flip test, Holm.
+
+Functions take one column of per-user values or several side by side (``n_users × m``);
+every column sees the same resamples, so results for a column do not depend on which
+other columns are passed with it.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+# Resampled values held at once (resamples × users), to bound memory on large user sets.
+_CELLS = 1 << 22
+
+
+def _batch(n: int) -> int:
+    return max(1, min(256, _CELLS // max(n, 1)))
+
+
+def bootstrap_means(values: np.ndarray, n_resamples: int, seed: int) -> np.ndarray:
+    """Means of ``n_resamples`` resamples (users drawn with replacement) of ``values``.
+
+    Returns shape ``(n_resamples,)`` for 1-D ``values``, ``(n_resamples, m)`` for 2-D.
+    """
+    values = np.asarray(values, dtype=np.float64)
+    flat = values.ndim == 1
+    v = values[:, None] if flat else values
+    n = len(v)
+    rng = np.random.default_rng(seed)
+    out = np.empty((n_resamples, v.shape[1]))
+    step = _batch(n)
+    for s in range(0, n_resamples, step):
+        e = min(n_resamples, s + step)
+        idx = rng.integers(0, n, size=(e - s, n))
+        out[s:e] = v[idx].mean(axis=1)
+    return out[:, 0] if flat else out
+
+
+def percentile_interval(stats: np.ndarray, confidence: float) -> tuple:
+    """Percentile interval of bootstrap statistics (per column when 2-D)."""
+    alpha = (1.0 - confidence) / 2.0
+    lo, hi = np.percentile(stats, [100 * alpha, 100 * (1 - alpha)], axis=0)
+    if np.ndim(lo) == 0:
+        return float(lo), float(hi)
+    return lo, hi
+
+
+def sign_flip_pvalue(diff: np.ndarray, n_resamples: int, seed: int):
+    """Two-sided paired randomization test of mean(diff) = 0 by random sign flips.
+
+    p = (1 + #{resamples with |mean| >= |observed mean|}) / (n_resamples + 1); the +1
+    counts the observed assignment, so p is never 0. A relative tolerance of 1e-12 keeps
+    floating-point noise from splitting exact ties with the observed value. ``diff`` may
+    be 2-D (users × m): one p-value per column, same flips for every column.
+    """
+    d = np.asarray(diff, dtype=np.float64)
+    flat = d.ndim == 1
+    d = d[:, None] if flat else d
+    n = len(d)
+    observed = np.abs(d.mean(axis=0))
+    cut = observed - 1e-12 * np.maximum(observed, np.abs(d).mean(axis=0))
+    rng = np.random.default_rng(seed)
+    extreme = np.zeros(d.shape[1], dtype=np.int64)
+    step = _batch(n)
+    for s in range(0, n_resamples, step):
+        e = min(n_resamples, s + step)
+        signs = rng.integers(0, 2, size=(e - s, n), dtype=np.int8).astype(np.float64) * 2.0 - 1.0
+        extreme += (np.abs(signs @ d) / n >= cut).sum(axis=0)
+    p = (extreme + 1) / (n_resamples + 1)
+    return float(p[0]) if flat else p
+
+
+def holm(pvalues: np.ndarray) -> np.ndarray:
+    """Holm (1979) step-down adjusted p-values.
+
+    Sorted ascending ``p_(1) <= ... <= p_(m)``: adjusted ``p_(j) = max_{l <= j} min(1, (m-l+1) p_(l))``.
+    """
+    p = np.asarray(pvalues, dtype=np.float64)
+    m = len(p)
+    if m == 0:
+        return p.copy()
+    order = np.argsort(p, kind="stable")
+    scaled = np.minimum(1.0, (m - np.arange(m)) * p[order])
+    adjusted = np.empty(m)
+    adjusted[order] = np.maximum.accumulate(scaled)
+    return adjusted
