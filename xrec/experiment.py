@@ -181,15 +181,33 @@ def data_hints(spec: ExperimentSpec) -> dict[str, Any]:
     return hints
 
 
+def evidence_summary(result: ExperimentResult, name: str) -> dict[str, Any]:
+    """What a blend was chosen on, compactly: its metric means with CIs and its comparison rows."""
+    card = result.scorecards[name]
+    summary = card.summary()
+    evidence: dict[str, Any] = {
+        "scorer": name,
+        "n_users": int(card.n_users),
+        "protocol": card.protocol,
+        "metrics": {
+            metric: {k: float(v) for k, v in row[["mean", "ci_low", "ci_high"]].items() if pd.notna(v)}
+            for metric, row in summary.iterrows()
+        },
+    }
+    if result.comparison is not None:
+        rows = [r for r in result.comparison.to_dict()["rows"] if r.get("candidate") == name]
+        if rows:
+            evidence["comparison"] = {"baseline": result.comparison.baseline, "rows": rows}
+    return evidence
+
+
 def export_spec(spec: ExperimentSpec, output: str | Path, *, scorer: str | None = None, progress: bool = False) -> Path:
     """Run ``spec`` and write the blend file of one of its scorers (default: the primary)."""
     from xrec.blendfile import save_blend
 
     result = run_experiment(spec, progress=progress)
     name, blend = _scorer_for(result, scorer)
-    evidence: dict[str, Any] = {"scorer": name, "scorecard": result.scorecards[name].to_dict()}
-    if result.comparison is not None:
-        evidence["comparison"] = result.comparison.to_dict()
+    evidence = evidence_summary(result, name)
     return save_blend(
         Path(output), blend, dataset=result.dataset, split_settings=result.split.settings,
         evidence=evidence, fold="test", dataset_load=data_hints(spec),
