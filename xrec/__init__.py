@@ -22,3 +22,17 @@ __all__ = [
     "make_source",
     "source_kinds",
 ]
+
+
+def load_ipython_extension(ipython) -> None:
+    """``%load_ext xrec``: rich HTML display of scorecards and comparisons (see :mod:`xrec.notebook.display`)."""
+    from xrec.notebook.display import load_ipython_extension as _load
+
+    _load(ipython)
+
+
+def unload_ipython_extension(ipython) -> None:
+    """``%unload_ext xrec``: remove the display formatters again."""
+    from xrec.notebook.display import unload_ipython_extension as _unload
+
+    _unload(ipython)

@@ -1,1 +1,37 @@
-"""Notebook widgets and rich display."""
+"""Notebook widgets and rich display: charts, the weight mixer, ``%load_ext xrec`` formatters.
+
+Charts need only ``altair``; the mixer imports ``ipywidgets`` when it is built.
+"""
+
+from xrec.notebook.charts import (
+    charts_to_html,
+    comparison_chart,
+    comparison_frame,
+    difference_bars,
+    metric_bars,
+    segment_bars,
+    segment_hit_rates,
+    summary_frame,
+    weight_profile,
+    wilson_interval,
+)
+from xrec.notebook.display import comparison_html, offline_charts, scorecard_html
+from xrec.notebook.mixer import WeightMixer, interval_frame
+
+__all__ = [
+    "WeightMixer",
+    "charts_to_html",
+    "comparison_chart",
+    "comparison_frame",
+    "comparison_html",
+    "difference_bars",
+    "interval_frame",
+    "metric_bars",
+    "offline_charts",
+    "scorecard_html",
+    "segment_bars",
+    "segment_hit_rates",
+    "summary_frame",
+    "weight_profile",
+    "wilson_interval",
+]
