@@ -1,26 +1,56 @@
-"""xrec: prototype cross-modal recommenders and prove offline which blend wins."""
+"""xrec: prototype cross-modal recommenders and prove offline which blend wins.
 
-from xrec.data import Catalog, CatalogSchema, Dataset, Interactions
+The main names are re-exported here; each subpackage documents its own:
+``xrec.data`` (catalog, interactions, loaders), ``xrec.split``, ``xrec.sources``,
+``xrec.encoders``, ``xrec.blend``, ``xrec.evaluate``, ``xrec.blendfile``, ``xrec.runtime``,
+``xrec.notebook``.
+"""
+
+from xrec.blend import Blend, CombMNZ, CombSum, ReciprocalRankFusion
+from xrec.blendfile import read_blend, save_blend
+from xrec.data import Catalog, CatalogSchema, Dataset, Interactions, load_movielens
+from xrec.data.demo import load_demo_shop
 from xrec.errors import ConfigError, DataError, FingerprintMismatch, XrecError
+from xrec.evaluate import Comparison, FullRanking, SampledNegatives, Scorecard, compare, evaluate
 from xrec.fold import Fold
+from xrec.runtime import BlendRuntime, load_blend
 from xrec.sources import LowRankSource, Source, make_source, source_kinds
+from xrec.split import SplitResult, split_dataset
 
 __version__ = "0.1.0"
 
 __all__ = [
+    "Blend",
+    "BlendRuntime",
     "Catalog",
     "CatalogSchema",
+    "CombMNZ",
+    "CombSum",
+    "Comparison",
     "ConfigError",
     "DataError",
     "Dataset",
     "FingerprintMismatch",
     "Fold",
+    "FullRanking",
     "Interactions",
     "LowRankSource",
+    "ReciprocalRankFusion",
+    "SampledNegatives",
+    "Scorecard",
     "Source",
+    "SplitResult",
     "XrecError",
+    "compare",
+    "evaluate",
+    "load_blend",
+    "load_demo_shop",
+    "load_movielens",
     "make_source",
+    "read_blend",
+    "save_blend",
     "source_kinds",
+    "split_dataset",
 ]
 
 
