@@ -1,5 +1,19 @@
 """Sources: popularity, collaborative models, attribute and content similarity."""
 
 from xrec.sources.base import LowRankSource, Source, make_source, source_kinds
+from xrec.sources.popularity import PopularitySource
+from xrec.sources.collaborative import ALSSource, BPRSource, ItemKNNSource
+from xrec.sources.attributes import AttributeSource
+from xrec.sources.content import CrossModalSource, EarlyFusionSource, ImageSource, TextSource
 
-__all__ = ["LowRankSource", "Source", "make_source", "source_kinds"]
+__all__ = [
+    "ALSSource",
+    "AttributeSource",
+    "BPRSource",
+    "ItemKNNSource",
+    "LowRankSource",
+    "PopularitySource",
+    "Source",
+    "make_source",
+    "source_kinds",
+]
