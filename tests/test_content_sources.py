@@ -285,3 +285,20 @@ def test_cross_modal_clip_scores_history_images_against_item_texts(catalog: Cata
     profile = _unit(images)[1] + _unit(images)[2]  # user 1, equal weights
     # reference library: sklearn.metrics.pairwise.cosine_similarity
     np.testing.assert_allclose(src.score(np.array([1]))[0], cosine_similarity(profile[None], texts)[0], rtol=1e-4, atol=1e-5)
+
+
+def test_centred_text_scores_equal_sklearn_cosine_of_centred_vectors(fold: Fold, cache_dir: str, text_reference: np.ndarray) -> None:
+    from sklearn.preprocessing import normalize
+
+    src = TextSource(cache_dir=cache_dir, center=True).fit(fold)
+    # Reference: scikit-learn's row normalisation and cosine on independently centred vectors.
+    vectors = normalize(text_reference.astype(np.float64))
+    centred = vectors - vectors.mean(axis=0)
+    history = np.zeros((fold.n_users, fold.n_items))
+    history[fold.train["user_idx"], fold.train["item_idx"]] = 1.0
+    profiles = history @ centred
+    users = np.arange(fold.n_users)
+    expected = cosine_similarity(profiles, centred)
+    got = src.score(users)
+    has_history = history.sum(axis=1) > 0
+    np.testing.assert_allclose(got[has_history], expected[has_history], atol=1e-5)

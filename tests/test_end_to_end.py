@@ -37,3 +37,9 @@ def test_popularity_beats_chance_and_als_beats_popularity(study):
     assert "als_genres" in study.scorecards
     text = format_experiment(study)
     assert "als_genres" in text and "A random ranking expects" in text
+
+
+def test_result_table_has_one_row_per_scorer(study):
+    table = study.table()
+    assert list(table.index) == list(study.scorecards)
+    assert table.loc["als", "hit_rate@10"] == pytest.approx(study.scorecards["als"].means()["hit_rate@10"])

@@ -33,8 +33,8 @@ DEMO_SOURCES: dict[str, tuple[str, dict[str, Any]]] = {
     "popularity": ("popularity", {}),
     "als": ("als", {"factors": 48, "iterations": 15, "regularization": 0.05, "random_state": 0}),
     "attributes": ("attributes", {}),
-    "text": ("text", {"columns": ["name", "description"]}),
-    "image": ("image", {}),
+    "text": ("text", {"columns": ["name", "description"], "center": True}),
+    "image": ("image", {"center": True}),
 }
 METRIC = "ndcg@10"
 KS = (10, 20)

@@ -90,11 +90,7 @@ class ExperimentResult:
         """One row per scorer, one column per metric (means)."""
         rows = []
         for name, card in self.scorecards.items():
-            summary = card.summary()
-            row = {"scorer": name}
-            for _, r in summary.iterrows():
-                row[r["metric"]] = r["mean"]
-            rows.append(row)
+            rows.append({"scorer": name, **card.summary()["mean"].to_dict()})
         return pd.DataFrame(rows).set_index("scorer")
 
 

@@ -50,6 +50,22 @@ def _l2_normalize(rows: np.ndarray) -> np.ndarray:
     return np.divide(rows, norms, out=np.zeros_like(rows, dtype=np.float64), where=norms > 0).astype(np.float32)
 
 
+def center_vectors(rows: np.ndarray) -> np.ndarray:
+    """Subtract the mean of the non-zero rows from them (zero rows, items without content, stay zero).
+
+    Encoders give every item of a catalog a large shared component (all product photos
+    look alike next to an arbitrary image); removing it leaves the directions that tell
+    items apart, which is what a profile mean should be made of.
+    """
+    rows = np.asarray(rows, dtype=np.float32)
+    present = np.any(rows != 0, axis=1)
+    if not present.any():
+        return rows.copy()
+    out = rows.copy()
+    out[present] -= rows[present].mean(axis=0, dtype=np.float64).astype(np.float32)
+    return out
+
+
 def _check_half_life(kind: str, value: Any) -> None:
     if value is None:
         return
@@ -278,9 +294,12 @@ class _ProfileSource(LowRankSource):
         """Encode the catalog (through the cache) and build profiles from ``fold.train``; returns ``self``."""
         _check_half_life(self.kind, self.half_life_days)
         profile_side, item_side = self._vectors(fold.catalog)
-        self.item_factors_ = _l2_normalize(item_side)
         # each history item counts as a direction, whatever its vector's length
-        self.user_factors_ = user_profiles(fold, _l2_normalize(profile_side), self.half_life_days)
+        profile_side, item_side = _l2_normalize(profile_side), _l2_normalize(item_side)
+        if getattr(self, "center", False):
+            profile_side, item_side = center_vectors(profile_side), center_vectors(item_side)
+        self.item_factors_ = _l2_normalize(item_side)
+        self.user_factors_ = user_profiles(fold, profile_side, self.half_life_days)
         self.fitted_ = True
         return self
 
@@ -303,6 +322,9 @@ class TextSource(_ProfileSource):
         ``.xrec-cache``).
     progress
         Progress bar while encoding uncached items.
+    center
+        Subtract the catalog's mean vector before building profiles and scoring (see
+        :func:`center_vectors`); often much sharper on catalogs of look-alike items.
 
     Attributes
     ----------
@@ -323,12 +345,14 @@ class TextSource(_ProfileSource):
         half_life_days: float | None = None,
         cache_dir: str | None = None,
         progress: bool = False,
+        center: bool = False,
     ) -> None:
         self.columns = columns
         self.encoder = encoder
         self.half_life_days = half_life_days
         self.cache_dir = cache_dir
         self.progress = progress
+        self.center = center
 
     def _vectors(self, catalog: Catalog) -> tuple[np.ndarray, np.ndarray]:
         vectors, ok = text_vectors(catalog, self.columns, self.encoder, cache_dir=self.cache_dir, progress=self.progress)
@@ -349,6 +373,8 @@ class ImageSource(_ProfileSource):
         See :class:`TextSource`.
     progress
         Progress bar while encoding uncached images.
+    center
+        See :class:`TextSource`.
 
     Attributes
     ----------
@@ -364,11 +390,13 @@ class ImageSource(_ProfileSource):
         half_life_days: float | None = None,
         cache_dir: str | None = None,
         progress: bool = False,
+        center: bool = False,
     ) -> None:
         self.encoder = encoder
         self.half_life_days = half_life_days
         self.cache_dir = cache_dir
         self.progress = progress
+        self.center = center
 
     def _vectors(self, catalog: Catalog) -> tuple[np.ndarray, np.ndarray]:
         vectors, ok = image_vectors(catalog, self.encoder, cache_dir=self.cache_dir, progress=self.progress)
