@@ -124,13 +124,11 @@ def run_experiment(spec: ExperimentSpec, *, progress: bool = False, dataset: Dat
     for name, source in _progress(sources.items(), progress, "fitting sources"):
         source.fit(fold)
     scorers: dict[str, Any] = dict(sources)
+    learned: dict[str, Any] = {}
+    valid_sources: dict[str, Source] = {}
     for name, table in spec.blends.items():
         try:
-            scorers[name] = Blend(
-                {s: sources[s] for s in table["weights"]},
-                weights=table["weights"],
-                normalizers=table.get("normalizer", "zscore"),
-            ).fit(fold)
+            scorers[name] = _build_blend(spec, table, sources, split, valid_sources, learned, name, progress)
         except ConfigError as exc:
             raise ConfigError(f"blends.{name}: {exc}") from exc
     opts = evaluation_options(spec)
@@ -143,7 +141,63 @@ def run_experiment(spec: ExperimentSpec, *, progress: bool = False, dataset: Dat
     if baseline is not None and len(scorecards) > 1:
         others = [card for name, card in scorecards.items() if name != baseline]
         comparison = compare(scorecards[baseline], *others, seed=int(spec.evaluate.get("seed", 0)))
-    return ExperimentResult(spec, dataset, split, scorers, scorecards, comparison)
+    return ExperimentResult(spec, dataset, split, scorers, scorecards, comparison, extras={"learned": learned})
+
+
+def _blend_source_names(table: dict[str, Any], sources: dict[str, Source]) -> list[str]:
+    if table.get("sources"):
+        return list(table["sources"])
+    if isinstance(table.get("weights"), dict):
+        return list(table["weights"])
+    return list(sources)
+
+
+def _build_blend(spec, table, sources, split, valid_sources, learned, name, progress):
+    """One ``[blends.NAME]`` table as a fitted scorer: fixed weights, learned weights or a fusion rule."""
+    from xrec.blend import Blend, make_fusion
+
+    fold = split.test
+    names = _blend_source_names(table, sources)
+    chosen = {n: sources[n] for n in names}
+    normalizer = table.get("normalizer", "zscore")
+    if "fusion" in table:
+        params = {k: table[k] for k in ("k", "depth") if k in table}
+        if table["fusion"] != "rrf" and "normalizer" in table:
+            params["normalizer"] = normalizer
+        return make_fusion(table["fusion"], chosen, **params).fit(fold)
+    if table["weights"] != "learn":
+        return Blend(chosen, weights=table["weights"], normalizers=normalizer).fit(fold)
+
+    from xrec.blend.engine import BlendEngine
+    from xrec.blend.gating import GatedBlend, learn_gated_weights
+    from xrec.blend.learn import learn_weights
+
+    if split.validation is None:
+        raise ConfigError("weights = \"learn\" needs a validation split")
+    # Weights are chosen on the validation fold, with sources fitted on its own training rows.
+    built = build_sources(spec)
+    for n in names:
+        if n not in valid_sources:
+            valid_sources[n] = built[n].fit(split.validation)
+    metric = table.get("metric", "ndcg@10")
+    try:
+        k = int(metric.rpartition("@")[2])
+    except ValueError:
+        raise ConfigError(f"metric: expected '<name>@<k>', got {metric!r}") from None
+    seed = int(table.get("seed", 0))
+    engine = BlendEngine({n: valid_sources[n] for n in names}, split.validation, normalizer, ks=(k,), metric=metric)
+    engine.prepare(progress=progress)
+    result = learn_weights(engine, method=table.get("method", "coordinate_ascent"), seed=seed, progress=progress)
+    record = {"method": result.method, "metric": result.metric, "weights": result.weights, "validation": result.valid_score,
+              "best_single": result.best_single[0] if result.best_single else None,
+              "best_single_validation": result.best_single[1] if result.best_single else None}
+    if table.get("gated", False):
+        gated = learn_gated_weights(engine, start=result.weights, seed=seed, progress=progress)
+        record.update(band_weights=gated.band_weights, validation=gated.valid_score, head_min=int(gated.details["head_min"]))
+        learned[name] = record
+        return GatedBlend(chosen, gated.band_weights, normalizer, head_min=int(gated.details["head_min"])).fit(fold)
+    learned[name] = record
+    return Blend(chosen, weights=result.weights, normalizers=normalizer).fit(fold)
 
 
 def _progress(items, enabled: bool, desc: str):

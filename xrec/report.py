@@ -58,6 +58,11 @@ def format_experiment(result: ExperimentResult) -> str:
     table = scorecard_table(result.scorecards).T
     chance = ", ".join(f"HR@{k} {v:.4f}" for k, v in random_hit_rate(fold, result.spec.ks).items())
     parts = [head, "", "Scorecards (mean [95% bootstrap CI]):", table.to_string(), "", f"A random ranking expects {chance}."]
+    for name, rec in result.extras.get("learned", {}).items():
+        weights = ", ".join(f"{k}={v:.3f}" for k, v in rec["weights"].items())
+        gated = " (gated by item popularity; start weights shown)" if "band_weights" in rec else ""
+        parts += ["", f"{name}: {rec['method']} on the validation split, {rec['metric']} = {rec['validation']:.4f} "
+                  f"(best single source {rec['best_single']}: {rec['best_single_validation']:.4f}); weights {weights}{gated}"]
     if result.comparison is not None:
         parts += ["", format_comparison(result.comparison, HEADLINE_METRICS), "(every metric's comparison: --json)"]
     return "\n".join(parts)
@@ -96,4 +101,6 @@ def experiment_payload(result: ExperimentResult) -> dict[str, Any]:
         out["scorecards"][name]["n_users"] = int(card.n_users)
     if result.comparison is not None:
         out["comparison"] = result.comparison.to_dict()
+    if result.extras.get("learned"):
+        out["learned"] = result.extras["learned"]
     return out

@@ -28,6 +28,16 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     normalizer = "zscore"        # one for all, or a table per source
     weights = { als = 1.0, genres = 0.5 }
 
+    [blends.learned]             # weights learned on the validation split
+    sources = ["als", "genres"]  # default: every source
+    weights = "learn"
+    method = "coordinate_ascent" # coordinate_ascent | optuna | logistic
+    metric = "ndcg@10"
+    # gated = true               # separate weights for new / tail / head items
+
+    [blends.rrf]                 # a tuning-free fusion rule
+    fusion = "rrf"               # rrf (k = 60) | combsum | combmnz (depth = 100)
+
 For ``dataset = "files"`` the ``[data]`` table also takes ``catalog`` and
 ``interactions`` (CSV paths, relative to the spec file) and the column
 declarations ``item_col``, ``user_col``, ``time_col``, ``weight_col``,
@@ -50,7 +60,9 @@ _DATA_KEYS = {
 }
 _SPLIT_KEYS = {"rule", "seed", "validation", "test_fraction", "cutoff", "cold_fraction", "min_train"}
 _EVAL_KEYS = {"ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size"}
-_BLEND_KEYS = {"weights", "normalizer"}
+_BLEND_KEYS = {"weights", "normalizer", "sources", "method", "metric", "gated", "fusion", "k", "depth", "seed"}
+_LEARN_METHODS = ("coordinate_ascent", "optuna", "logistic")
+_FUSIONS = ("rrf", "combsum", "combmnz")
 _TOP_KEYS = {"data", "split", "evaluate", "sources", "blends", "name"}
 
 
@@ -98,6 +110,44 @@ def _check_table(value: Any, where: str) -> dict:
     return value
 
 
+def _check_blend(table: dict, where: str, sources: dict, *, learning_allowed: bool) -> None:
+    """A blend is fixed weights, learned weights (optionally gated) or a fusion rule."""
+    fusion, weights = table.get("fusion"), table.get("weights")
+    if fusion is not None and weights is not None:
+        raise ConfigError(f"{where}: give either 'weights' or 'fusion', not both")
+    if fusion is None and weights is None:
+        raise ConfigError(f"{where}: needs 'weights' (a table, or \"learn\") or 'fusion' ({', '.join(_FUSIONS)})")
+    if fusion is not None and fusion not in _FUSIONS:
+        raise ConfigError(f"{where}.fusion: must be one of {list(_FUSIONS)}, got {fusion!r}")
+    listed = table.get("sources")
+    if listed is not None:
+        if not isinstance(listed, list) or not listed or not all(isinstance(x, str) for x in listed):
+            raise ConfigError(f"{where}.sources: a non-empty list of source names, got {listed!r}")
+        unknown = [x for x in listed if x not in sources]
+        if unknown:
+            raise ConfigError(f"{where}.sources: no source(s) {unknown}; sources: {sorted(sources)}")
+    if weights == "learn":
+        if not learning_allowed:
+            raise ConfigError(f"{where}.weights: learning weights needs a validation split; remove split.validation = false")
+        if table.get("method", "coordinate_ascent") not in _LEARN_METHODS:
+            raise ConfigError(f"{where}.method: must be one of {list(_LEARN_METHODS)}, got {table.get('method')!r}")
+    elif fusion is None:
+        weights = _check_table(weights, f"{where}.weights")
+        for src, w in weights.items():
+            if src not in sources:
+                raise ConfigError(f"{where}.weights.{src}: no source of that name; sources: {sorted(sources)}")
+            if not isinstance(w, (int, float)) or isinstance(w, bool):
+                raise ConfigError(f"{where}.weights.{src}: must be a number, got {w!r}")
+        for key in ("method", "metric", "gated", "seed"):
+            if key in table:
+                raise ConfigError(f"{where}.{key}: only for learned weights (weights = \"learn\")")
+    if "gated" in table and not isinstance(table["gated"], bool):
+        raise ConfigError(f"{where}.gated: must be true or false, got {table['gated']!r}")
+    norm = table.get("normalizer", "zscore")
+    if not isinstance(norm, (str, dict)):
+        raise ConfigError(f"{where}.normalizer: a name or a table per source, got {norm!r}")
+
+
 def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentSpec:
     """Validate a spec already read into a dict; errors name the offending field."""
     _check_keys(raw, _TOP_KEYS, "spec")
@@ -133,15 +183,7 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
         _check_keys(table, _BLEND_KEYS, where)
         if name in sources:
             raise ConfigError(f"{where}: a blend may not share its name with a source")
-        weights = _check_table(table.get("weights"), f"{where}.weights")
-        for src, w in weights.items():
-            if src not in sources:
-                raise ConfigError(f"{where}.weights.{src}: no source of that name; sources: {sorted(sources)}")
-            if not isinstance(w, (int, float)) or isinstance(w, bool):
-                raise ConfigError(f"{where}.weights.{src}: must be a number, got {w!r}")
-        norm = table.get("normalizer", "zscore")
-        if not isinstance(norm, (str, dict)):
-            raise ConfigError(f"{where}.normalizer: a name or a table per source, got {norm!r}")
+        _check_blend(table, where, sources, learning_allowed=split.get("validation", True))
     for key in ("baseline", "primary"):
         value = evaluate.get(key)
         if value is not None and value not in sources and value not in blends:
