@@ -11,7 +11,8 @@ from xrec.blendfile import read_blend, save_blend
 from xrec.data import Catalog, CatalogSchema, Dataset, Interactions, load_movielens
 from xrec.data.demo import load_demo_shop
 from xrec.errors import ConfigError, DataError, FingerprintMismatch, XrecError
-from xrec.evaluate import Comparison, FullRanking, SampledNegatives, Scorecard, compare, evaluate
+# The evaluate() function is not re-exported: the name is the xrec.evaluate subpackage.
+from xrec.evaluate import Comparison, FullRanking, SampledNegatives, Scorecard, compare
 from xrec.fold import Fold
 from xrec.runtime import BlendRuntime, load_blend
 from xrec.sources import LowRankSource, Source, make_source, source_kinds
@@ -42,7 +43,6 @@ __all__ = [
     "SplitResult",
     "XrecError",
     "compare",
-    "evaluate",
     "load_blend",
     "load_demo_shop",
     "load_movielens",
