@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 import pytest
 from sklearn.cross_decomposition import CCA
@@ -224,7 +226,7 @@ def demo_pairs(request: pytest.FixtureRequest) -> dict[str, np.ndarray]:
     except DataError as exc:
         pytest.skip(f"demo shop not available: {exc}")
     # pytest's cross-run cache: the first run encodes ~1,000 images and texts, later runs read them
-    cache = str(request.config.cache.mkdir("xrec-bridge-embeddings"))
+    cache = os.environ.get("XREC_CACHE_DIR") or str(request.config.cache.mkdir("xrec-bridge-embeddings"))
     text, text_ok = text_vectors(catalog, cache_dir=cache)
     features, probs, image_ok = image_features_and_probs(catalog, cache_dir=cache)
     ok = text_ok & image_ok

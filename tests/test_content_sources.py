@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import os
+
 import io
 import json
 from pathlib import Path
@@ -73,7 +75,7 @@ def catalog(tmp_path_factory: pytest.TempPathFactory) -> Catalog:
 def cache_dir(request: pytest.FixtureRequest) -> str:
     # pytest's own cross-run cache folder: entries are keyed by content and encoder, so a
     # stale one is never used, and reruns skip encoding the 1,000 ImageNet class names
-    return str(request.config.cache.mkdir("xrec-content-embeddings"))
+    return os.environ.get("XREC_CACHE_DIR") or str(request.config.cache.mkdir("xrec-content-embeddings"))
 
 
 @pytest.fixture(scope="module")
