@@ -8,27 +8,14 @@ import pytest
 
 from xrec.blend import Blend
 from xrec.blend.engine import BlendEngine, UserSample, sample_users
-from xrec.data.catalog import Catalog
 from xrec.errors import ConfigError
 from xrec.evaluate import evaluate
 from xrec.fold import Fold
 from xrec.sources.base import LowRankSource, Source
 
+from _synthetic import FixedScores, pairs_frame, synthetic_fold
+
 RANK_METRICS = ("hit_rate", "ndcg", "recall", "mrr")
-
-
-class FixedScores(Source):
-    """Scores read from a dense matrix (no kind: not registered)."""
-
-    def __init__(self, matrix: np.ndarray) -> None:
-        self.matrix = matrix
-
-    def fit(self, fold):
-        self.fitted_ = True
-        return self
-
-    def score(self, users):
-        return self.matrix[np.asarray(users)].astype(np.float32)
 
 
 class FixedFactors(LowRankSource):
@@ -60,12 +47,7 @@ def make_fold(n_users=60, n_items=45, seed=0, multi=True) -> Fold:
         if u % 11 == 5:
             out[0] = items[0]
         held += [(u, int(i)) for i in out]
-
-    def frame(rows):
-        a = np.array(rows)
-        return pd.DataFrame({"user_idx": a[:, 0], "item_idx": a[:, 1], "timestamp": 0.0, "weight": np.float32(1.0)})
-
-    return Fold(Catalog.from_ids([f"i{j}" for j in range(n_items)]), np.array([f"u{u}" for u in range(n_users)]), frame(train), frame(held))
+    return synthetic_fold(n_users, n_items, pairs_frame(train), pairs_frame(held))
 
 
 def make_sources(fold: Fold, seed=0) -> dict[str, Source]:

@@ -14,19 +14,8 @@ from xrec.data.catalog import Catalog
 from xrec.errors import ConfigError
 from xrec.evaluate import evaluate
 from xrec.fold import Fold
-from xrec.sources.base import Source
 
-
-class FixedScores(Source):
-    def __init__(self, matrix: np.ndarray) -> None:
-        self.matrix = matrix
-
-    def fit(self, fold):
-        self.fitted_ = True
-        return self
-
-    def score(self, users):
-        return self.matrix[np.asarray(users)].astype(np.float32)
+from _synthetic import argmax_heldout, fixed_sources, pairs_frame, synthetic_fold
 
 
 def test_bands_from_counts_worked_example():
@@ -53,18 +42,13 @@ def banded_problem(n_users=240, n_items=80, seed=0):
     weights = np.r_[np.zeros(10), np.linspace(8, 1, n_items - 10) ** 2]
     weights /= weights.sum()
     rows = [(u, int(i)) for u in range(n_users) for i in rng.choice(n_items, 6, replace=False, p=weights)]
-    train = pd.DataFrame(rows, columns=["user_idx", "item_idx"]).assign(timestamp=0.0, weight=np.float32(1.0))
-    catalog = Catalog.from_ids([f"i{j}" for j in range(n_items)])
-    user_ids = np.array([f"u{u}" for u in range(n_users)])
-    probe = Fold(catalog, user_ids, train, train.iloc[:0])
+    probe = synthetic_fold(n_users, n_items, pairs_frame(rows))
     band = PopularityBands.from_counts(probe.item_train_counts, 0.5).assign(probe.item_train_counts)
     raws = [rng.standard_normal((n_users, n_items)).astype(np.float32) for _ in range(3)]
     z = [normalize(r, "zscore", probe.train_matrix) for r in raws]
     truth = np.select([band == 2, band == 1, band == 0], [z[0], z[1], z[2]]) + 0.05 * rng.standard_normal((n_users, n_items))
-    truth[probe.train_matrix.toarray() > 0] = -np.inf
-    held = pd.DataFrame({"user_idx": np.arange(n_users), "item_idx": truth.argmax(1), "timestamp": 0.0, "weight": np.float32(1.0)})
-    fold = Fold(catalog, user_ids, train, held)
-    return fold, {f"s{j}": FixedScores(r).fit(fold) for j, r in enumerate(raws)}
+    fold = argmax_heldout(probe, truth)
+    return fold, fixed_sources(fold, raws)
 
 
 def test_scores_follow_the_formula():

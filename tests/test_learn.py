@@ -3,32 +3,19 @@
 from __future__ import annotations
 
 import numpy as np
-import pandas as pd
 import pytest
 
 from xrec.blend import Blend
 from xrec.blend.engine import BlendEngine
 from xrec.blend.learn import LearnResult, learn_weights
 from xrec.blend.normalize import normalize
-from xrec.data.catalog import Catalog
 from xrec.errors import ConfigError
 from xrec.evaluate import evaluate
 from xrec.fold import Fold
-from xrec.sources.base import Source
+
+from _synthetic import FixedScores, argmax_heldout, fixed_sources, pairs_frame, synthetic_fold
 
 TRUE = (0.6, 0.3, 0.1)
-
-
-class FixedScores(Source):
-    def __init__(self, matrix: np.ndarray) -> None:
-        self.matrix = matrix
-
-    def fit(self, fold):
-        self.fitted_ = True
-        return self
-
-    def score(self, users):
-        return self.matrix[np.asarray(users)].astype(np.float32)
 
 
 def known_blend_problem(n_users=300, n_items=120, weights=TRUE, noise=0.05, seed=0):
@@ -38,17 +25,13 @@ def known_blend_problem(n_users=300, n_items=120, weights=TRUE, noise=0.05, seed
     """
     rng = np.random.default_rng(seed)
     rows = [(u, int(i)) for u in range(n_users) for i in rng.choice(n_items, 5, replace=False)]
-    train = pd.DataFrame(rows, columns=["user_idx", "item_idx"]).assign(timestamp=0.0, weight=np.float32(1.0))
-    catalog = Catalog.from_ids([f"i{j}" for j in range(n_items)])
-    user_ids = np.array([f"u{u}" for u in range(n_users)])
-    seen = Fold(catalog, user_ids, train, train.iloc[:0]).train_matrix
+    probe = synthetic_fold(n_users, n_items, pairs_frame(rows))
+    seen = probe.train_matrix
     raws = [rng.standard_normal((n_users, n_items)).astype(np.float32) for _ in weights]
     truth = sum(w * normalize(r, "zscore", seen).astype(np.float64) for w, r in zip(weights, raws))
     truth = truth + noise * rng.standard_normal(truth.shape)
-    truth[seen.toarray() > 0] = -np.inf
-    held = pd.DataFrame({"user_idx": np.arange(n_users), "item_idx": truth.argmax(axis=1), "timestamp": 0.0, "weight": np.float32(1.0)})
-    fold = Fold(catalog, user_ids, train, held)
-    return fold, {f"s{j}": FixedScores(r).fit(fold) for j, r in enumerate(raws)}
+    fold = argmax_heldout(probe, truth)
+    return fold, fixed_sources(fold, raws)
 
 
 @pytest.fixture(scope="module")

@@ -8,24 +8,13 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from xrec._jsonable import json_default
 from xrec.errors import XrecError
 
 
 def _print_json(payload: Any) -> None:
-    json.dump(payload, sys.stdout, indent=2, sort_keys=False, default=_json_default)
+    json.dump(payload, sys.stdout, indent=2, sort_keys=False, default=json_default)
     sys.stdout.write("\n")
-
-
-def _json_default(value: Any) -> Any:
-    import numpy as np
-
-    if isinstance(value, np.generic):
-        return value.item()
-    if isinstance(value, np.ndarray):
-        return value.tolist()
-    if isinstance(value, Path):
-        return str(value)
-    raise TypeError(f"not JSON-serializable: {type(value).__name__}")
 
 
 def _cmd_run(args: argparse.Namespace) -> int:

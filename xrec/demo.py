@@ -26,6 +26,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from xrec._jsonable import json_default
 from xrec.errors import ConfigError
 
 #: The sources of the demo: name -> (kind, settings).
@@ -255,7 +256,7 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
     }
     scorecard_path = out / "scorecards.json"
     tmp = scorecard_path.with_suffix(".json.tmp")
-    tmp.write_text(json.dumps(payload, indent=1, default=_json_default), encoding="utf-8")
+    tmp.write_text(json.dumps(payload, indent=1, default=json_default), encoding="utf-8")
     tmp.replace(scorecard_path)
 
     card = cards["learned blend"]
@@ -294,16 +295,6 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
     }
     report_path = charts_to_html(sections, "xrec demo shop report", out / "report.html", intro_html=intro)
     return {"scorecards": scorecard_path, "blend": blend_path, "report": report_path}
-
-
-def _json_default(value: Any) -> Any:
-    if isinstance(value, np.generic):
-        return value.item()
-    if isinstance(value, np.ndarray):
-        return value.tolist()
-    if isinstance(value, Path):
-        return str(value)
-    raise TypeError(f"not JSON-serializable: {type(value).__name__}")
 
 
 def _summary(cards, learned, gated, vs_best, best_single, paths, clock) -> dict[str, Any]:

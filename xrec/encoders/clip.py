@@ -18,32 +18,20 @@ from typing import Any
 
 import numpy as np
 
+from xrec.encoders._common import OnError, check_batching, check_on_error, text_problems, torch_threads
 from xrec.encoders.base import Encoder
 from xrec.encoders.image import (
     DEFAULT_MAX_PIXELS,
-    OnError,
     _BadImage,
     _check_contents,
-    _check_on_error,
     _decode,
     _file_sha256,
     _report,
-    _torch_threads,
     image_problems,
 )
 from xrec.errors import ConfigError, DataError
 
 _EXAMPLE_TAG = {"ViT-B-32": "laion2b_s34b_b79k", "ViT-B-16": "laion2b_s34b_b88k"}
-
-
-def _text_problems(contents: Sequence[Any]) -> dict[int, str]:
-    problems: dict[int, str] = {}
-    for i, text in enumerate(contents):
-        if not isinstance(text, str):
-            problems[i] = f"not a string ({type(text).__name__}: {text!r:.40})"
-        elif not text.strip():
-            problems[i] = f"empty text ({text!r:.40})"
-    return problems
 
 
 class ClipEncoders:
@@ -151,11 +139,8 @@ class ClipEncoders:
 
     def _check_settings(self) -> None:
         who = "clip"
-        _check_on_error(self.on_error, who)
-        if not isinstance(self.batch_size, int) or self.batch_size < 1:
-            raise ConfigError(f"{who}: batch_size must be a positive int, got {self.batch_size!r}")
-        if self.num_threads is not None and (not isinstance(self.num_threads, int) or self.num_threads < 1):
-            raise ConfigError(f"{who}: num_threads must be a positive int or None, got {self.num_threads!r}")
+        check_on_error(self.on_error, who)
+        check_batching(self.batch_size, self.num_threads, who)
         if self.weights is None and self.pretrained_tag is None:
             example = _EXAMPLE_TAG.get(self.model_name, "<tag>")
             raise ConfigError(
@@ -286,7 +271,7 @@ class _ClipPart(Encoder):
 
         who = f"clip {self.modality} encoder"
         policy = self.parent.on_error if on_error is None else on_error
-        _check_on_error(policy, who)
+        check_on_error(policy, who)
         contents = self._contents(contents, who)
         parent = self.parent.load()
         n = len(contents)
@@ -295,7 +280,7 @@ class _ClipPart(Encoder):
         _report(problems, n, policy, who, what)
         out = np.zeros((n, parent.dim), dtype=np.float32)
         ok = np.zeros(n, dtype=bool)
-        with tqdm(total=n, disable=not progress, unit=self.modality[:3], desc=who) as bar, _torch_threads(parent.num_threads):
+        with tqdm(total=n, disable=not progress, unit=self.modality[:3], desc=who) as bar, torch_threads(parent.num_threads):
             for start in range(0, n, parent.batch_size):
                 stop = min(start + parent.batch_size, n)
                 rows, batch = self._prepare(contents, range(start, stop), problems)
@@ -363,10 +348,10 @@ class ClipTextEncoder(_ClipPart):
 
     def problems(self, contents: Sequence[Any]) -> dict[int, str]:
         """Texts that are not strings or are blank, with reasons."""
-        return _text_problems(self._contents(contents, "clip text encoder"))
+        return text_problems(self._contents(contents, "clip text encoder"))
 
     def _prepare(self, contents: list[Any], rows: range, problems: dict[int, str]) -> tuple[list[int], Any]:
-        bad = _text_problems([contents[i] for i in rows])
+        bad = text_problems([contents[i] for i in rows])
         kept = [i for k, i in enumerate(rows) if k not in bad]
         for k, reason in bad.items():
             problems[rows[k]] = reason

