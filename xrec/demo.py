@@ -180,8 +180,8 @@ def run_demo(
         test_sources = _fit_sources(split.test, cache_dir, progress)
 
     with clock.step("learning blend weights on the validation split"):
-        valid_engine = BlendEngine(valid_sources, split.validation, "zscore", ks=KS, metric=METRIC).prepare()
-        test_engine = BlendEngine(test_sources, split.test, "zscore", ks=KS, metric=METRIC).prepare()
+        valid_engine = BlendEngine(valid_sources, split.validation, "zscore", ks=(10,), metric=METRIC).prepare()
+        test_engine = BlendEngine(test_sources, split.test, "zscore", ks=(10,), metric=METRIC).prepare()
         options = {"n_restarts": 1, "max_sweeps": 3} if quick else {"n_restarts": 4}
         learned = learn_weights(valid_engine, method="coordinate_ascent", seed=seed, test_fold=split.test,
                                 test_sources=test_sources, **options)
