@@ -62,11 +62,23 @@ def _load_files(spec: ExperimentSpec) -> Dataset:
     return Dataset(catalog, interactions, name=data.get("name", catalog_path.stem))
 
 
-def build_sources(spec: ExperimentSpec) -> dict[str, Source]:
-    """Unfitted sources, one per ``[sources.NAME]`` table."""
+def build_sources(spec: ExperimentSpec, *, progress: bool = False) -> dict[str, Source]:
+    """Unfitted sources, one per ``[sources.NAME]`` table.
+
+    With ``progress``, sources that can show their own bars (encoders, implicit models) do,
+    unless the spec sets their ``progress`` explicitly.
+    """
+    import inspect
+
+    from xrec.sources.base import _REGISTRY, source_kinds
+
+    source_kinds()  # registers the built-in kinds
     out = {}
     for name, table in spec.sources.items():
         settings = {k: v for k, v in table.items() if k != "kind"}
+        cls = _REGISTRY.get(table["kind"])
+        if progress and cls is not None and "progress" in inspect.signature(cls.__init__).parameters:
+            settings.setdefault("progress", True)
         try:
             out[name] = make_source(table["kind"], **settings)
         except ConfigError as exc:
@@ -120,7 +132,7 @@ def run_experiment(spec: ExperimentSpec, *, progress: bool = False, dataset: Dat
     dataset = dataset or load_spec_dataset(spec, progress=progress)
     split = split_dataset(dataset, **spec.split)
     fold = split.test
-    sources = build_sources(spec)
+    sources = build_sources(spec, progress=progress)
     for name, source in _progress(sources.items(), progress, "fitting sources"):
         source.fit(fold)
     scorers: dict[str, Any] = dict(sources)
@@ -175,7 +187,7 @@ def _build_blend(spec, table, sources, split, valid_sources, learned, name, prog
     if split.validation is None:
         raise ConfigError("weights = \"learn\" needs a validation split")
     # Weights are chosen on the validation fold, with sources fitted on its own training rows.
-    built = build_sources(spec)
+    built = build_sources(spec, progress=progress)
     for n in names:
         if n not in valid_sources:
             valid_sources[n] = built[n].fit(split.validation)
