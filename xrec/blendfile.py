@@ -1,9 +1,11 @@
 """Blend files: a TOML record of a chosen blend that a service can load and reproduce exactly.
 
-A blend file holds no learned numbers: it names the data (by fingerprint), the
-split that produced the training rows, each source's kind and settings, and how
-the sources are combined. :func:`xrec.runtime.load_blend` recreates the training
-fold, refits the sources and serves rankings identical to the in-memory blend.
+A blend file holds no fitted model state (no factors, vectors or similarities): it
+names the data (by fingerprint), the split that produced the training rows, each
+source's kind and settings, and how the sources are combined (normalizers and weights,
+which may have been learned, or a fusion rule). :func:`xrec.runtime.load_blend`
+recreates the training fold, refits the sources and serves rankings identical to the
+in-memory blend.
 
 Schema (format version 1)
 -------------------------
@@ -30,14 +32,14 @@ Schema (format version 1)
     cold_fraction = 0.1              # optional, float (rule "cold_items")
     cutoff = "q0.8"                  # optional, str or number (rule "time_cutoff")
     [split.record]                   # optional: the split's settings as produced (row counts,
-    n_interactions = 100836          #   resolved cutoffs, ...); on load every recorded value
+    n_interactions = 100004          #   resolved cutoffs, ...); on load every recorded value
                                      #   must equal the recreated split's, else FingerprintMismatch
 
     [combine]                        # required
     method = "weighted"              # "weighted" | "gated" | "rrf" | "combsum" | "combmnz"
     # gated:   head_min = 12 (int >= 1): fewest training interactions of a "head" item
     # rrf:     k = 60.0 (number > 0), depth = 100 (optional int >= 1; absent = all candidates)
-    # combsum: normalizer = "minmax"
+    # combsum: normalizer = "minmax" (any of "none"|"minmax"|"zscore"|"rank")
     # combmnz: normalizer = "minmax" | "rank", depth = 100
 
     [sources.als]                    # one table per source, at least one; order is kept
@@ -387,6 +389,16 @@ class BlendSpec:
 
 def read_blend(path: str | os.PathLike) -> BlendSpec:
     """Read and validate a blend file (no data needed).
+
+    Parameters
+    ----------
+    path
+        The TOML blend file.
+
+    Returns
+    -------
+    BlendSpec
+        The validated contents; :func:`xrec.runtime.load_blend` turns them into a fitted blend.
 
     Raises
     ------

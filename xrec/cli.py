@@ -70,13 +70,14 @@ def _cmd_recommend(args: argparse.Namespace) -> int:
 def _cmd_demo(args: argparse.Namespace) -> int:
     from xrec.demo import run_demo
 
-    summary = run_demo(output=Path(args.output), shop=args.shop, progress=not args.quiet, quick=args.quick)
+    summary = run_demo(output=Path(args.output), shop=args.shop, progress=not args.quiet and not args.json, quick=args.quick)
     if args.json:
         _print_json(summary)
     return 0
 
 
 def build_parser() -> argparse.ArgumentParser:
+    """The ``xrec`` argument parser with its subcommands (demo, run, compare, export, recommend)."""
     parser = argparse.ArgumentParser(
         prog="xrec",
         description="Prototype cross-modal recommenders: evaluate sources and blends offline, compare them, export the winner.",
@@ -125,7 +126,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("blend_file", help="blend file written by 'xrec export' or 'xrec demo'")
     p.add_argument("--user", action="append", required=True, help="user id (repeat for several)")
     p.add_argument("-k", type=int, default=10, help="list length (default: %(default)s)")
-    p.add_argument("--data", default=None, help="data folder, when the blend file's data is not at its recorded place")
+    p.add_argument("--data", default=None, help="folder the data moved to (a MovieLens or demo-shop folder, or the one holding the CSV files), when it is not where the blend file records")
     common(p)
     p.set_defaults(func=_cmd_recommend)
     return parser

@@ -145,7 +145,7 @@ def run_demo(
     quick
         A smaller weight search (for smoke tests); the numbers are less tuned.
     cache_dir
-        Embedding cache folder (default: the cache's default, ``.xrec-cache``).
+        Embedding cache folder (default: ``$XREC_CACHE_DIR``, else ``.xrec-cache``).
     seed
         Seed of the split, the searches and the resampling.
 
@@ -212,7 +212,7 @@ def run_demo(
     with clock.step("writing scorecards, blend file and report"):
         paths = _write_outputs(
             out, dataset, split, cards, learned, gated, vs_best, vs_pop, tastes, segments, blend, best_single,
-            charts=(charts_to_html, comparison_chart, metric_bars, weight_profile),
+            charts=(charts_to_html, comparison_chart, metric_bars, weight_profile), dataset_load=_load_hints(shop),
         )
 
     summary = _summary(cards, learned, gated, vs_best, best_single, paths, clock)
@@ -233,7 +233,17 @@ def _segment_chart(frame: pd.DataFrame):
     ).properties(width=320, title="Known items vs new items (no interactions in training)")
 
 
-def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, tastes, segments, blend, best_single, *, charts):
+def _load_hints(shop: str | Path | None) -> dict[str, str]:
+    """``[dataset.load]`` of the blend file: a shop other than the shipped one is named, so
+    ``xrec recommend`` loads the data the blend was made on."""
+    hints = {"dataset": "demo_shop"}
+    if shop is not None:
+        hints["folder"] = str(Path(shop).resolve())
+    return hints
+
+
+def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, tastes, segments, blend, best_single, *, charts,
+                   dataset_load):
     from xrec.blendfile import save_blend
 
     charts_to_html, comparison_chart, metric_bars, weight_profile = charts
@@ -269,7 +279,7 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
                        "rows": [r for r in vs_best.to_dict()["rows"] if r.get("candidate") == "learned blend"]},
     }
     blend_path = save_blend(out / "blend.toml", blend, dataset=dataset, split_settings=split.settings, fold="test",
-                            evidence=evidence, dataset_load={"dataset": "demo_shop"})
+                            evidence=evidence, dataset_load=dataset_load)
 
     row = vs_best.table
     row = row[(row["metric"] == METRIC) & (row["candidate"] == "learned blend")].iloc[0]

@@ -9,7 +9,7 @@ from typing import Any
 import pandas as pd
 
 from xrec.data.dataset import Dataset
-from xrec.errors import ConfigError
+from xrec.errors import ConfigError, DataError
 from xrec.spec import ExperimentSpec
 from xrec.sources.base import Source, make_source
 
@@ -40,8 +40,11 @@ def _load_files(spec: ExperimentSpec) -> Dataset:
     for key, p in (("catalog", catalog_path), ("interactions", inter_path)):
         if not p.is_file():
             raise ConfigError(f"data.{key}: file not found: {p}")
+    item_col = data.get("item_col", "item")
     catalog = Catalog.from_frame(
-        pd.read_csv(catalog_path),
+        # Ids are read as text in both files, else "007" in the catalog would become 7 and
+        # no longer match the interactions' "007".
+        _read_csv(catalog_path, "catalog", {item_col: str}),
         item_col=data.get("item_col", "item"),
         categorical=data.get("categorical", ()),
         multilabel=data.get("multilabel", ()),
@@ -50,7 +53,7 @@ def _load_files(spec: ExperimentSpec) -> Dataset:
         image=data.get("image"),
         image_root=spec.resolve(data.get("image_root", str(catalog_path.parent))),
     )
-    frame = pd.read_csv(inter_path, dtype={data.get("user_col", "user"): str, data.get("item_col", "item"): str})
+    frame = _read_csv(inter_path, "interactions", {data.get("user_col", "user"): str, item_col: str})
     interactions = Interactions.from_frame(
         frame,
         user_col=data.get("user_col", "user"),
@@ -60,6 +63,13 @@ def _load_files(spec: ExperimentSpec) -> Dataset:
         catalog=catalog,
     )
     return Dataset(catalog, interactions, name=data.get("name", catalog_path.stem))
+
+
+def _read_csv(path: Path, key: str, dtype: dict[str, type]) -> pd.DataFrame:
+    try:
+        return pd.read_csv(path, dtype=dtype)
+    except (pd.errors.EmptyDataError, pd.errors.ParserError, UnicodeDecodeError) as exc:
+        raise DataError(f"data.{key}: cannot read {path} as CSV: {exc}") from exc
 
 
 def build_sources(spec: ExperimentSpec, *, progress: bool = False) -> dict[str, Source]:
@@ -267,11 +277,17 @@ def export_spec(spec: ExperimentSpec, output: str | Path, *, scorer: str | None 
     """Run ``spec`` and write the blend file of one of its scorers (default: the primary)."""
     from xrec.blendfile import save_blend
 
+    # Checked before the (long) run, not after it.
+    output = Path(output)
+    if output.is_dir():
+        raise ConfigError(f"--output: {str(output)!r} is a folder; give the blend file's path, e.g. {str(output / 'blend.toml')!r}")
+    if not output.parent.is_dir():
+        raise ConfigError(f"--output: folder {str(output.parent)!r} does not exist")
     result = run_experiment(spec, progress=progress)
     name, blend = _scorer_for(result, scorer)
     evidence = evidence_summary(result, name)
     return save_blend(
-        Path(output), blend, dataset=result.dataset, split_settings=result.split.settings,
+        output, blend, dataset=result.dataset, split_settings=result.split.settings,
         evidence=evidence, fold="test", dataset_load=data_hints(spec),
     )
 
@@ -281,7 +297,8 @@ def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progre
     from xrec.evaluate import compare
 
     base = run_experiment(baseline, progress=progress)
-    cand = run_experiment(candidate, progress=progress, dataset=base.dataset if baseline.data == candidate.data else None)
+    # Relative paths are compared resolved: the same "items.csv" next to two specs may be two files.
+    cand = run_experiment(candidate, progress=progress, dataset=base.dataset if data_hints(baseline) == data_hints(candidate) else None)
     if base.dataset.fingerprint() != cand.dataset.fingerprint():
         raise ConfigError("the two specs read different data (dataset fingerprints differ); a paired comparison needs the same data")
     if base.split.settings != cand.split.settings:
@@ -308,6 +325,11 @@ def runtime_for_blend_file(path: str | Path, *, data_folder: str | None = None, 
         raise ConfigError(f"{path}: the blend file records no [dataset.load] hints; load it from Python with xrec.runtime.load_blend(path, dataset)")
     if data_folder is not None:
         hints["folder"] = data_folder
+        if hints.get("dataset") == "files":
+            # CSV files take no folder: look for the recorded file names in the given one.
+            for key in ("catalog", "interactions", "image_root"):
+                if isinstance(hints.get(key), str):
+                    hints[key] = str(Path(data_folder) / Path(hints[key]).name)
     spec = parse_spec({"data": hints, "sources": {"_": {"kind": "popularity"}}})
     dataset = load_spec_dataset(spec, progress=progress)
     return load_blend(path, dataset, progress=progress)

@@ -39,10 +39,12 @@ class Fold:
 
     @property
     def n_users(self) -> int:
+        """Number of users in the fold's user index."""
         return len(self.user_ids)
 
     @property
     def n_items(self) -> int:
+        """Number of catalog items."""
         return self.catalog.n_items
 
     def _matrix(self, rows: pd.DataFrame, values: np.ndarray) -> sp.csr_matrix:

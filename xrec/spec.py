@@ -24,9 +24,12 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     kind = "als"
     factors = 64
 
+    [sources.genres]
+    kind = "attributes"
+
     [blends.als_genres]
     normalizer = "zscore"        # one for all, or a table per source
-    weights = { als = 1.0, genres = 0.5 }
+    weights = { als = 1.0, genres = 0.3 }
 
     [blends.learned]             # weights learned on the validation split
     sources = ["als", "genres"]  # default: every source
@@ -41,7 +44,10 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
 For ``dataset = "files"`` the ``[data]`` table also takes ``catalog`` and
 ``interactions`` (CSV paths, relative to the spec file) and the column
 declarations ``item_col``, ``user_col``, ``time_col``, ``weight_col``,
-``categorical``, ``multilabel``, ``numeric``, ``text``, ``image``.
+``categorical``, ``multilabel``, ``numeric``, ``text``, ``image``, ``image_root`` and
+``name`` (defaults: ``item_col = "item"``, ``user_col = "user"``,
+``time_col = "timestamp"``, images relative to the catalog's folder, name = the catalog
+file's stem).
 """
 
 from __future__ import annotations
@@ -80,10 +86,12 @@ class ExperimentSpec:
 
     @property
     def ks(self) -> tuple[int, ...]:
+        """``evaluate.ks`` (default ``(10,)``)."""
         return tuple(self.evaluate.get("ks", (10,)))
 
     @property
     def baseline(self) -> str | None:
+        """``evaluate.baseline``: the scorer the others are compared with, or ``None``."""
         return self.evaluate.get("baseline")
 
     @property
@@ -94,6 +102,7 @@ class ExperimentSpec:
         return next(iter(self.blends)) if self.blends else next(iter(self.sources))
 
     def resolve(self, path: str) -> Path:
+        """``path`` made relative to the spec file's folder (absolute paths pass through)."""
         p = Path(path)
         return p if p.is_absolute() else self.base_dir / p
 
@@ -108,6 +117,12 @@ def _check_table(value: Any, where: str) -> dict:
     if not isinstance(value, dict):
         raise ConfigError(f"{where}: must be a table, got {type(value).__name__}")
     return value
+
+
+def _check_int(table: dict, key: str, lowest: int, where: str) -> None:
+    value = table.get(key, lowest)
+    if not isinstance(value, int) or isinstance(value, bool) or value < lowest:
+        raise ConfigError(f"{where}.{key}: must be an integer >= {lowest}, got {value!r}")
 
 
 def _check_blend(table: dict, where: str, sources: dict, *, learning_allowed: bool) -> None:
@@ -143,6 +158,9 @@ def _check_blend(table: dict, where: str, sources: dict, *, learning_allowed: bo
                 raise ConfigError(f"{where}.{key}: only for learned weights (weights = \"learn\")")
     if "gated" in table and not isinstance(table["gated"], bool):
         raise ConfigError(f"{where}.gated: must be true or false, got {table['gated']!r}")
+    if not isinstance(table.get("metric", ""), str):
+        raise ConfigError(f"{where}.metric: must be a string such as 'ndcg@10', got {table['metric']!r}")
+    _check_int(table, "seed", 0, where)
     norm = table.get("normalizer", "zscore")
     if not isinstance(norm, (str, dict)):
         raise ConfigError(f"{where}.normalizer: a name or a table per source, got {norm!r}")
@@ -169,6 +187,16 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
         raise ConfigError(f"evaluate.ks: must be a non-empty list of positive integers, got {ks!r}")
     if evaluate.get("protocol", "full") not in ("full", "sampled"):
         raise ConfigError(f"evaluate.protocol: must be 'full' or 'sampled', got {evaluate.get('protocol')!r}")
+    metrics = evaluate.get("metrics", ["hit_rate"])
+    if not isinstance(metrics, list) or not metrics or not all(isinstance(m, str) for m in metrics):
+        raise ConfigError(f"evaluate.metrics: must be a non-empty list of metric names, got {metrics!r}")
+    from xrec.evaluate._metrics import ALL_METRICS
+
+    unknown = [m for m in metrics if m not in ALL_METRICS]
+    if unknown:
+        raise ConfigError(f"evaluate.metrics: unknown metric name(s) {unknown}; known: {list(ALL_METRICS)}")
+    for key, lowest in (("chunk_size", 1), ("negatives", 1), ("seed", 0)):
+        _check_int(evaluate, key, lowest, "evaluate")
     sources = _check_table(raw.get("sources", {}), "sources")
     if not sources:
         raise ConfigError("sources: at least one [sources.NAME] table is needed")

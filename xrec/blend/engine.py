@@ -90,6 +90,7 @@ class UserSample:
 
     @property
     def n_strata(self) -> int:
+        """Number of strata the users were drawn from."""
         return len(self.population)
 
     def estimate(self, values: np.ndarray, level: float = 0.95) -> tuple[float, float, float]:

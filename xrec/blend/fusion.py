@@ -88,6 +88,7 @@ class ReciprocalRankFusion(Fusion):
         self.depth = _check_depth(depth, "depth", optional=True)
 
     def get_params(self) -> dict[str, Any]:
+        """Settings as passed to ``__init__`` (written to blend files)."""
         return {"k": self.k, "depth": self.depth}
 
     def score(self, users: np.ndarray) -> np.ndarray:
@@ -124,6 +125,7 @@ class CombSum(Fusion):
         self.normalizer = check_normalizer(normalizer, "normalizer")
 
     def get_params(self) -> dict[str, Any]:
+        """Settings as passed to ``__init__`` (written to blend files)."""
         return {"normalizer": self.normalizer}
 
     def score(self, users: np.ndarray) -> np.ndarray:
@@ -162,6 +164,7 @@ class CombMNZ(Fusion):
         self.depth = _check_depth(depth, "depth", optional=False)
 
     def get_params(self) -> dict[str, Any]:
+        """Settings as passed to ``__init__`` (written to blend files)."""
         return {"normalizer": self.normalizer, "depth": self.depth}
 
     def score(self, users: np.ndarray) -> np.ndarray:
@@ -182,7 +185,18 @@ _RULES: dict[str, type[Fusion]] = {cls.method: cls for cls in (ReciprocalRankFus
 
 
 def make_fusion(method: str, sources: Mapping[str, Any], **params: Any) -> Fusion:
-    """Build a fusion rule by its name (``"rrf"``, ``"combsum"``, ``"combmnz"``)."""
+    """Build a fusion rule by its name (``"rrf"``, ``"combsum"``, ``"combmnz"``).
+
+    Parameters
+    ----------
+    method
+        ``"rrf"`` (:class:`ReciprocalRankFusion`), ``"combsum"`` (:class:`CombSum`) or
+        ``"combmnz"`` (:class:`CombMNZ`).
+    sources
+        Name -> source.
+    **params
+        That rule's settings (``k``, ``depth``, ``normalizer``); others give a :class:`ConfigError`.
+    """
     if method not in _RULES:
         raise ConfigError(f"method: unknown fusion rule {method!r}; choose one of {list(FUSION_METHODS)}")
     cls = _RULES[method]

@@ -42,13 +42,16 @@ class CatalogSchema:
 
     @property
     def attribute_columns(self) -> tuple[str, ...]:
+        """Categorical, multilabel and numeric columns, in that order."""
         return self.categorical + self.multilabel + self.numeric
 
     @property
     def columns(self) -> tuple[str, ...]:
+        """Every declared column: attributes, then text, then the image column."""
         return self.attribute_columns + self.text + ((self.image,) if self.image else ())
 
     def to_dict(self) -> dict:
+        """The schema as a plain dict (lists of column names)."""
         out: dict = {
             "categorical": list(self.categorical),
             "multilabel": list(self.multilabel),
@@ -100,11 +103,28 @@ class Catalog:
     ) -> Catalog:
         """Validate ``frame`` and build a catalog.
 
+        Parameters
+        ----------
+        frame
+            One row per item; undeclared columns are kept but not used as content.
+        item_col
+            Column of item ids (stored as str, renamed ``item``).
+        categorical, multilabel, numeric, text, image
+            Columns per modality (see :class:`CatalogSchema`). Multilabel cells may be
+            ``multilabel_sep``-joined strings (``"a|b|c"``) or lists; labels are stored as sorted tuples.
+        image_root
+            Folder that relative image paths are read from.
+        multilabel_sep
+            Separator of labels in multilabel strings.
+        check_images
+            Check that every image file exists.
+
         Raises
         ------
         DataError
-            On an empty frame, missing or unknown columns, duplicate or missing item ids,
-            NaN in numeric columns, non-numeric numeric columns, or missing image files.
+            On an empty frame, a column declared twice, missing declared columns, duplicate
+            or missing item ids, non-numeric, NaN or infinite values in numeric columns,
+            missing categorical values, non-string text, or missing image files.
         """
         if not isinstance(frame, pd.DataFrame):
             raise DataError(f"catalog must be a pandas DataFrame, got {type(frame).__name__}")
@@ -159,10 +179,12 @@ class Catalog:
 
     @property
     def item_ids(self) -> np.ndarray:
+        """Item ids (str) in catalog order; position = item index."""
         return self.items[ITEM].to_numpy()
 
     @property
     def n_items(self) -> int:
+        """Number of catalog items."""
         return len(self.items)
 
     def __len__(self) -> int:
@@ -177,6 +199,7 @@ class Catalog:
         return np.fromiter((self._positions[i] for i in ids), dtype=np.int64, count=len(ids))
 
     def image_path(self, position: int) -> Path:
+        """Path of the image of the item at ``position``, resolved against ``image_root``."""
         if not self.schema.image:
             raise DataError("catalog declares no image column")
         p = Path(str(self.items[self.schema.image].iat[position]))

@@ -15,6 +15,10 @@ class Dataset:
 
     Parameters
     ----------
+    catalog
+        The items.
+    interactions
+        The events; every item they name must be in ``catalog`` (else :class:`DataError`).
     name
         Short label used in reports and blend files.
     """

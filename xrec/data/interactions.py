@@ -44,6 +44,12 @@ class Interactions:
 
         Parameters
         ----------
+        frame
+            One row per (user, item) event.
+        user_col, item_col
+            Columns of user and item ids (stored as str).
+        time_col
+            Column of timestamps: numbers (read as seconds) or datetimes (converted to epoch seconds).
         weight_col
             Optional column of ratings or strengths; missing means weight 1.
         catalog
@@ -108,6 +114,7 @@ class Interactions:
 
     @property
     def n_users(self) -> int:
+        """Number of distinct users."""
         return int(self.frame[USER].nunique())
 
     def fingerprint(self) -> str:

@@ -33,4 +33,5 @@ class Encoder(ABC):
 
     @property
     def cache_key(self) -> str:
+        """``identity@version``: the key of this encoder's folder in the embedding cache."""
         return f"{self.identity}@{self.version}"

@@ -151,18 +151,22 @@ class ImageNetProbsEncoder(Encoder):
 
     @property
     def identity(self) -> str:  # type: ignore[override]
+        """The base encoder's identity with a ``:class-probs`` suffix."""
         return f"{self.base.identity}:class-probs"
 
     @property
     def version(self) -> str:  # type: ignore[override]
+        """The base encoder's version."""
         return self.base.version
 
     @property
     def on_error(self) -> str:
+        """The base encoder's ``on_error`` policy (``"raise"`` when it has none)."""
         return getattr(self.base, "on_error", "raise")
 
     @property
     def dim(self) -> int:
+        """Number of ImageNet classes (vector length)."""
         return int(getattr(self.base, "n_classes", 1000))
 
     def problems(self, contents: Sequence[Any]) -> dict[int, str]:
@@ -215,10 +219,12 @@ class _FeaturesKeepingProbs(Encoder):
 
     @property
     def version(self) -> str:  # type: ignore[override]
+        """The base encoder's version."""
         return self.base.version
 
     @property
     def on_error(self) -> str:
+        """The base encoder's ``on_error`` policy (``"raise"`` when it has none)."""
         return getattr(self.base, "on_error", "raise")
 
     @property

@@ -392,10 +392,12 @@ class EfficientNetLite0Encoder(Encoder):
 
     @property
     def identity(self) -> str:  # type: ignore[override]
+        """Architecture plus the first 16 hex digits of the weights file's hash."""
         return f"efficientnet-lite0-in1k:{_ARCH}:{self._weights_hash()[:16]}"
 
     @property
     def dim(self) -> int:
+        """Length of the pooled feature vector (1280)."""
         return 1280
 
     def _weights_file(self) -> Path:

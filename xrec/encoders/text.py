@@ -114,18 +114,21 @@ class MiniLMTextEncoder(Encoder):
 
     @property
     def identity(self) -> str:  # type: ignore[override]
+        """The packaged all-MiniLM-L6-v2 model, or the resolved ``model_dir``."""
         if self.model_dir is None:
             return _DEFAULT_IDENTITY
         return f"sentence-transformers:{Path(self.model_dir).resolve()}"
 
     @property
     def version(self) -> str:  # type: ignore[override]
+        """``"1"``, with a ``+seq<N>`` suffix when ``max_seq_length`` is not the default."""
         # Bump the leading number whenever pooling, normalization or preprocessing change.
         seq = self.max_seq_length or _DEFAULT_MAX_SEQ_LENGTH
         return "1" if seq == _DEFAULT_MAX_SEQ_LENGTH else f"1+seq{seq}"
 
     @property
     def dim(self) -> int:
+        """Vector length (384 for the packaged model)."""
         if self.model_dir is None and not hasattr(self, "model_"):
             return 384
         model = self.load().model_

@@ -64,6 +64,7 @@ class BlockRanks:
 
     @property
     def n_rows(self) -> int:
+        """Number of users (rows) in the block."""
         return len(self.indptr) - 1
 
     @property

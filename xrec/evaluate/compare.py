@@ -84,6 +84,12 @@ def _unique_names(cards: Sequence[Scorecard]) -> list[str]:
     return names
 
 
+def _settings_difference(a: dict, b: dict) -> str:
+    a, b = plain(a), plain(b)
+    keys = [k for k in dict.fromkeys([*a, *b]) if a.get(k) != b.get(k)]
+    return ", ".join(f"{k}: {a.get(k)!r} vs {b.get(k)!r}" for k in keys[:3])
+
+
 def compare(
     baseline: Scorecard,
     *candidates: Scorecard,
@@ -125,7 +131,7 @@ def compare(
     ConfigError
         No candidates, bad settings, or metrics missing from a scorecard.
     DataError
-        Scorecards cover different users.
+        Scorecards cover different users, or record different fold settings.
     """
     if not candidates:
         raise ConfigError("compare needs at least one candidate scorecard besides the baseline")
@@ -138,6 +144,14 @@ def compare(
         raise ConfigError(f"n_resamples must be a positive int, got {n_resamples!r}")
     if baseline.protocol != candidates[0].protocol or any(c.protocol != baseline.protocol for c in candidates):
         raise ConfigError(f"scorecards were evaluated under different protocols: {[c.protocol for c in cards]}")
+
+    for name, card in zip(_unique_names(cards)[1:], candidates):
+        # Same users are not enough: a validation and a test scorecard share most users.
+        if baseline.fold_settings and card.fold_settings and plain(card.fold_settings) != plain(baseline.fold_settings):
+            raise DataError(
+                f"scorecard {name!r} was evaluated on another fold than baseline {baseline.name!r} "
+                f"(fold settings differ: {_settings_difference(baseline.fold_settings, card.fold_settings)})"
+            )
 
     base_users = np.sort(baseline.users)
     for name, card in zip(_unique_names(cards)[1:], candidates):

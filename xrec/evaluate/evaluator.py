@@ -22,7 +22,16 @@ DEFAULT_METRICS = ("hit_rate", "ndcg", "recall", "mrr", "coverage", "popularity"
 
 
 def as_score_fn(scorer: Any, n_users: int | None = None, n_items: int | None = None) -> ScoreFn:
-    """Turn a dense array, an object with ``.score(users)`` or a callable into ``f(users) -> block``."""
+    """Turn a dense array, an object with ``.score(users)`` or a callable into ``f(users) -> block``.
+
+    Parameters
+    ----------
+    scorer
+        A 2-D ``(users × items)`` score array, an object with a ``score(users)`` method, or a
+        callable ``f(users) -> block``.
+    n_users, n_items
+        The fold's shape; when both are given, an array scorer must have exactly this shape.
+    """
     if isinstance(scorer, np.ndarray):
         if scorer.ndim != 2:
             raise DataError(f"score array must be 2-D (users × items), got shape {scorer.shape}")

@@ -21,6 +21,7 @@ class FullRanking:
     """Every catalog item the user did not interact with in training is a candidate (default)."""
 
     def describe(self) -> dict:
+        """The protocol as a plain dict (kept in scorecards)."""
         return {"kind": "full_ranking"}
 
 
@@ -53,6 +54,7 @@ class SampledNegatives:
             raise ConfigError(f"SampledNegatives.seed must be a non-negative int, got {self.seed!r}")
 
     def describe(self) -> dict:
+        """The protocol as a plain dict (kept in scorecards)."""
         return {"kind": "sampled_negatives", "n_negatives": int(self.n_negatives), "seed": int(self.seed)}
 
     def sample(

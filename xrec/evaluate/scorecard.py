@@ -71,10 +71,12 @@ class Scorecard:
 
     @property
     def n_users(self) -> int:
+        """Number of evaluated users."""
         return len(self.per_user)
 
     @property
     def users(self) -> np.ndarray:
+        """Evaluated user indices, in ``per_user`` order."""
         return self.per_user["user"].to_numpy()
 
     @property
@@ -95,6 +97,15 @@ class Scorecard:
         replacement ``n_resamples`` times (seeded) and the ``(1±confidence)/2``
         percentiles of the resampled means are reported. List-level metrics
         (coverage) are one number for the whole user set and get no interval.
+
+        Parameters
+        ----------
+        confidence
+            Level of the intervals, in (0, 1).
+        seed
+            Seed of the user resamples.
+        n_resamples
+            Bootstrap resamples.
 
         Returns
         -------

@@ -159,6 +159,18 @@ def wilson_interval(hits: np.ndarray, n: np.ndarray, confidence: float = 0.95) -
     """Wilson score interval of a binomial proportion (Wilson, JASA 22, 1927), vectorized.
 
     ``n == 0`` gives NaN bounds.
+
+    Parameters
+    ----------
+    hits, n
+        Successes and trials (arrays of the same shape).
+    confidence
+        Two-sided level of the interval.
+
+    Returns
+    -------
+    (np.ndarray, np.ndarray)
+        Lower and upper bounds.
     """
     from scipy.stats import norm
 
@@ -419,6 +431,8 @@ def segment_bars(
         is required and the frame is computed with ``k``, ``edges`` and ``confidence``).
     fold
         The fold, when scorers are given.
+    k, edges, confidence
+        Passed to :func:`segment_hit_rates` when scorers are given; ignored for a frame.
     baseline
         Scorer drawn in the baseline colour.
     title

@@ -42,7 +42,15 @@ def _fmt(value: Any, spec: str = ".4f") -> str:
 
 
 def scorecard_html(card: Any, *, confidence: float = 0.95, n_resamples: int = 2000, seed: int = 0) -> str:
-    """HTML of a :class:`~xrec.evaluate.Scorecard`: rows metric, columns K, cells ``mean [low, high]``."""
+    """HTML of a :class:`~xrec.evaluate.Scorecard`: rows metric, columns K, cells ``mean [low, high]``.
+
+    Parameters
+    ----------
+    card
+        The scorecard.
+    confidence, n_resamples, seed
+        Level, resamples and seed of the bootstrap intervals (passed to ``Scorecard.summary``).
+    """
     summary = card.summary(confidence=confidence, seed=seed, n_resamples=n_resamples)
     cells: dict[str, dict[str, str]] = {}
     ks: list[str] = []

@@ -66,9 +66,11 @@ class LowRankSource(Source):
 
     @property
     def is_low_rank(self) -> bool:
+        """Always ``True``: scores are ``user_factors_[users] @ item_factors_.T``."""
         return True
 
     def score(self, users: np.ndarray) -> np.ndarray:
+        """``user_factors_[users] @ item_factors_.T`` as float32, shape ``(len(users), n_items)``."""
         self._check_fitted()
         users = np.asarray(users)
         return np.ascontiguousarray(self.user_factors_[users] @ self.item_factors_.T, dtype=np.float32)
@@ -82,7 +84,20 @@ def source_kinds() -> list[str]:
 
 
 def make_source(kind: str, **params: Any) -> Source:
-    """Build a source by its kind name; unknown kinds or settings give a :class:`ConfigError`."""
+    """Build a source by its kind name; unknown kinds or settings give a :class:`ConfigError`.
+
+    Parameters
+    ----------
+    kind
+        A registered kind (see :func:`source_kinds`), e.g. ``"als"``, ``"attributes"``, ``"text"``.
+    **params
+        Keyword arguments of that source class's ``__init__``.
+
+    Returns
+    -------
+    Source
+        The unfitted source.
+    """
     import xrec.sources  # noqa: F401
 
     if kind not in _REGISTRY:
