@@ -104,3 +104,32 @@ def test_help_everywhere():
     for args in ([], ["run"], ["compare"], ["export"], ["recommend"], ["demo"]):
         proc = subprocess.run([sys.executable, "-m", "xrec.cli", *args, "--help"], capture_output=True, text=True)
         assert proc.returncode == 0 and "usage: xrec" in proc.stdout
+
+
+def test_export_checks_the_output_path_before_running(tmp_path, capsys, monkeypatch):
+    # A missing folder used to surface as a FileNotFoundError traceback, after the whole run.
+    import xrec.experiment
+
+    spec = _write_files_spec(tmp_path)
+    monkeypatch.setattr(xrec.experiment, "run_experiment", lambda *a, **k: pytest.fail("ran before checking the output"))
+    assert main(["export", str(spec), "-o", str(tmp_path / "nowhere" / "mix.toml"), "-q"]) == 2
+    err = capsys.readouterr().err
+    assert "--output" in err and "does not exist" in err and "Traceback" not in err
+    assert main(["export", str(spec), "-o", str(tmp_path), "-q"]) == 2
+    assert "is a folder" in capsys.readouterr().err
+
+
+def test_recommend_finds_moved_csv_files_with_data(tmp_path, capsys):
+    # --data used to be ignored for CSV ("files") datasets: the recorded paths were read anyway.
+    spec = _write_files_spec(tmp_path)
+    blend_path = tmp_path / "mix.toml"
+    assert main(["export", str(spec), "-o", str(blend_path), "-q"]) == 0
+    moved = tmp_path / "moved"
+    moved.mkdir()
+    for name in ("events.csv", "items.csv"):
+        (tmp_path / name).rename(moved / name)
+    capsys.readouterr()
+    assert main(["recommend", str(blend_path), "--user", "u1", "-k", "3", "--json", "-q"]) == 2
+    assert "file not found" in capsys.readouterr().err
+    assert main(["recommend", str(blend_path), "--user", "u1", "-k", "3", "--json", "-q", "--data", str(moved)]) == 0
+    assert len(json.loads(capsys.readouterr().out)["u1"]) == 3

@@ -146,3 +146,15 @@ def test_compare_works_on_scorecards_read_back_from_dicts(paired):
     direct = compare(a, b, n_resamples=1000).table
     again = compare(Scorecard.from_dict(a.to_dict()), Scorecard.from_dict(b.to_dict()), n_resamples=1000).table
     pd.testing.assert_frame_equal(direct, again)
+
+
+def test_scorecards_of_different_folds_are_refused():
+    # Same users, different folds (a validation and a test scorecard): pairing them is meaningless.
+    values = {"ndcg@10": np.linspace(0, 1, 20)}
+    a, b = card("a", values), card("b", values)
+    a.fold_settings = {"rule": "leave_last", "part": "validation"}
+    b.fold_settings = {"rule": "leave_last", "part": "test"}
+    with pytest.raises(DataError, match="another fold.*part: 'validation' vs 'test'"):
+        compare(a, b, n_resamples=10)
+    b.fold_settings = dict(a.fold_settings)
+    assert len(compare(a, b, n_resamples=10).table) == 1

@@ -48,3 +48,20 @@ def test_blend_beats_every_single_source(demo):
     assert best["ci_low"] > 0, best
     singles = {name: summary["test"][name] for name in DEMO_SOURCES}
     assert summary["test"]["learned blend"] > max(singles.values())
+
+
+def test_blend_file_of_another_shop_records_its_folder(tmp_path, monkeypatch):
+    # The blend file's [dataset.load] used to say only "demo_shop", so `xrec recommend` on a
+    # blend made with --shop loaded the shipped shop and failed its fingerprint check.
+    from xrec.demo import _load_hints
+    from xrec.errors import XrecError
+    from xrec.experiment import load_spec_dataset
+    from xrec.spec import parse_spec
+
+    monkeypatch.chdir(tmp_path)
+    assert _load_hints(None) == {"dataset": "demo_shop"}
+    hints = _load_hints("my-shop")
+    assert hints == {"dataset": "demo_shop", "folder": str(tmp_path / "my-shop")}
+    spec = parse_spec({"data": hints, "sources": {"_": {"kind": "popularity"}}})
+    with pytest.raises(XrecError, match="my-shop"):
+        load_spec_dataset(spec)

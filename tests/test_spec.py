@@ -2,10 +2,11 @@
 
 from __future__ import annotations
 
+import pandas as pd
 import pytest
 
-from xrec.errors import ConfigError
-from xrec.experiment import run_experiment
+from xrec.errors import ConfigError, DataError
+from xrec.experiment import compare_specs, run_experiment
 from xrec.spec import builtin_specs, load_spec, parse_spec
 
 from test_cli import _write_files_spec
@@ -86,3 +87,64 @@ k = 10
     assert learned["validation"] >= learned["best_single_validation"] - 1e-12
     assert set(result.extras["learned"]["gated"]["band_weights"]) == {"new", "tail", "head"}
     assert result.scorers["rrf"].get_params()["k"] == 10
+
+
+@pytest.mark.parametrize(
+    ("evaluate", "blend", "field"),
+    [
+        ({"chunk_size": "big"}, None, "evaluate.chunk_size"),
+        ({"negatives": 0, "protocol": "sampled"}, None, "evaluate.negatives"),
+        ({"seed": 1.5}, None, "evaluate.seed"),
+        ({"metrics": "ndcg"}, None, "evaluate.metrics"),
+        ({"metrics": ["ndgc"]}, None, "evaluate.metrics"),
+        ({}, {"weights": "learn", "metric": 10}, "blends.mix.metric"),
+        ({}, {"weights": "learn", "seed": "a"}, "blends.mix.seed"),
+    ],
+)
+def test_evaluate_and_learning_settings_are_checked_when_parsed(evaluate, blend, field):
+    # Before: ValueError / AttributeError tracebacks (or a metric list split into letters),
+    # raised only after every source was fitted.
+    raw = {**_raw(**(blend or {"weights": {"a": 1.0}})), "evaluate": evaluate}
+    with pytest.raises(ConfigError, match=field.replace(".", r"\.")):
+        parse_spec(raw)
+
+
+def _tiny_files(folder, ids, item_ids=None):
+    # Three users, four items each, leave-last split (behaviour test, not a reference).
+    folder.mkdir(exist_ok=True)
+    items = item_ids or ids
+    rows = [{"user": f"u{u}", "item": items[(u + j) % len(items)], "timestamp": 10 * u + j} for u in range(3) for j in range(4)]
+    pd.DataFrame(rows).to_csv(folder / "events.csv", index=False)
+    pd.DataFrame({"item": ids}).to_csv(folder / "items.csv", index=False)
+    spec = folder / "spec.toml"
+    spec.write_text(
+        '[data]\ndataset = "files"\ncatalog = "items.csv"\ninteractions = "events.csv"\n'
+        '[evaluate]\nks = [2]\n[sources.pop]\nkind = "popularity"\n',
+        encoding="utf-8",
+    )
+    return spec
+
+
+def test_item_ids_with_leading_zeros_match_between_catalog_and_interactions(tmp_path):
+    # The catalog's id column used to be parsed as numbers ("007" -> 7) while the interactions'
+    # was read as text, so every interaction named an item "not in the catalog".
+    spec = _tiny_files(tmp_path, ["001", "002", "003", "004", "005", "006"])
+    result = run_experiment(load_spec(spec))
+    assert list(result.dataset.catalog.item_ids) == ["001", "002", "003", "004", "005", "006"]
+    assert result.scorecards["pop"].n_users == 3
+
+
+def test_unreadable_csv_is_a_data_error(tmp_path):
+    spec = _tiny_files(tmp_path, ["a", "b", "c", "d", "e"])
+    (tmp_path / "events.csv").write_text("", encoding="utf-8")
+    with pytest.raises(DataError, match=r"data\.interactions: cannot read"):
+        run_experiment(load_spec(spec))
+
+
+def test_compare_specs_reads_each_specs_own_files(tmp_path):
+    # Two specs with the same relative paths in different folders name different data; the
+    # candidate used to be run on the baseline's data (and compared with itself).
+    a = _tiny_files(tmp_path / "a", ["a", "b", "c", "d", "e"])
+    b = _tiny_files(tmp_path / "b", ["a", "b", "c", "d", "e", "f"])
+    with pytest.raises(ConfigError, match="different data"):
+        compare_specs(load_spec(a), load_spec(b))

@@ -110,6 +110,20 @@ def test_time_cutoff_quantile_keeps_ties_together():
         assert result.test.train["timestamp"].max() < 2.0 <= result.test.heldout["timestamp"].min()
 
 
+@pytest.mark.parametrize("share", [0.29, 0.57, 0.58, 0.8])
+def test_time_cutoff_share_is_not_cut_short_by_rounding(share):
+    # 100 rows at distinct times 0..99: a share q keeps exactly round(100 q) rows before the
+    # cutoff (plain arithmetic). In floating point 0.29 * 100 = 28.999999999999996, which
+    # used to floor to 28 and move one more row to the held-out side.
+    t = np.arange(100)
+    frame = pd.DataFrame({"user": [f"u{x % 10}" for x in t], "item": [f"i{x // 10}" for x in t], "timestamp": t})
+    catalog = Catalog.from_ids([f"i{j}" for j in range(10)])
+    ds = Dataset(catalog, Interactions.from_frame(frame, catalog=catalog), name="grid")
+    result = split_dataset(ds, "time_cutoff", cutoff=share, validation=False)
+    assert len(result.test.train) == round(100 * share)
+    assert result.settings["test_cutoff_time"] == float(round(100 * share))
+
+
 def test_time_cutoff_date_string_is_utc():
     ds = Dataset(
         Catalog.from_ids(["a", "b"]),

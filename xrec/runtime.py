@@ -176,8 +176,9 @@ def load_blend(path: str | os.PathLike, dataset: Dataset, *, progress: bool = Fa
         if digest != spec.check["digest"]:
             raise FingerprintMismatch(
                 f"check.digest: the refitted blend ranks the first {spec.check['users']} users differently than "
-                f"when the file was written ({digest!r} != {spec.check['digest']!r}); a source may not be "
-                "deterministic or library versions differ (load_blend(..., verify=False) serves anyway)"
+                f"when the file was written ({digest!r} != {spec.check['digest']!r}); the file was edited after it "
+                "was written, a source is not deterministic, or library versions differ "
+                "(load_blend(..., verify=False) serves anyway)"
             )
     return BlendRuntime(spec=spec, dataset=dataset, fold=fold, scorer=scorer)
 

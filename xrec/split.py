@@ -296,7 +296,8 @@ def _apply(rule, rows: _Rows, n_users, seed, fraction, cutoff, cold_fraction, mi
         kind, value = _parse_cutoff(cutoff, fraction)
         if kind == "share":
             ordered = np.sort(rows.time, kind="stable")
-            position = min(int(math.floor(value * len(rows))), len(rows) - 1)
+            # Rounded first: 0.29 * 100 is 28.999999999999996 in floating point, not 29.
+            position = min(int(math.floor(round(value * len(rows), 6))), len(rows) - 1)
             at = float(ordered[position])
         else:
             at = value
