@@ -133,3 +133,9 @@ def test_recommend_finds_moved_csv_files_with_data(tmp_path, capsys):
     assert "file not found" in capsys.readouterr().err
     assert main(["recommend", str(blend_path), "--user", "u1", "-k", "3", "--json", "-q", "--data", str(moved)]) == 0
     assert len(json.loads(capsys.readouterr().out)["u1"]) == 3
+
+
+def test_recommend_rejects_k_below_one_before_loading(tmp_path, capsys):
+    # The blend file does not even exist: -k is checked before any refit.
+    assert main(["recommend", str(tmp_path / "absent.toml"), "--user", "u1", "-k", "0"]) == 2
+    assert "-k: must be at least 1" in capsys.readouterr().err

@@ -200,7 +200,7 @@ def test_interactions_missing_ids():
 def test_interactions_bad_timestamps():
     events = _events().astype({"ts": object})
     events.loc[2, "ts"] = "yesterday"
-    with pytest.raises(DataError, match=r"1 row has a non-numeric timestamp in 'ts': row 2: uid='u2', sku='a', ts='yesterday'"):
+    with pytest.raises(DataError, match=r"1 row has a timestamp that is neither a number nor a date in 'ts': row 2: uid='u2', sku='a', ts='yesterday'"):
         Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts")
     events = _events().astype({"ts": float})
     events.loc[[0, 3], "ts"] = np.nan
@@ -289,3 +289,13 @@ def test_dataset_checks_items_against_catalog():
     stray = Interactions.from_frame(_events().assign(sku=["a", "b", "q", "c"]), user_col="uid", item_col="sku", time_col="ts")
     with pytest.raises(DataError, match=r"^1 interaction names an item missing from the catalog, first: \['q'\]$"):
         Dataset(cat, stray)
+
+
+def test_date_string_timestamps_become_epoch_seconds():
+    frame = pd.DataFrame({"user": ["u1", "u2", "u3"], "item": ["a", "b", "c"],
+                          "timestamp": ["2024-05-01", "2024-05-01T12:00:00+02:00", "1714521600"]})
+    got = Interactions.from_frame(frame).frame.set_index("user")["timestamp"]
+    # Reference: the standard library's datetime, independent of pandas' parser.
+    assert got["u1"] == dt.datetime(2024, 5, 1, tzinfo=dt.timezone.utc).timestamp()
+    assert got["u2"] == dt.datetime(2024, 5, 1, 10, tzinfo=dt.timezone.utc).timestamp()
+    assert got["u3"] == 1714521600.0

@@ -54,8 +54,11 @@ def _cmd_export(args: argparse.Namespace) -> int:
 
 
 def _cmd_recommend(args: argparse.Namespace) -> int:
+    from xrec.errors import ConfigError
     from xrec.experiment import runtime_for_blend_file
 
+    if args.k < 1:  # checked before the refit, which can take a while
+        raise ConfigError(f"-k: must be at least 1, got {args.k}")
     runtime = runtime_for_blend_file(args.blend_file, data_folder=args.data, progress=not args.quiet and not args.json)
     frames = {user: runtime.recommend(user, k=args.k) for user in args.user}
     if args.json:
@@ -139,6 +142,9 @@ def main(argv: list[str] | None = None) -> int:
     try:
         return int(args.func(args) or 0)
     except XrecError as exc:
+        print(f"xrec: error: {exc}", file=sys.stderr)
+        return 2
+    except OSError as exc:  # unreadable or unwritable files: say which, without a traceback
         print(f"xrec: error: {exc}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:

@@ -78,7 +78,7 @@ class Interactions:
         raise_if_any(raw, raw[user_col].isna(), "have no user id", [user_col, item_col], "interactions")
         raise_if_any(raw, raw[item_col].isna(), "have no item id", [user_col, item_col], "interactions")
         times = _to_seconds(raw[time_col])
-        raise_if_any(raw, np.isnan(times) & raw[time_col].notna().to_numpy(), f"have a non-numeric timestamp in {time_col!r}", needed, "interactions")
+        raise_if_any(raw, np.isnan(times) & raw[time_col].notna().to_numpy(), f"have a timestamp that is neither a number nor a date in {time_col!r}", needed, "interactions")
         raise_if_any(raw, np.isnan(times), f"have no timestamp in {time_col!r}", needed, "interactions")
         raise_if_any(raw, np.isinf(times), f"have an infinite timestamp in {time_col!r}", needed, "interactions")
         if weight_col:
@@ -129,10 +129,17 @@ class Interactions:
 
 
 def _to_seconds(col: pd.Series) -> np.ndarray:
-    """Timestamps as float seconds: numbers pass through, datetimes become epoch seconds."""
+    """Timestamps as float seconds: numbers pass through; datetimes and date strings become epoch seconds."""
     if pd.api.types.is_datetime64_any_dtype(col):
         # Subtracting the epoch works whatever the stored unit (pandas 3 defaults to us, not ns)
         # and whether or not the column carries a time zone; NaT becomes NaN.
         epoch = pd.Timestamp(0, tz=getattr(col.dt, "tz", None))
         return ((col - epoch) / pd.Timedelta(1, "s")).to_numpy(dtype="float64", na_value=np.nan)
-    return pd.to_numeric(col, errors="coerce").to_numpy(dtype="float64")
+    values = pd.to_numeric(col, errors="coerce").to_numpy(dtype="float64", copy=True)
+    unparsed = np.isnan(values) & col.notna().to_numpy()
+    if unparsed.any() and (col.dtype == object or pd.api.types.is_string_dtype(col)):
+        # Date strings such as "2024-05-01 12:00" (read as UTC when they carry no zone).
+        dates = pd.to_datetime(col[unparsed], errors="coerce", utc=True, format="mixed")
+        seconds = ((dates - pd.Timestamp(0, tz="UTC")) / pd.Timedelta(1, "s")).to_numpy(dtype="float64", na_value=np.nan)
+        values[unparsed] = seconds
+    return values
