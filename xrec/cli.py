@@ -76,6 +76,10 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     summary = run_demo(output=Path(args.output), shop=args.shop, progress=not args.quiet and not args.json, quick=args.quick)
     if args.json:
         _print_json(summary)
+    elif args.quiet:  # the steps were silent; the summary with the paths still matters
+        from xrec.demo import summary_text
+
+        print(summary_text(summary))
     return 0
 
 

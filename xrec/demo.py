@@ -217,7 +217,7 @@ def run_demo(
 
     summary = _summary(cards, learned, gated, vs_best, best_single, paths, clock)
     if progress:
-        print(_summary_text(summary))
+        print(summary_text(summary))
     return summary
 
 
@@ -324,7 +324,8 @@ def _summary(cards, learned, gated, vs_best, best_single, paths, clock) -> dict[
     }
 
 
-def _summary_text(summary: dict[str, Any]) -> str:
+def summary_text(summary: dict[str, Any]) -> str:
+    """The closing lines of ``xrec demo``: test metric per scorer, weights, comparisons, paths."""
     lines = ["", f"Test {summary['metric']} (full ranking):"]
     for name, value in sorted(summary["test"].items(), key=lambda kv: -kv[1]):
         lines.append(f"  {name:<14} {value:.4f}")
