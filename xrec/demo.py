@@ -300,6 +300,12 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
         "Learned blend weights": weight_profile(learned.weights, normalizers="zscore"),
         "Which signal finds which taste": _taste_chart(tastes, 10),
         "Known vs new items": _segment_chart(segments),
+        "Reading the new-item panel": (
+            "<p>New items have no purchases in training, so popularity and ALS cannot rank them; the content "
+            "sources (attributes, text, image) still can. The blend's weights were learned on known items, where "
+            "ALS carries most weight, so it under-ranks new items: serve new items with content-heavy weights "
+            "(a popularity-gated blend, <code>GatedBlend</code>, learned on data that holds enough new items).</p>"
+        ),
         "Scorecard of the learned blend": card,
         "Comparison vs popularity": vs_pop,
     }
