@@ -139,3 +139,18 @@ def test_recommend_rejects_k_below_one_before_loading(tmp_path, capsys):
     # The blend file does not even exist: -k is checked before any refit.
     assert main(["recommend", str(tmp_path / "absent.toml"), "--user", "u1", "-k", "0"]) == 2
     assert "-k: must be at least 1" in capsys.readouterr().err
+
+
+def test_recommend_unknown_user_error_or_popular_list(tmp_path, capsys):
+    spec = _write_files_spec(tmp_path)
+    blend_path = tmp_path / "mix.toml"
+    assert main(["export", str(spec), "-o", str(blend_path), "-q"]) == 0
+    capsys.readouterr()
+    assert main(["recommend", str(blend_path), "--user", "stranger", "-q"]) == 2
+    assert "unknown user 'stranger'" in capsys.readouterr().err
+    assert main(["recommend", str(blend_path), "--user", "stranger", "--unknown", "popular", "-k", "4", "--json", "-q"]) == 0
+    recs = json.loads(capsys.readouterr().out)["stranger"]
+    counts = pd.read_csv(tmp_path / "events.csv")["item"].value_counts()
+    # The fallback list is the most-bought items (counted on the training rows, so compare loosely:
+    # every listed item is among the catalogue's best sellers).
+    assert len(recs) == 4 and all(counts[r["item"]] >= counts.iloc[9] for r in recs)

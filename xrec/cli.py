@@ -60,7 +60,7 @@ def _cmd_recommend(args: argparse.Namespace) -> int:
     if args.k < 1:  # checked before the refit, which can take a while
         raise ConfigError(f"-k: must be at least 1, got {args.k}")
     runtime = runtime_for_blend_file(args.blend_file, data_folder=args.data, progress=not args.quiet and not args.json)
-    frames = {user: runtime.recommend(user, k=args.k) for user in args.user}
+    frames = {user: runtime.recommend(user, k=args.k, unknown=args.unknown) for user in args.user}
     if args.json:
         _print_json({user: frame.to_dict(orient="records") for user, frame in frames.items()})
     else:
@@ -133,6 +133,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("blend_file", help="blend file written by 'xrec export' or 'xrec demo'")
     p.add_argument("--user", action="append", required=True, help="user id (repeat for several)")
     p.add_argument("-k", type=int, default=10, help="list length (default: %(default)s)")
+    p.add_argument("--unknown", choices=("error", "popular"), default="error",
+                   help="a user the blend file does not know: an error, or the most popular items (default: %(default)s)")
     p.add_argument("--data", default=None, help="folder the data moved to (a MovieLens or demo-shop folder, or the one holding the CSV files), when it is not where the blend file records")
     common(p)
     p.set_defaults(func=_cmd_recommend)

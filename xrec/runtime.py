@@ -63,7 +63,7 @@ class BlendRuntime:
         if key not in self._positions:
             raise DataError(
                 f"unknown user {user_id!r}: the blend serves the {len(self._positions)} users of dataset "
-                f"{self.spec.dataset_name!r} (pass unknown='popular' for a cold-start list)"
+                f"{self.spec.dataset_name!r} (pass unknown='popular', or --unknown popular on the command line, for a cold-start list)"
             )
         return self._positions[key]
 
