@@ -116,7 +116,6 @@ def test_stem_batchnorm_statistics_match_the_chosen_input_scaling(enc: Efficient
     # The stem conv's output variance on real photos must match it under the right input
     # scaling: [-1, 1] (TF EfficientNet-Lite) fits, ImageNet mean/std is ~4x too large.
     import torch
-    import torch.nn.functional as F
     import torchvision.transforms.functional as TF
 
     stem = enc.model_.conv_stem

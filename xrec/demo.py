@@ -158,7 +158,6 @@ def run_demo(
     from xrec.blend.engine import BlendEngine
     from xrec.blend.gating import GatedBlend, learn_gated_weights
     from xrec.blend.learn import learn_weights
-    from xrec.blendfile import save_blend
     from xrec.data.demo import demo_shop_truth, load_demo_shop
     from xrec.evaluate import compare, evaluate
     from xrec.notebook.charts import charts_to_html, comparison_chart, metric_bars, weight_profile
@@ -335,11 +334,11 @@ def summary_text(summary: dict[str, Any]) -> str:
     lines = ["", f"Test {summary['metric']} (full ranking):"]
     for name, value in sorted(summary["test"].items(), key=lambda kv: -kv[1]):
         lines.append(f"  {name:<14} {value:.4f}")
-    lines.append(f"Learned weights: " + ", ".join(f"{k}={v:.2f}" for k, v in summary["weights"].items()))
+    lines.append("Learned weights: " + ", ".join(f"{k}={v:.2f}" for k, v in summary["weights"].items()))
     for cand, r in summary["vs_best_single"].items():
         verdict = "CI excludes 0" if r["ci_low"] > 0 or r["ci_high"] < 0 else "CI includes 0"
         lines.append(f"  {cand} vs {summary['best_single_source']}: {r['difference']:+.4f} "
                      f"[{r['ci_low']:+.4f}, {r['ci_high']:+.4f}] ({verdict}, p={r['p_value']:.4f})")
-    lines.append(f"Wrote: " + ", ".join(summary["paths"].values()))
+    lines.append("Wrote: " + ", ".join(summary["paths"].values()))
     lines.append(f"Total {summary['seconds']['total']:.1f} s")
     return "\n".join(lines)

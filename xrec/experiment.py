@@ -135,7 +135,6 @@ def evaluation_options(spec: ExperimentSpec) -> dict[str, Any]:
 
 def run_experiment(spec: ExperimentSpec, *, progress: bool = False, dataset: Dataset | None = None) -> ExperimentResult:
     """Fit every source on the test fold's training rows, evaluate sources and blends, compare with the baseline."""
-    from xrec.blend import Blend
     from xrec.evaluate import compare, evaluate
     from xrec.split import split_dataset
 

@@ -458,7 +458,6 @@ class BlendEngine:
         always = np.zeros(n_rows, dtype=np.int64)
         rows_out: list[np.ndarray] = []
         items_out: list[np.ndarray] = []
-        vals_out: list[np.ndarray] = []
         step = max(1, (1 << 22) // max(n_items, 1))
         rows_all = np.arange(n_rows)
         # Summing a gathered undecided cell costs several times a dense one: past ~15 % of
