@@ -32,6 +32,10 @@ def _raw(**blend):
         ({"weights": {"a": 1.0}, "gated": True}, "blends.mix.gated"),
         ({"weights": "learn", "sources": ["a", "nope"]}, "blends.mix.sources"),
         ({"weights": {"a": 1.0}, "colour": "red"}, "blends.mix: unknown key"),
+        ({"fusion": "rrf", "normalizer": "zscore"}, "blends.mix.normalizer"),
+        ({"fusion": "combsum", "depth": 10}, "blends.mix.depth"),
+        ({"fusion": "combmnz", "k": 60}, "blends.mix.k"),
+        ({"weights": {"a": 1.0}, "k": 60}, "blends.mix: 'k' and 'depth'"),
     ],
 )
 def test_bad_blend_tables_name_the_field(blend, field):

@@ -302,7 +302,7 @@ def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progre
         raise ConfigError("the two specs read different data (dataset fingerprints differ); a paired comparison needs the same data")
     if base.split.settings != cand.split.settings:
         raise ConfigError("the two specs split the data differently ([split] tables differ); a paired comparison needs the same split")
-    if base.spec.ks != cand.spec.ks:
+    if sorted(base.spec.ks) != sorted(cand.spec.ks):
         raise ConfigError(f"evaluate.ks differ: {list(base.spec.ks)} vs {list(cand.spec.ks)}")
     b_card = base.scorecards[baseline.primary]
     c_card = cand.scorecards[candidate.primary]

@@ -134,6 +134,14 @@ def _check_blend(table: dict, where: str, sources: dict, *, learning_allowed: bo
         raise ConfigError(f"{where}: needs 'weights' (a table, or \"learn\") or 'fusion' ({', '.join(_FUSIONS)})")
     if fusion is not None and fusion not in _FUSIONS:
         raise ConfigError(f"{where}.fusion: must be one of {list(_FUSIONS)}, got {fusion!r}")
+    if fusion == "rrf" and "normalizer" in table:
+        raise ConfigError(f"{where}.normalizer: reciprocal rank fusion uses ranks, not normalized scores; remove it")
+    if fusion == "combsum" and "depth" in table:
+        raise ConfigError(f"{where}.depth: only for rrf and combmnz")
+    if fusion in ("combsum", "combmnz") and "k" in table:
+        raise ConfigError(f"{where}.k: only for rrf")
+    if fusion is None and ("k" in table or "depth" in table):
+        raise ConfigError(f"{where}: 'k' and 'depth' belong to fusion rules (fusion = \"rrf\" or \"combmnz\")")
     listed = table.get("sources")
     if listed is not None:
         if not isinstance(listed, list) or not listed or not all(isinstance(x, str) for x in listed):
