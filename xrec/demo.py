@@ -20,6 +20,8 @@ from __future__ import annotations
 
 import json
 import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -50,21 +52,17 @@ class _Clock:
         self.start = time.perf_counter()
         self.steps: dict[str, float] = {}
 
-    def step(self, label: str):
-        clock = self
-
-        class _Step:
-            def __enter__(self_inner):
-                self_inner.t0 = time.perf_counter()
-                if clock.enabled:
-                    print(f"- {label} ...", flush=True)
-
-            def __exit__(self_inner, *exc):
-                clock.steps[label] = time.perf_counter() - self_inner.t0
-                if clock.enabled and exc[0] is None:
-                    print(f"  done in {clock.steps[label]:.1f} s", flush=True)
-
-        return _Step()
+    @contextmanager
+    def step(self, label: str) -> Iterator[None]:
+        t0 = time.perf_counter()
+        if self.enabled:
+            print(f"- {label} ...", flush=True)
+        try:
+            yield
+        finally:
+            self.steps[label] = time.perf_counter() - t0
+        if self.enabled:  # reached only when the step did not raise
+            print(f"  done in {self.steps[label]:.1f} s", flush=True)
 
     @property
     def total(self) -> float:
@@ -160,7 +158,6 @@ def run_demo(
     from xrec.blend.learn import learn_weights
     from xrec.data.demo import demo_shop_truth, load_demo_shop
     from xrec.evaluate import compare, evaluate
-    from xrec.notebook.charts import charts_to_html, comparison_chart, metric_bars, weight_profile
     from xrec.split import split_dataset
 
     out = Path(output)
@@ -211,7 +208,7 @@ def run_demo(
     with clock.step("writing scorecards, blend file and report"):
         paths = _write_outputs(
             out, dataset, split, cards, learned, gated, vs_best, vs_pop, tastes, segments, blend, best_single,
-            charts=(charts_to_html, comparison_chart, metric_bars, weight_profile), dataset_load=_load_hints(shop),
+            dataset_load=_load_hints(shop),
         )
 
     summary = _summary(cards, learned, gated, vs_best, best_single, paths, clock)
@@ -241,11 +238,11 @@ def _load_hints(shop: str | Path | None) -> dict[str, str]:
     return hints
 
 
-def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, tastes, segments, blend, best_single, *, charts,
+def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, tastes, segments, blend, best_single, *,
                    dataset_load):
     from xrec.blendfile import save_blend
+    from xrec.notebook.charts import charts_to_html, comparison_chart, metric_bars, weight_profile
 
-    charts_to_html, comparison_chart, metric_bars, weight_profile = charts
     payload = {
         "dataset": {"name": dataset.name, "fingerprint": dataset.fingerprint()},
         "split": split.settings,
