@@ -26,16 +26,21 @@ def check_weight(value: object, field: str) -> float:
     return value
 
 
+def check_one_per_source(table: Mapping[str, object], sources: Mapping[str, Any], field: str, noun: str, *, hint: str = "") -> None:
+    """Raise :class:`ConfigError` unless ``table`` has exactly one entry per source (named in ``field``)."""
+    unknown = [name for name in table if name not in sources]
+    if unknown:
+        raise ConfigError(f"{field}: {unknown} are not sources of this blend; its sources are {list(sources)}")
+    missing = [name for name in sources if name not in table]
+    if missing:
+        raise ConfigError(f"{field}: no {noun} for source(s) {missing}{hint}")
+
+
 def check_weights(weights: Mapping[str, object], sources: Mapping[str, Any]) -> dict[str, float]:
     """One valid weight per source (in the sources' order); at least one must be positive."""
     if not isinstance(weights, Mapping):
         raise ConfigError(f"weights: give a mapping of source name -> weight, got {type(weights).__name__}")
-    unknown = [name for name in weights if name not in sources]
-    if unknown:
-        raise ConfigError(f"weights: {unknown} are not sources of this blend; its sources are {list(sources)}")
-    missing = [name for name in sources if name not in weights]
-    if missing:
-        raise ConfigError(f"weights: no weight for source(s) {missing} (give 0 to leave a source out)")
+    check_one_per_source(weights, sources, "weights", "weight", hint=" (give 0 to leave a source out)")
     out = {name: check_weight(weights[name], f"weights.{name}") for name in sources}
     if not any(w > 0 for w in out.values()):
         raise ConfigError(f"weights: all weights are zero ({out}); at least one source needs a positive weight")
@@ -49,12 +54,7 @@ def check_normalizers(normalizers: str | Mapping[str, str], sources: Mapping[str
         return {name: normalizers for name in sources}
     if not isinstance(normalizers, Mapping):
         raise ConfigError(f"normalizers: give a name or a mapping of source name -> name, got {type(normalizers).__name__}")
-    unknown = [name for name in normalizers if name not in sources]
-    if unknown:
-        raise ConfigError(f"normalizers: {unknown} are not sources of this blend; its sources are {list(sources)}")
-    missing = [name for name in sources if name not in normalizers]
-    if missing:
-        raise ConfigError(f"normalizers: no normalizer for source(s) {missing}")
+    check_one_per_source(normalizers, sources, "normalizers", "normalizer")
     return {name: check_normalizer(normalizers[name], f"normalizers.{name}") for name in sources}
 
 

@@ -34,7 +34,7 @@ import numpy as np
 import pandas as pd
 
 from xrec.blend._base import check_sources
-from xrec.blend.blend import Blend, check_normalizers, check_weight
+from xrec.blend.blend import Blend, check_normalizers, check_one_per_source, check_weight
 from xrec.errors import ConfigError
 from xrec.fold import Fold
 
@@ -113,12 +113,7 @@ def check_band_weights(band_weights: Mapping[str, Mapping[str, object]], sources
         table = band_weights[band]
         if not isinstance(table, Mapping):
             raise ConfigError(f"band_weights.{band}: give a mapping source -> weight, got {type(table).__name__}")
-        extra = [n for n in table if n not in sources]
-        if extra:
-            raise ConfigError(f"band_weights.{band}: {extra} are not sources of this blend; its sources are {list(sources)}")
-        lacking = [n for n in sources if n not in table]
-        if lacking:
-            raise ConfigError(f"band_weights.{band}: no weight for source(s) {lacking} (give 0 to leave a source out)")
+        check_one_per_source(table, sources, f"band_weights.{band}", "weight", hint=" (give 0 to leave a source out)")
         out[band] = {n: check_weight(table[n], f"band_weights.{band}.{n}") for n in sources}
     if not any(w > 0 for table in out.values() for w in table.values()):
         raise ConfigError("band_weights: all weights are zero; at least one needs to be positive")
