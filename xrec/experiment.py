@@ -78,16 +78,14 @@ def build_sources(spec: ExperimentSpec, *, progress: bool = False) -> dict[str, 
     With ``progress``, sources that can show their own bars (encoders, implicit models) do,
     unless the spec sets their ``progress`` explicitly.
     """
-    import inspect
+    from xrec._settings import setting_names
+    from xrec.sources.base import source_class
 
-    from xrec.sources.base import _REGISTRY, source_kinds
-
-    source_kinds()  # registers the built-in kinds
     out = {}
     for name, table in spec.sources.items():
         settings = {k: v for k, v in table.items() if k != "kind"}
-        cls = _REGISTRY.get(table["kind"])
-        if progress and cls is not None and "progress" in inspect.signature(cls.__init__).parameters:
+        cls = source_class(table["kind"])
+        if progress and cls is not None and "progress" in setting_names(cls):
             settings.setdefault("progress", True)
         try:
             out[name] = make_source(table["kind"], **settings)

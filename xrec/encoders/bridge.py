@@ -613,15 +613,12 @@ def make_bridge(name: str, **settings: Any) -> Bridge:
     ConfigError
         For an unknown name or setting.
     """
-    import inspect
+    from xrec._settings import check_settings
 
     if name not in BRIDGES:
         raise ConfigError(f"bridge {name!r} is unknown; known: {sorted(BRIDGES)}")
     cls = BRIDGES[name]
-    allowed = set(inspect.signature(cls.__init__).parameters) - {"self"}
-    unknown = set(settings) - allowed
-    if unknown:
-        raise ConfigError(f"bridge {name!r} has no setting(s) {sorted(unknown)}; it takes {sorted(allowed)}")
+    check_settings(cls, settings, f"bridge {name!r}")
     return cls(**settings)
 
 

@@ -8,6 +8,7 @@ from typing import Any, ClassVar, Self
 
 import numpy as np
 
+from xrec._settings import check_settings
 from xrec.errors import ConfigError
 from xrec.fold import Fold
 
@@ -83,6 +84,13 @@ def source_kinds() -> list[str]:
     return sorted(_REGISTRY)
 
 
+def source_class(kind: str) -> type[Source] | None:
+    """The class registered under ``kind``, or ``None`` for an unknown kind."""
+    import xrec.sources  # noqa: F401  (registers the built-in kinds)
+
+    return _REGISTRY.get(kind)
+
+
 def make_source(kind: str, **params: Any) -> Source:
     """Build a source by its kind name; unknown kinds or settings give a :class:`ConfigError`.
 
@@ -103,8 +111,5 @@ def make_source(kind: str, **params: Any) -> Source:
     if kind not in _REGISTRY:
         raise ConfigError(f"unknown source kind {kind!r}; known: {sorted(_REGISTRY)}")
     cls = _REGISTRY[kind]
-    allowed = set(inspect.signature(cls.__init__).parameters) - {"self"}
-    unknown = set(params) - allowed
-    if unknown:
-        raise ConfigError(f"source {kind!r} has no setting(s) {sorted(unknown)}; it takes {sorted(allowed)}")
+    check_settings(cls, params, f"source {kind!r}")
     return cls(**params)
