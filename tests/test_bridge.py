@@ -75,6 +75,38 @@ def test_conse_text_side_is_identity_and_settings_are_checked() -> None:
         ConSEBridge(class_vectors=S).transform(P)
 
 
+# Prior correction: Saerens, Latinne & Decaestecker, "Adjusting the Outputs of a Classifier
+# to New a Priori Probabilities", Neural Computation 14(1), 2002, eq. (2.4):
+# p_new(y|x) ∝ p(y|x) · p_new(y) / p_old(y). With p_old = the mean prediction over the
+# fitted images and p_new uniform, the weights are p(y|x) / p_old(y), then eq. 1 of ConSE.
+# Fitted on images A and B: p_old = ((0.5+0.1)/2, (0.3+0.2)/2, (0.15+0.6)/2, (0.05+0.1)/2)
+#                                 = (0.30, 0.25, 0.375, 0.075)
+# A: p/p_old = (1.6667, 1.2, 0.4, 0.6667); T = 2: classes 0, 1, Z = 2.8667
+#    -> f = (1.6667, 1.2) / 2.8667 = (0.581395, 0.418605)
+# B: p/p_old = (0.3333, 0.8, 1.6, 1.3333); T = 2: classes 2, 3 (class 3 overtakes class 1)
+#    -> f = (1.6·(1, 1) + 1.3333·(-1, 0)) / 2.9333 = (0.090909, 0.545455)
+def test_conse_prior_correction_matches_hand_worked_example() -> None:
+    out = ConSEBridge(top_t=2, class_vectors=S, prior_correction=True).fit(P).transform(P)
+    np.testing.assert_allclose(out, [[0.581395, 0.418605], [0.090909, 0.545455]], atol=1e-6)
+    np.testing.assert_allclose(ConSEBridge(class_vectors=S, top_t=2, prior_correction=True).fit(P).class_prior_, [0.30, 0.25, 0.375, 0.075])
+
+
+def test_conse_prior_ignores_zero_rows_and_needs_images() -> None:
+    with_skipped = np.vstack([P, np.zeros((3, 4), dtype=np.float32)])
+    a = ConSEBridge(top_t=2, class_vectors=S, prior_correction=True).fit(with_skipped)
+    np.testing.assert_allclose(a.class_prior_, [0.30, 0.25, 0.375, 0.075])
+    assert not a.transform(np.zeros((1, 4))).any()
+    # a class no fitted image gives any probability is never chosen, rather than 0/0
+    b = ConSEBridge(top_t=1, class_vectors=S, prior_correction=True).fit(np.array([[0.5, 0.5, 0.0, 0.0]]))
+    np.testing.assert_allclose(b.transform(np.array([[0.2, 0.3, 0.5, 0.0]])), [[0.0, 1.0]])
+    with pytest.raises(ConfigError, match="fit\\(image\\)"):
+        ConSEBridge(top_t=2, class_vectors=S, prior_correction=True).fit()
+    with pytest.raises(DataError, match="every image row is zero"):
+        ConSEBridge(top_t=2, class_vectors=S, prior_correction=True).fit(np.zeros((2, 4)))
+    with pytest.raises(ConfigError, match="prior_correction"):
+        ConSEBridge(top_t=2, class_vectors=S, prior_correction="yes").fit(P)  # type: ignore[arg-type]
+
+
 # --------------------------------------------------------------------------------------
 # CCA: against scikit-learn's own transform
 # --------------------------------------------------------------------------------------
@@ -193,6 +225,23 @@ def test_bridge_recall_is_one_for_a_perfect_bridge_and_zero_when_everything_ties
     assert tied["recall"] == 0.0
 
 
+class _OffsetBridge(RidgeBridge):
+    """A perfect bridge whose images all carry one large shared vector."""
+
+    def transform(self, image: np.ndarray) -> np.ndarray:
+        return (np.asarray(image, dtype=np.float64) + 50.0).astype(np.float32)
+
+
+def test_bridge_recall_center_removes_a_shared_offset() -> None:
+    rng = np.random.default_rng(9)
+    text = rng.normal(size=(300, 8))
+    bridge = _OffsetBridge()
+    # the offset swamps each image's own direction: cosine sees mostly the shared part
+    assert bridge_recall(bridge, text, text, k=1, test_fraction=0.5, seed=0)["recall"] < 0.5
+    # centring subtracts the mean over all items, and the offset with it
+    assert bridge_recall(bridge, text, text, k=1, test_fraction=0.5, seed=0, center=True)["recall"] == 1.0
+
+
 def test_bridge_recall_of_an_unrelated_bridge_is_near_random() -> None:
     rng = np.random.default_rng(8)
     text, image = rng.normal(size=(1000, 6)), rng.normal(size=(1000, 6))
@@ -242,11 +291,23 @@ def test_alignment_bridges_retrieve_demo_shop_images_from_descriptions(name: str
 
 
 @pytest.mark.slow
-# Measured variants (scratch study, seeds 0-4, same split): a centre crop of 0.4 plus a class-prior
-# correction and centring reach ~5.5x random at best; the classifier has the emoji's nearest ImageNet
-# class in its top 10 for only ~14% of items, so the 10x goal needs a classifier that knows emoji art.
-@pytest.mark.xfail(strict=True, reason="ImageNet classes do not describe emoji artwork: ConSE measured 1.0-1.5x random (best variant ~5.5x)")
+def test_conse_prior_correction_and_centring_sharpen_demo_shop_retrieval(demo_pairs: dict) -> None:
+    def mean_lift(prior_correction: bool, center: bool) -> float:
+        bridge = ConSEBridge(prior_correction=prior_correction, cache_dir=demo_pairs["cache"])
+        runs = [bridge_recall(bridge, demo_pairs["probs"], demo_pairs["text"], seed=s, center=center) for s in range(5)]
+        return float(np.mean([r["lift"] for r in runs]))
+
+    # measured on seeds 0-4: plain 1.22x random, corrected and centred 2.12x
+    assert mean_lift(True, True) >= 1.4 * mean_lift(False, False)
+
+
+@pytest.mark.slow
+# Measured (seeds 0-4, recall@10 over ~308 held-out items): plain ConSE 1.2x random; with the
+# catalog class prior removed and both sides centred 2.1x. Upper bound with this classifier:
+# the bare emoji glyphs, 224 px on white, no product frame or patterned background, reach only
+# 7.5x with the best settings, so the 10x goal needs a classifier whose classes cover emoji art.
+@pytest.mark.xfail(strict=True, reason="ImageNet classes do not describe emoji artwork: ConSE measured 2.1x random at best here")
 def test_conse_retrieves_demo_shop_images_from_descriptions(demo_pairs: dict) -> None:
-    bridge = ConSEBridge(cache_dir=demo_pairs["cache"])
-    out = bridge_recall(bridge, demo_pairs["probs"], demo_pairs["text"], k=10, test_fraction=0.3, seed=0)
+    bridge = ConSEBridge(prior_correction=True, cache_dir=demo_pairs["cache"])
+    out = bridge_recall(bridge, demo_pairs["probs"], demo_pairs["text"], k=10, test_fraction=0.3, seed=0, center=True)
     assert out["lift"] >= 10.0, out

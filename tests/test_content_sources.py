@@ -214,6 +214,17 @@ def test_cross_modal_text_to_image_and_fitted_bridges(catalog: Catalog, fold: Fo
         assert src.bridge_.fitted_
 
 
+def test_cross_modal_conse_prior_is_the_catalog_mean_prediction(catalog: Catalog, fold: Fold, cache_dir: str) -> None:
+    src = CrossModalSource(bridge="conse", prior_correction=True, cache_dir=cache_dir).fit(fold)
+    probs = EmbeddingCache(cache_dir).encode(
+        ImageNetProbsEncoder(make_image_encoder()), [catalog.image_path(i).read_bytes() for i in range(len(catalog))]
+    )
+    # the prior comes from catalog images only (no interactions): their mean class probability
+    np.testing.assert_allclose(src.bridge_.class_prior_, probs.astype(np.float64).mean(axis=0), rtol=1e-5, atol=1e-9)
+    assert src.score(np.arange(2)).shape == (2, 6)
+    assert CrossModalSource(bridge="conse", cache_dir=cache_dir).fit(fold).bridge_.class_prior_ is None
+
+
 def test_cross_modal_settings_are_checked(fold: Fold, cache_dir: str) -> None:
     with pytest.raises(ConfigError, match="profile"):
         CrossModalSource(profile="audio").fit(fold)

@@ -364,11 +364,21 @@ class ConSEBridge(Bridge):
         Each class name is put into this text at ``{}`` before encoding.
     cache_dir
         Embedding cache folder for the class-name vectors; ``None``: the cache's default.
+    prior_correction
+        Divide each image's probabilities by the mean probability of that class over the
+        images given to :meth:`fit` before taking the top ``T``: Bayes' rule with the
+        catalog's average prediction as the old class prior and a uniform new one
+        (Saerens, Latinne & Decaestecker, Neural Computation 14(1), 2002). Classes the
+        classifier says for every catalog image (a frame, a background texture) then stop
+        crowding out the ones that tell images apart. Needs ``fit(image)``.
 
     Attributes
     ----------
     class_vectors_
         ``(n_classes, dim)`` float32 class-name vectors.
+    class_prior_
+        ``(n_classes,)`` mean class probability over the fitted images (``None`` without
+        ``prior_correction``).
     """
 
     name = "conse"
@@ -381,17 +391,25 @@ class ConSEBridge(Bridge):
         text_encoder: str = "minilm",
         template: str = "{}",
         cache_dir: str | None = None,
+        prior_correction: bool = False,
     ) -> None:
         self.top_t = top_t
         self.class_vectors = class_vectors
         self.text_encoder = text_encoder
         self.template = template
         self.cache_dir = cache_dir
+        self.prior_correction = prior_correction
 
     def fit(self, image: np.ndarray | None = None, text: np.ndarray | None = None) -> Self:
-        """Get the class-name vectors; ConSE learns nothing from pairs, so both are ignored."""
+        """Get the class-name vectors and, with ``prior_correction``, the class prior of ``image``.
+
+        ConSE learns nothing from pairs: ``text`` is ignored, and ``image`` (class
+        probabilities) is read only for its mean, when ``prior_correction`` is on.
+        """
         if isinstance(self.top_t, bool) or not isinstance(self.top_t, (int, np.integer)) or self.top_t < 1:
             raise ConfigError(f"conse setting 'top_t' must be a positive int, got {self.top_t!r}")
+        if not isinstance(self.prior_correction, (bool, np.bool_)):
+            raise ConfigError(f"conse setting 'prior_correction' must be true or false, got {self.prior_correction!r}")
         if self.class_vectors is not None:
             vectors = _as_matrix(self.class_vectors, "class_vectors")
         else:
@@ -399,8 +417,25 @@ class ConSEBridge(Bridge):
         if self.top_t > len(vectors):
             raise ConfigError(f"conse setting 'top_t' = {self.top_t} exceeds the {len(vectors)} classes")
         self.class_vectors_ = np.ascontiguousarray(vectors, dtype=np.float32)
+        self.class_prior_ = self._class_prior(image, len(vectors)) if self.prior_correction else None
         self.fitted_ = True
         return self
+
+    @staticmethod
+    def _class_prior(image: np.ndarray | None, n_classes: int) -> np.ndarray:
+        if image is None:
+            raise ConfigError("conse with prior_correction needs the catalog's class probabilities: call fit(image)")
+        probs = _as_matrix(image, "class probabilities", n_classes)
+        if (probs < 0).any():
+            raise DataError("class probabilities must be >= 0")
+        totals = probs.sum(axis=1)
+        present = totals > 0  # zero rows are skipped images, not evidence
+        if not present.any():
+            raise DataError("conse prior_correction: every image row is zero; no class prior to estimate")
+        # each row is scaled to sum 1 so an image counts once whatever its scale
+        prior = (probs[present] / totals[present, None]).mean(axis=0, dtype=np.float64)
+        # a class no catalog image gives any probability to keeps weight 0, not 0/0
+        return np.where(prior > 0, prior, np.inf)
 
     def transform(self, image: np.ndarray) -> np.ndarray:
         """Class probabilities ``(n, n_classes)`` → ``(n, dim)`` text-space vectors.
@@ -411,6 +446,8 @@ class ConSEBridge(Bridge):
         probs = _as_matrix(image, "class probabilities", len(self.class_vectors_))
         if (probs < 0).any():
             raise DataError("class probabilities must be >= 0")
+        if self.class_prior_ is not None:
+            probs = probs / self.class_prior_
         t = int(self.top_t)
         # stable order: among equal probabilities the lower class index is taken, every run
         top = np.argsort(-probs, axis=1, kind="stable")[:, :t]
@@ -640,6 +677,7 @@ def bridge_recall(
     k: int = 10,
     test_fraction: float = 0.3,
     seed: int = 0,
+    center: bool = False,
 ) -> dict[str, float]:
     """Text → image retrieval recall@k of a bridge on held-out catalog pairs.
 
@@ -662,6 +700,9 @@ def bridge_recall(
         Share of pairs held out, in (0, 1).
     seed
         Seed of the held-out draw.
+    center
+        Subtract each side's mean over all given items before the cosine, as the content
+        sources' ``center`` setting does with the catalog's mean (no pairing is used).
 
     Returns
     -------
@@ -681,8 +722,12 @@ def bridge_recall(
         raise DataError(f"too few pairs ({n}) to hold out {test_fraction:.0%} and fit on the rest")
     test, train = np.sort(order[:n_test]), np.sort(order[n_test:])
     bridge.fit(x[train], y[train])
-    queries = _unit_rows(bridge.transform_text(y[test]).astype(np.float64))
-    targets = _unit_rows(bridge.transform(x[test]).astype(np.float64))
+    queries = bridge.transform_text(y).astype(np.float64)
+    targets = bridge.transform(x).astype(np.float64)
+    if center:
+        queries -= queries.mean(axis=0)
+        targets -= targets.mean(axis=0)
+    queries, targets = _unit_rows(queries[test]), _unit_rows(targets[test])
     sims = queries @ targets.T
     own = np.diag(sims)
     rank = (sims >= own[:, None]).sum(axis=1)  # 1 = best; counts the target itself

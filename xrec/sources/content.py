@@ -435,8 +435,10 @@ class CrossModalSource(_ProfileSource):
         Text encoder name (not used with ``"clip"``).
     image_encoder
         Image encoder name (not used with ``"clip"``).
-    top_t, class_template
-        ConSE's number of classes combined and the text each class name is put in.
+    top_t, class_template, prior_correction
+        ConSE's number of classes combined, the text each class name is put in, and
+        whether class probabilities are divided by the catalog's mean prediction first
+        (see :class:`~xrec.encoders.bridge.ConSEBridge`).
     n_components, pca_components
         CCA's canonical variates, and the PCA dimensions each side keeps before CCA.
     alpha
@@ -473,6 +475,7 @@ class CrossModalSource(_ProfileSource):
         image_encoder: str = "efficientnet_lite0",
         top_t: int = 10,
         class_template: str = "{}",
+        prior_correction: bool = False,
         n_components: int = 16,
         pca_components: int | None = 64,
         alpha: float = 1.0,
@@ -490,6 +493,7 @@ class CrossModalSource(_ProfileSource):
         self.image_encoder = image_encoder
         self.top_t = top_t
         self.class_template = class_template
+        self.prior_correction = prior_correction
         self.n_components = n_components
         self.pca_components = pca_components
         self.alpha = alpha
@@ -512,7 +516,12 @@ class CrossModalSource(_ProfileSource):
 
         if self.bridge == "conse":
             return make_bridge(
-                "conse", top_t=self.top_t, text_encoder=self.text_encoder, template=self.class_template, cache_dir=self.cache_dir
+                "conse",
+                top_t=self.top_t,
+                text_encoder=self.text_encoder,
+                template=self.class_template,
+                cache_dir=self.cache_dir,
+                prior_correction=self.prior_correction,
             )
         if self.bridge == "cca":
             return make_bridge("cca", n_components=self.n_components, pca_components=self.pca_components)
@@ -533,7 +542,7 @@ class CrossModalSource(_ProfileSource):
             image, image_ok = image_vectors(catalog, self.image_encoder, probs=bridge.input == "probs", **opts)
             both = text_ok & image_ok
             if bridge.input == "probs":
-                bridge.fit()
+                bridge.fit(image[image_ok])  # unpaired: ConSE reads only the catalog's class prior
             else:
                 if both.sum() < 2:
                     raise DataError(f"cross_modal bridge {self.bridge!r}: needs items with both an image and a text; found {int(both.sum())}")
