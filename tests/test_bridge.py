@@ -278,8 +278,16 @@ def demo_pairs(request: pytest.FixtureRequest) -> dict[str, np.ndarray]:
     cache = os.environ.get("XREC_CACHE_DIR") or str(request.config.cache.mkdir("xrec-bridge-embeddings"))
     text, text_ok = text_vectors(catalog, cache_dir=cache)
     features, probs, image_ok = image_features_and_probs(catalog, cache_dir=cache)
-    ok = text_ok & image_ok
-    return {"text": text[ok], "features": features[ok], "probs": probs[ok], "cache": cache}  # type: ignore[dict-item]
+    # the product sits in the middle of a patterned background: the central 40% shows the emoji
+    _, probs_centre, centre_ok = image_features_and_probs(catalog, crop=0.4, cache_dir=cache)
+    ok = text_ok & image_ok & centre_ok
+    return {  # type: ignore[return-value]
+        "text": text[ok],
+        "features": features[ok],
+        "probs": probs[ok],
+        "probs_centre": probs_centre[ok],
+        "cache": cache,
+    }
 
 
 @pytest.mark.slow
@@ -290,24 +298,29 @@ def test_alignment_bridges_retrieve_demo_shop_images_from_descriptions(name: str
     assert out["lift"] >= 10.0, out
 
 
-@pytest.mark.slow
-def test_conse_prior_correction_and_centring_sharpen_demo_shop_retrieval(demo_pairs: dict) -> None:
-    def mean_lift(prior_correction: bool, center: bool) -> float:
-        bridge = ConSEBridge(prior_correction=prior_correction, cache_dir=demo_pairs["cache"])
-        runs = [bridge_recall(bridge, demo_pairs["probs"], demo_pairs["text"], seed=s, center=center) for s in range(5)]
-        return float(np.mean([r["lift"] for r in runs]))
-
-    # measured on seeds 0-4: plain 1.22x random, corrected and centred 2.12x
-    assert mean_lift(True, True) >= 1.4 * mean_lift(False, False)
+def _conse_mean_lift(pairs: dict, probs: str, *, prior_correction: bool, center: bool, top_t: int = 10) -> float:
+    bridge = ConSEBridge(top_t=top_t, prior_correction=prior_correction, cache_dir=pairs["cache"])
+    runs = [bridge_recall(bridge, pairs[probs], pairs["text"], seed=s, center=center) for s in range(5)]
+    return float(np.mean([r["lift"] for r in runs]))
 
 
 @pytest.mark.slow
-# Measured (seeds 0-4, recall@10 over ~308 held-out items): plain ConSE 1.2x random; with the
-# catalog class prior removed and both sides centred 2.1x. Upper bound with this classifier:
-# the bare emoji glyphs, 224 px on white, no product frame or patterned background, reach only
-# 7.5x with the best settings, so the 10x goal needs a classifier whose classes cover emoji art.
-@pytest.mark.xfail(strict=True, reason="ImageNet classes do not describe emoji artwork: ConSE measured 2.1x random at best here")
+def test_conse_prior_correction_centring_and_crop_sharpen_demo_shop_retrieval(demo_pairs: dict) -> None:
+    plain = _conse_mean_lift(demo_pairs, "probs", prior_correction=False, center=False)
+    # measured, seeds 0-4: plain 1.22x random; corrected and centred 2.12x; the same on the
+    # central 40% of each image 5.2x (plain ConSE on that crop 3.6x)
+    assert _conse_mean_lift(demo_pairs, "probs", prior_correction=True, center=True) >= 1.4 * plain
+    assert _conse_mean_lift(demo_pairs, "probs_centre", prior_correction=True, center=True) >= 3.0 * plain
+
+
+@pytest.mark.slow
+# Measured (seeds 0-4, recall@10 over ~308 held-out items): plain ConSE 1.2x random; the best
+# settings found (central 40% crop, catalog class prior removed, both sides centred) 5.2x at
+# T = 10, 5.6x at T = 30. Upper bound with ImageNet-1k classifiers: the bare emoji glyphs at
+# 224 px on white, no frame or background, reach 7.6x (EfficientNet-Lite0) and 8.0x (Lite1;
+# Lite2 7.6x; seeds 0-9), so the 10x goal needs a classifier whose classes cover emoji art.
+@pytest.mark.xfail(strict=True, reason="ImageNet classes do not describe emoji artwork: ConSE measured 5.2x random at best here")
 def test_conse_retrieves_demo_shop_images_from_descriptions(demo_pairs: dict) -> None:
     bridge = ConSEBridge(prior_correction=True, cache_dir=demo_pairs["cache"])
-    out = bridge_recall(bridge, demo_pairs["probs"], demo_pairs["text"], k=10, test_fraction=0.3, seed=0, center=True)
+    out = bridge_recall(bridge, demo_pairs["probs_centre"], demo_pairs["text"], k=10, test_fraction=0.3, seed=0, center=True)
     assert out["lift"] >= 10.0, out

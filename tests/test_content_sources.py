@@ -183,6 +183,16 @@ def test_image_scores_equal_sklearn_cosine(catalog: Catalog, fold: Fold, cache_d
         ImageSource(cache_dir=cache_dir).fit(_fold(Catalog.from_frame(catalog.items[["item", "text"]], text=["text"]), ROWS, 3))
 
 
+def test_image_source_crop_reaches_the_encoder(catalog: Catalog, fold: Fold, cache_dir: str) -> None:
+    src = ImageSource(crop=0.6, cache_dir=cache_dir).fit(fold)
+    vectors = make_image_encoder(crop=0.6).encode([catalog.image_path(i).read_bytes() for i in range(6)])
+    np.testing.assert_allclose(src.score(np.array([0]))[0], cosine_similarity(vectors[:1], vectors)[0], rtol=1e-4, atol=1e-5)
+    whole = ImageSource(cache_dir=cache_dir).fit(fold)
+    assert not np.allclose(src.score(np.array([0])), whole.score(np.array([0])), atol=1e-3)
+    with pytest.raises(ConfigError, match="crop"):
+        ImageSource(crop=0, cache_dir=cache_dir).fit(fold)
+
+
 # -------------------------------------------------------------------------------- cross-modal
 
 

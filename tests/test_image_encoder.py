@@ -199,6 +199,23 @@ def test_identity_names_the_weights_hash(enc, tmp_path) -> None:
         EfficientNetLite0Encoder(weights=bad).load()
 
 
+def test_crop_encodes_the_central_share_of_the_image(enc) -> None:
+    square = np.asarray(skdata.chelsea())[:200, 100:300]  # 200 x 200
+    cropped = EfficientNetLite0Encoder(batch_size=8, crop=0.5)
+    # the central half of each side of a 200-pixel square is rows and columns 50..149
+    expected = enc.encode_with_probs([_bytes(square[50:150, 50:150])])
+    got = cropped.encode_with_probs([_bytes(square)])
+    np.testing.assert_allclose(got.vectors, expected.vectors, atol=1e-5)
+    np.testing.assert_allclose(got.probs, expected.probs, atol=1e-5)
+    assert not np.allclose(got.vectors, enc.encode([_bytes(square)]), atol=1e-3)
+    # a crop is its own cache identity; the whole image keeps the identity it always had
+    assert cropped.identity == f"{enc.identity}:crop0.5"
+    assert EfficientNetLite0Encoder(crop=1.0).identity == enc.identity
+    for bad in (0.0, 1.5, True, "half"):
+        with pytest.raises(ConfigError, match="crop"):
+            EfficientNetLite0Encoder(crop=bad).load()  # type: ignore[arg-type]
+
+
 def test_paths_and_bytes_give_the_same_vector(enc, photos, photo_result, tmp_path) -> None:
     path = tmp_path / "cat.png"
     path.write_bytes(photos["chelsea"])

@@ -87,7 +87,7 @@ def make_text_encoder(name: str = "minilm", *, on_error: str = "skip") -> Encode
     raise ConfigError(f"text encoder {name!r} is unknown; known: {list(TEXT_ENCODERS)} (CLIP: use kind 'cross_modal' with bridge='clip')")
 
 
-def make_image_encoder(name: str = "efficientnet_lite0", *, on_error: str = "skip") -> Encoder:
+def make_image_encoder(name: str = "efficientnet_lite0", *, on_error: str = "skip", crop: float = 1.0) -> Encoder:
     """The image encoder a setting names.
 
     Parameters
@@ -97,6 +97,8 @@ def make_image_encoder(name: str = "efficientnet_lite0", *, on_error: str = "ski
         (ImageNet-1k, 1,280-d pooled features).
     on_error
         Passed to the encoder: ``"skip"`` gives unreadable images a zero row and a warning.
+    crop
+        Share of each side kept around the centre (see the encoder's ``crop``).
 
     Returns
     -------
@@ -108,13 +110,15 @@ def make_image_encoder(name: str = "efficientnet_lite0", *, on_error: str = "ski
     ConfigError
         For an unknown name.
     """
-    key = ("image", name, on_error)
+    key = ("image", name, on_error, crop)
     if key in _SHARED:
         return _SHARED[key]
     if name == "efficientnet_lite0":
         from xrec.encoders.image import EfficientNetLite0Encoder
 
-        return _SHARED.setdefault(key, EfficientNetLite0Encoder(on_error=on_error))  # type: ignore[arg-type]
+        encoder = EfficientNetLite0Encoder(on_error=on_error, crop=crop)  # type: ignore[arg-type]
+        encoder._check_settings()  # a bad crop fails here, before the encoder is shared
+        return _SHARED.setdefault(key, encoder)
     raise ConfigError(f"image encoder {name!r} is unknown; known: {list(IMAGE_ENCODERS)}")
 
 

@@ -36,6 +36,7 @@ import re
 import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
+from numbers import Real
 from pathlib import Path
 from typing import Any
 
@@ -252,6 +253,16 @@ def _decode(content: Any, max_pixels: int | None, min_side: int | None) -> Any:
         raise _BadImage(f"unsupported image mode {img.mode!r} ({type(exc).__name__}: {exc})") from None
 
 
+def _centre_crop(img: Any, share: float) -> Any:
+    """The central ``share`` of each side of ``img`` (the image itself for 1)."""
+    if share >= 1.0:
+        return img
+    w, h = img.size
+    cw, ch = max(1, round(w * share)), max(1, round(h * share))
+    left, top = (w - cw) // 2, (h - ch) // 2
+    return img.crop((left, top, left + cw, top + ch))
+
+
 def describe_problems(problems: dict[int, str], total: int, what: str = "images") -> str:
     """``"2 of 10 images: #3 file not found: 'a.jpg'; ..."``, listing the first few."""
     return _common.describe_problems(problems, total, what)
@@ -352,6 +363,11 @@ class EfficientNetLite0Encoder(Encoder):
     weights
         A weights file to use instead of the packaged one (same layout, flat
         ``_blocks.N`` names or timm names); the cache identity then names its hash.
+    crop
+        Share of each side kept around the image's centre before the model's own
+        preprocessing, in (0, 1]; 1 (default) keeps the whole image. For catalogs whose
+        products sit in the middle of a busy background or frame: the classifier then
+        sees the product, not the setting. A crop below 1 is part of the cache identity.
 
     Attributes
     ----------
@@ -375,25 +391,29 @@ class EfficientNetLite0Encoder(Encoder):
         on_error: OnError = "raise",
         max_pixels: int | None = DEFAULT_MAX_PIXELS,
         weights: str | os.PathLike | None = None,
+        crop: float = 1.0,
     ) -> None:
         self.batch_size = batch_size
         self.num_threads = num_threads
         self.on_error = on_error
         self.max_pixels = max_pixels
         self.weights = weights
+        self.crop = crop
 
     def __repr__(self) -> str:
         return (
             f"EfficientNetLite0Encoder(batch_size={self.batch_size}, num_threads={self.num_threads}, "
-            f"on_error={self.on_error!r}, max_pixels={self.max_pixels!r}, weights={self.weights!r})"
+            f"on_error={self.on_error!r}, max_pixels={self.max_pixels!r}, weights={self.weights!r}, crop={self.crop!r})"
         )
 
     # -- identity -------------------------------------------------------------------------
 
     @property
     def identity(self) -> str:  # type: ignore[override]
-        """Architecture plus the first 16 hex digits of the weights file's hash."""
-        return f"efficientnet-lite0-in1k:{_ARCH}:{self._weights_hash()[:16]}"
+        """Architecture, the first 16 hex digits of the weights file's hash, and the crop below 1."""
+        base = f"efficientnet-lite0-in1k:{_ARCH}:{self._weights_hash()[:16]}"
+        # the whole image keeps the identity it always had, so existing cache entries stay valid
+        return base if self.crop == 1.0 else f"{base}:crop{float(self.crop):g}"
 
     @property
     def dim(self) -> int:
@@ -421,6 +441,9 @@ class EfficientNetLite0Encoder(Encoder):
         check_batching(self.batch_size, self.num_threads, who)
         if self.max_pixels is not None and (not isinstance(self.max_pixels, int) or self.max_pixels < 1):
             raise ConfigError(f"{who}: max_pixels must be a positive int or None, got {self.max_pixels!r}")
+        crop = self.crop
+        if isinstance(crop, bool) or not isinstance(crop, Real) or not 0.0 < float(crop) <= 1.0:
+            raise ConfigError(f"{who}: crop must be a number in (0, 1], got {crop!r}")
 
     def load(self) -> EfficientNetLite0Encoder:
         """Build the model and load the weights now (otherwise the first encode does).
@@ -461,7 +484,7 @@ class EfficientNetLite0Encoder(Encoder):
         config = resolve_data_config({}, model=model)
         self.transform_ = create_transform(**config, is_training=False)
         # Enough pixels for the bicubic resize to the short side to antialias properly.
-        self._min_side = 2 * round(config["input_size"][-1] / config["crop_pct"])
+        self._min_side = 2 * round(config["input_size"][-1] / config["crop_pct"] / float(self.crop))
         self.weights_sha256_ = self._weights_hash()
         self.model_ = model
         return self
@@ -531,7 +554,7 @@ class EfficientNetLite0Encoder(Encoder):
                         problems[i] = str(exc)
                         continue
                     rows.append(i)
-                    tensors.append(self.transform_(img))
+                    tensors.append(self.transform_(_centre_crop(img, float(self.crop))))
                 if rows:
                     with torch.inference_mode():
                         batch = torch.stack(tensors).contiguous(memory_format=torch.channels_last)

@@ -193,21 +193,23 @@ def image_vectors(
     encoder: str = "efficientnet_lite0",
     *,
     probs: bool = False,
+    crop: float = 1.0,
     cache_dir: str | None = None,
     progress: bool = False,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Image vectors (or, with ``probs``, ImageNet class probabilities) of every item, cached.
 
     Items whose image cannot be read get a zero row, ``False`` in the mask and a warning.
+    ``crop`` is the share of each side kept around the centre (see :func:`make_image_encoder`).
     """
     if probs:
-        _, class_probs, ok = image_features_and_probs(catalog, encoder, cache_dir=cache_dir, progress=progress)
+        _, class_probs, ok = image_features_and_probs(catalog, encoder, crop=crop, cache_dir=cache_dir, progress=progress)
         return class_probs, ok
     from xrec.encoders.bridge import make_image_encoder
     from xrec.encoders.cache import EmbeddingCache, encode_catalog_images
 
     _check_images(catalog)
-    enc = make_image_encoder(encoder, on_error="skip")
+    enc = make_image_encoder(encoder, on_error="skip", crop=crop)
     return encode_catalog_images(catalog, enc, cache=EmbeddingCache(cache_dir), progress=progress, return_mask=True)  # type: ignore[return-value]
 
 
@@ -215,6 +217,7 @@ def image_features_and_probs(
     catalog: Catalog,
     encoder: str = "efficientnet_lite0",
     *,
+    crop: float = 1.0,
     cache_dir: str | None = None,
     progress: bool = False,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -227,7 +230,7 @@ def image_features_and_probs(
 
     _check_images(catalog)
     cache = EmbeddingCache(cache_dir)
-    probs_enc = ImageNetProbsEncoder(make_image_encoder(encoder, on_error="skip"))
+    probs_enc = ImageNetProbsEncoder(make_image_encoder(encoder, on_error="skip", crop=crop))
     features, ok_f = encode_catalog_images(catalog, probs_enc.features_encoder(), cache=cache, progress=progress, return_mask=True)
     class_probs, ok_p = encode_catalog_images(catalog, probs_enc, cache=cache, progress=progress, return_mask=True)
     return features, class_probs, ok_f & ok_p  # type: ignore[operator]
@@ -375,6 +378,9 @@ class ImageSource(_ProfileSource):
         Progress bar while encoding uncached images.
     center
         See :class:`TextSource`.
+    crop
+        Share of each image's side kept around its centre before encoding, in (0, 1];
+        1 keeps the whole image (see :func:`~xrec.encoders.bridge.make_image_encoder`).
 
     Attributes
     ----------
@@ -391,15 +397,17 @@ class ImageSource(_ProfileSource):
         cache_dir: str | None = None,
         progress: bool = False,
         center: bool = False,
+        crop: float = 1.0,
     ) -> None:
         self.encoder = encoder
         self.half_life_days = half_life_days
         self.cache_dir = cache_dir
         self.progress = progress
         self.center = center
+        self.crop = crop
 
     def _vectors(self, catalog: Catalog) -> tuple[np.ndarray, np.ndarray]:
-        vectors, ok = image_vectors(catalog, self.encoder, cache_dir=self.cache_dir, progress=self.progress)
+        vectors, ok = image_vectors(catalog, self.encoder, crop=self.crop, cache_dir=self.cache_dir, progress=self.progress)
         self.has_content_ = ok
         return vectors, vectors
 
@@ -433,8 +441,9 @@ class CrossModalSource(_ProfileSource):
         Columns forming each item's text (see :class:`TextSource`).
     text_encoder
         Text encoder name (not used with ``"clip"``).
-    image_encoder
-        Image encoder name (not used with ``"clip"``).
+    image_encoder, image_crop
+        Image encoder name and the share of each image's side it sees around the centre
+        (see :class:`ImageSource`'s ``crop``; not used with ``"clip"``).
     top_t, class_template, prior_correction
         ConSE's number of classes combined, the text each class name is put in, and
         whether class probabilities are divided by the catalog's mean prediction first
@@ -473,6 +482,7 @@ class CrossModalSource(_ProfileSource):
         text_columns: Sequence[str] | None = None,
         text_encoder: str = "minilm",
         image_encoder: str = "efficientnet_lite0",
+        image_crop: float = 1.0,
         top_t: int = 10,
         class_template: str = "{}",
         prior_correction: bool = False,
@@ -491,6 +501,7 @@ class CrossModalSource(_ProfileSource):
         self.text_columns = text_columns
         self.text_encoder = text_encoder
         self.image_encoder = image_encoder
+        self.image_crop = image_crop
         self.top_t = top_t
         self.class_template = class_template
         self.prior_correction = prior_correction
@@ -539,7 +550,9 @@ class CrossModalSource(_ProfileSource):
         else:
             bridge = self._make_bridge()
             text, text_ok = text_vectors(catalog, self.text_columns, self.text_encoder, **opts)
-            image, image_ok = image_vectors(catalog, self.image_encoder, probs=bridge.input == "probs", **opts)
+            image, image_ok = image_vectors(
+                catalog, self.image_encoder, probs=bridge.input == "probs", crop=self.image_crop, **opts
+            )
             both = text_ok & image_ok
             if bridge.input == "probs":
                 bridge.fit(image[image_ok])  # unpaired: ConSE reads only the catalog's class prior
@@ -573,7 +586,7 @@ class EarlyFusionSource(_ProfileSource):
         Which of ``"text"``, ``"image"``, ``"attributes"`` to concatenate.
     weights
         Modality → weight (>= 0); modalities left out weigh 1; ``None``: all 1.
-    text_columns, text_encoder, image_encoder
+    text_columns, text_encoder, image_encoder, image_crop
         See :class:`CrossModalSource`.
     half_life_days, cache_dir, progress
         See :class:`TextSource`.
@@ -595,6 +608,7 @@ class EarlyFusionSource(_ProfileSource):
         text_columns: Sequence[str] | None = None,
         text_encoder: str = "minilm",
         image_encoder: str = "efficientnet_lite0",
+        image_crop: float = 1.0,
         half_life_days: float | None = None,
         cache_dir: str | None = None,
         progress: bool = False,
@@ -604,6 +618,7 @@ class EarlyFusionSource(_ProfileSource):
         self.text_columns = text_columns
         self.text_encoder = text_encoder
         self.image_encoder = image_encoder
+        self.image_crop = image_crop
         self.half_life_days = half_life_days
         self.cache_dir = cache_dir
         self.progress = progress
@@ -638,7 +653,7 @@ class EarlyFusionSource(_ProfileSource):
             if m == "text":
                 vectors, _ = text_vectors(catalog, self.text_columns, self.text_encoder, **opts)
             elif m == "image":
-                vectors, _ = image_vectors(catalog, self.image_encoder, **opts)
+                vectors, _ = image_vectors(catalog, self.image_encoder, crop=self.image_crop, **opts)
             else:
                 from xrec.encoders.attributes import AttributeEncoder
 
