@@ -8,7 +8,7 @@ import scipy.sparse as sp
 from scipy.stats import rankdata, zscore
 
 from xrec.blend.normalize import NORMALIZERS, normalize
-from xrec.errors import ConfigError
+from xrec.errors import ConfigError, DataError
 
 
 def _block(seed: int = 0, n_users: int = 40, n_items: int = 30, *, ties: bool = False):
@@ -113,3 +113,13 @@ def test_none_passes_candidates_through_and_no_seen_means_all_candidates():
 def test_unknown_method_is_a_config_error():
     with pytest.raises(ConfigError, match="unknown normalizer 'softmax'"):
         normalize(np.zeros((1, 2), dtype=np.float32), "softmax")
+
+
+@pytest.mark.parametrize("method", ["none", "minmax", "zscore", "rank"])
+def test_non_finite_scores_are_refused(method):
+    scores = np.array([[0.1, np.nan, 0.3], [0.5, 0.2, np.inf]])
+    seen = sp.csr_matrix(np.array([[0, 1, 0], [0, 0, 1]]))
+    # refused even where the items are seen: a NaN would leak into the row statistics
+    for mask in (None, seen):
+        with pytest.raises(DataError, match="2 non-finite values .* first at row 0, item 1"):
+            normalize(scores, method, mask)

@@ -78,7 +78,6 @@ import datetime as _dt
 import inspect
 import math
 import os
-import tempfile
 import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -94,6 +93,7 @@ from xrec.blend.fusion import FUSION_METHODS, Fusion, make_fusion
 from xrec.blend.gating import BANDS
 from xrec.blend.normalize import check_normalizer
 from xrec.data.dataset import Dataset
+from xrec._files import write_text_atomic
 from xrec.errors import ConfigError, FingerprintMismatch
 
 FORMAT = "xrec-blend"
@@ -559,36 +559,10 @@ def save_blend(
     content = spec.to_dict()
     BlendSpec.from_dict(content)  # never write a file that would not read back
     text = "# xrec blend file: load with xrec.runtime.load_blend(path, dataset)\n" + tomli_w.dumps(content)
-    return _write_atomic(Path(path), text)
+    return write_text_atomic(path, text)
 
 
 # -- helpers -----------------------------------------------------------------------------------
-
-
-def _write_atomic(path: Path, text: str) -> Path:
-    folder = path.parent if str(path.parent) else Path(".")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
-    try:
-        # mkstemp makes the file private (0600); give it the mode a plain open() would.
-        try:
-            mode = path.stat().st_mode & 0o777
-        except FileNotFoundError:
-            umask = os.umask(0)
-            os.umask(umask)
-            mode = 0o666 & ~umask
-        os.chmod(tmp, mode)
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        raise
-    return path
 
 
 def _split_parameters() -> list[str]:

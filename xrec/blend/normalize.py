@@ -39,7 +39,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from xrec.blend._rank import Candidates, average_ranks
-from xrec.errors import ConfigError
+from xrec.errors import ConfigError, DataError
 
 NORMALIZERS: tuple[str, ...] = ("none", "minmax", "zscore", "rank")
 
@@ -49,6 +49,16 @@ def check_normalizer(name: object, field: str = "normalizer") -> str:
     if not isinstance(name, str) or name not in NORMALIZERS:
         raise ConfigError(f"{field}: unknown normalizer {name!r}; choose one of {list(NORMALIZERS)}")
     return name
+
+
+def _check_finite(scores: np.ndarray) -> None:
+    finite = np.isfinite(scores)
+    if not finite.all():
+        row, col = (int(v[0]) for v in np.nonzero(~finite))
+        raise DataError(
+            f"scores hold {int((~finite).sum())} non-finite values (NaN or inf), first at row {row}, "
+            f"item {col}; normalizers need finite scores (seen items included: give them any finite value)"
+        )
 
 
 def normalize(
@@ -77,6 +87,11 @@ def normalize(
     -------
     numpy.ndarray
         float32 array of the same shape (see the module docstring for the conventions).
+
+    Raises
+    ------
+    DataError
+        When any score is NaN or infinite.
     """
     check_normalizer(method, "method")
     scores = np.asarray(scores)
@@ -85,6 +100,7 @@ def normalize(
     cand = candidates if candidates is not None else Candidates.from_seen(seen, *scores.shape)
     if cand.shape != scores.shape:
         raise ValueError(f"candidates have shape {cand.shape}, scores have shape {scores.shape}")
+    _check_finite(scores)
     n_cand = cand.n_cand
     has_cand = n_cand > 0
     if scores.size == 0:

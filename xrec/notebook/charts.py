@@ -20,6 +20,7 @@ import altair as alt
 import numpy as np
 import pandas as pd
 
+from xrec._files import write_text_atomic
 from xrec.errors import ConfigError, DataError
 
 __all__ = [
@@ -670,24 +671,6 @@ def charts_to_html(
     page = _PAGE.format(
         title=html.escape(title), intro=intro_html, body="\n".join(body), head_script=head_script, tail_script=tail_script
     )
-    return _write_atomic(path, page)
+    return write_text_atomic(path, page)
 
-
-def _write_atomic(path: Path, text: str) -> Path:
-    import tempfile
-
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(text)
-        umask = os.umask(0)
-        os.umask(umask)
-        # mkstemp creates the file private; a report is an ordinary file.
-        os.chmod(tmp, 0o666 & ~umask)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-    return path
 
