@@ -222,6 +222,16 @@ def _mutations():
     ]
 
 
+def test_a_setting_refused_at_fit_time_names_the_field(tiny, tmp_path):
+    ds, split = tiny
+    path = save_blend(tmp_path / "blend.toml", fitted_blend(split.test), dataset=ds, split_settings=split.settings)
+    raw = tomllib.loads(path.read_text())
+    raw["sources"]["pop"]["params"] = {"recent_days": -3.0}  # a valid TOML value the source refuses only when fitted
+    path.write_text(tomli_w.dumps(raw))
+    with pytest.raises(ConfigError, match=r"sources\.pop\.params: .*recent_days"):
+        load_blend(path, ds)
+
+
 @pytest.mark.parametrize(("mutate", "message"), _mutations())
 def test_strict_schema_names_the_field(tiny, tmp_path, mutate, message):
     content = _valid_content(tiny, tmp_path)

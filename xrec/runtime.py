@@ -170,7 +170,7 @@ def load_blend(path: str | os.PathLike, dataset: Dataset, *, progress: bool = Fa
     fold = split.test if spec.fold == "test" else split.validation
     if fold is None:
         raise ConfigError("split.fold: 'validation' needs split.validation = true")
-    scorer = spec.build().fit(fold, progress=progress)
+    scorer = _fit(spec.build(), fold, progress)
     if verify and spec.check:
         digest = ranking_digest(scorer, int(spec.check["users"]), int(spec.check["k"]))
         if digest != spec.check["digest"]:
@@ -181,6 +181,18 @@ def load_blend(path: str | os.PathLike, dataset: Dataset, *, progress: bool = Fa
                 "(load_blend(..., verify=False) serves anyway)"
             )
     return BlendRuntime(spec=spec, dataset=dataset, fold=fold, scorer=scorer)
+
+
+def _fit(scorer: Any, fold: Fold, progress: bool) -> Any:
+    """Fit each source, naming the file's field when a setting turns out bad only at fit time."""
+    from tqdm.auto import tqdm
+
+    for name in tqdm(list(scorer.sources), desc="fitting sources", disable=not progress):
+        try:
+            scorer.sources[name].fit(fold)
+        except ConfigError as exc:
+            raise ConfigError(f"sources.{name}.params: {exc}") from exc
+    return scorer.fit(fold)  # every source is fitted: this keeps the fold's training matrix
 
 
 def _check_split_record(spec: BlendSpec, settings: dict[str, Any]) -> None:
