@@ -152,3 +152,31 @@ def test_compare_specs_reads_each_specs_own_files(tmp_path):
     b = _tiny_files(tmp_path / "b", ["a", "b", "c", "d", "e", "f"])
     with pytest.raises(ConfigError, match="different data"):
         compare_specs(load_spec(a), load_spec(b))
+
+
+def test_only_fits_and_evaluates_one_scorer_and_what_it_blends(tmp_path, monkeypatch):
+    import xrec.experiment
+
+    spec = load_spec(_write_files_spec(tmp_path))  # sources pop, knn, kind; blend mix = knn + pop
+    fitted: list[str] = []
+    build = xrec.experiment.build_sources
+
+    def counting_build(*args, **kwargs):
+        sources = build(*args, **kwargs)
+        for name, source in sources.items():
+            fit = source.fit
+            source.fit = lambda fold, _fit=fit, _name=name: (fitted.append(_name), _fit(fold))[1]
+        return sources
+
+    monkeypatch.setattr(xrec.experiment, "build_sources", counting_build)
+    full = run_experiment(spec)
+    assert sorted(fitted) == ["kind", "knn", "pop"]
+    fitted.clear()
+    mix = run_experiment(spec, only="mix")
+    assert sorted(fitted) == ["knn", "pop"] and set(mix.scorecards) == {"mix"} and mix.comparison is None
+    # the same numbers as in the full run: one scorer's evaluation does not depend on the others
+    assert mix.scorecards["mix"].means() == full.scorecards["mix"].means()
+    fitted.clear()
+    assert set(run_experiment(spec, only="kind").scorecards) == {"kind"} and fitted == ["kind"]
+    with pytest.raises(ConfigError, match="no source or blend named 'mixx'"):
+        run_experiment(spec, only="mixx")

@@ -131,8 +131,14 @@ def evaluation_options(spec: ExperimentSpec) -> dict[str, Any]:
     return opts
 
 
-def run_experiment(spec: ExperimentSpec, *, progress: bool = False, dataset: Dataset | None = None) -> ExperimentResult:
-    """Fit every source on the test fold's training rows, evaluate sources and blends, compare with the baseline."""
+def run_experiment(
+    spec: ExperimentSpec, *, progress: bool = False, dataset: Dataset | None = None, only: str | None = None
+) -> ExperimentResult:
+    """Fit every source on the test fold's training rows, evaluate sources and blends, compare with the baseline.
+
+    With ``only`` (a source or blend name) just that scorer and the sources it needs are
+    fitted and evaluated, and there is no comparison.
+    """
     from xrec.evaluate import compare, evaluate
     from xrec.split import split_dataset
 
@@ -140,12 +146,21 @@ def run_experiment(spec: ExperimentSpec, *, progress: bool = False, dataset: Dat
     split = split_dataset(dataset, **spec.split)
     fold = split.test
     sources = build_sources(spec, progress=progress)
+    blends = dict(spec.blends)
+    if only is not None:
+        if only in blends:
+            blends = {only: blends[only]}
+            sources = {n: sources[n] for n in _blend_source_names(blends[only], sources)}
+        elif only in sources:
+            blends, sources = {}, {only: sources[only]}
+        else:
+            raise ConfigError(f"no source or blend named {only!r}; known: {sorted([*sources, *blends])}")
     for name, source in _progress(sources.items(), progress, "fitting sources"):
         source.fit(fold)
-    scorers: dict[str, Any] = dict(sources)
+    scorers: dict[str, Any] = dict(sources) if only is None or only in sources else {}
     learned: dict[str, Any] = {}
     valid_sources: dict[str, Source] = {}
-    for name, table in spec.blends.items():
+    for name, table in blends.items():
         try:
             scorers[name] = _build_blend(spec, table, sources, split, valid_sources, learned, name, progress)
         except ConfigError as exc:
@@ -157,7 +172,7 @@ def run_experiment(spec: ExperimentSpec, *, progress: bool = False, dataset: Dat
     }
     comparison = None
     baseline = spec.baseline
-    if baseline is not None and len(scorecards) > 1:
+    if only is None and baseline is not None and len(scorecards) > 1:
         others = [card for name, card in scorecards.items() if name != baseline]
         comparison = compare(scorecards[baseline], *others, seed=int(spec.evaluate.get("seed", 0)))
     return ExperimentResult(spec, dataset, split, scorers, scorecards, comparison, extras={"learned": learned})
@@ -293,9 +308,11 @@ def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progre
     """Paired comparison of the primary scorers of two specs; both must use the same data and split."""
     from xrec.evaluate import compare
 
-    base = run_experiment(baseline, progress=progress)
+    # only each spec's primary scorer (and the sources it blends) is fitted and evaluated
+    base = run_experiment(baseline, progress=progress, only=baseline.primary)
     # Relative paths are compared resolved: the same "items.csv" next to two specs may be two files.
-    cand = run_experiment(candidate, progress=progress, dataset=base.dataset if data_hints(baseline) == data_hints(candidate) else None)
+    same_data = data_hints(baseline) == data_hints(candidate)
+    cand = run_experiment(candidate, progress=progress, dataset=base.dataset if same_data else None, only=candidate.primary)
     if base.dataset.fingerprint() != cand.dataset.fingerprint():
         raise ConfigError("the two specs read different data (dataset fingerprints differ); a paired comparison needs the same data")
     if base.split.settings != cand.split.settings:
