@@ -88,12 +88,12 @@ from typing import Any
 import numpy as np
 import tomli_w
 
+from xrec._files import write_text_atomic
 from xrec.blend.blend import Blend, check_weight
 from xrec.blend.fusion import FUSION_METHODS, Fusion, make_fusion
 from xrec.blend.gating import BANDS
 from xrec.blend.normalize import check_normalizer
 from xrec.data.dataset import Dataset
-from xrec._files import write_text_atomic
 from xrec.errors import ConfigError, FingerprintMismatch
 
 FORMAT = "xrec-blend"

@@ -122,7 +122,24 @@ def make_image_encoder(name: str = "efficientnet_lite0", *, on_error: str = "ski
     raise ConfigError(f"image encoder {name!r} is unknown; known: {list(IMAGE_ENCODERS)}")
 
 
-class ImageNetProbsEncoder(Encoder):
+class _ReadsThroughBase(Encoder):
+    """An encoder that answers through ``self.base``, an image classifier's encoder."""
+
+    modality = "image"
+    base: Encoder
+
+    @property
+    def version(self) -> str:  # type: ignore[override]
+        """The base encoder's version."""
+        return self.base.version
+
+    @property
+    def on_error(self) -> str:
+        """The base encoder's ``on_error`` policy (``"raise"`` when it has none)."""
+        return getattr(self.base, "on_error", "raise")
+
+
+class ImageNetProbsEncoder(_ReadsThroughBase):
     """The ImageNet-1k class probabilities of an image classifier, as an encoder.
 
     Wrapping the probabilities as "vectors" lets the embedding cache store them beside
@@ -143,8 +160,6 @@ class ImageNetProbsEncoder(Encoder):
     costs one pass per image.
     """
 
-    modality = "image"
-
     def __init__(self, base: Encoder | None = None) -> None:
         if base is None:
             base = make_image_encoder("efficientnet_lite0")
@@ -157,16 +172,6 @@ class ImageNetProbsEncoder(Encoder):
     def identity(self) -> str:  # type: ignore[override]
         """The base encoder's identity with a ``:class-probs`` suffix."""
         return f"{self.base.identity}:class-probs"
-
-    @property
-    def version(self) -> str:  # type: ignore[override]
-        """The base encoder's version."""
-        return self.base.version
-
-    @property
-    def on_error(self) -> str:
-        """The base encoder's ``on_error`` policy (``"raise"`` when it has none)."""
-        return getattr(self.base, "on_error", "raise")
 
     @property
     def dim(self) -> int:
@@ -208,10 +213,8 @@ class ImageNetProbsEncoder(Encoder):
         return self.encode_with_mask(contents, progress=progress)[0]
 
 
-class _FeaturesKeepingProbs(Encoder):
+class _FeaturesKeepingProbs(_ReadsThroughBase):
     """The base image encoder's features; each forward pass's probabilities go to the probs encoder."""
-
-    modality = "image"
 
     def __init__(self, probs: ImageNetProbsEncoder) -> None:
         self.probs = probs
@@ -220,16 +223,6 @@ class _FeaturesKeepingProbs(Encoder):
     @property
     def identity(self) -> str:  # type: ignore[override]
         return self.base.identity
-
-    @property
-    def version(self) -> str:  # type: ignore[override]
-        """The base encoder's version."""
-        return self.base.version
-
-    @property
-    def on_error(self) -> str:
-        """The base encoder's ``on_error`` policy (``"raise"`` when it has none)."""
-        return getattr(self.base, "on_error", "raise")
 
     @property
     def dim(self) -> int:
@@ -302,6 +295,13 @@ def _as_matrix(x: Any, what: str, dim: int | None = None) -> np.ndarray:
         bad = np.flatnonzero(~np.isfinite(arr).all(axis=1))
         raise DataError(f"{what} has non-finite values in {len(bad)} rows, first: {bad[:5].tolist()}")
     return arr
+
+
+def _class_probabilities(image: Any, n_classes: int) -> np.ndarray:
+    probs = _as_matrix(image, "class probabilities", n_classes)
+    if (probs < 0).any():
+        raise DataError("class probabilities must be >= 0")
+    return probs
 
 
 def _pairs(image: Any, text: Any) -> tuple[np.ndarray, np.ndarray]:
@@ -429,9 +429,7 @@ class ConSEBridge(Bridge):
     def _class_prior(image: np.ndarray | None, n_classes: int) -> np.ndarray:
         if image is None:
             raise ConfigError("conse with prior_correction needs the catalog's class probabilities: call fit(image)")
-        probs = _as_matrix(image, "class probabilities", n_classes)
-        if (probs < 0).any():
-            raise DataError("class probabilities must be >= 0")
+        probs = _class_probabilities(image, n_classes)
         totals = probs.sum(axis=1)
         present = totals > 0  # zero rows are skipped images, not evidence
         if not present.any():
@@ -447,9 +445,7 @@ class ConSEBridge(Bridge):
         Rows whose top-``T`` probabilities sum to 0 (skipped images) give zero rows.
         """
         self._check_fitted()
-        probs = _as_matrix(image, "class probabilities", len(self.class_vectors_))
-        if (probs < 0).any():
-            raise DataError("class probabilities must be >= 0")
+        probs = _class_probabilities(image, len(self.class_vectors_))
         if self.class_prior_ is not None:
             probs = probs / self.class_prior_
         t = int(self.top_t)

@@ -672,5 +672,3 @@ def charts_to_html(
         title=html.escape(title), intro=intro_html, body="\n".join(body), head_script=head_script, tail_script=tail_script
     )
     return write_text_atomic(path, page)
-
-
