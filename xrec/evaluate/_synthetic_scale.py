@@ -36,6 +36,7 @@ from typing import Any, Self
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
+from threadpoolctl import threadpool_limits
 
 from xrec.errors import ConfigError
 from xrec.fold import Fold
@@ -235,6 +236,16 @@ def make_scale_problem(
     n_pick = train_per_user + heldout_per_user
     if n_pick > n_items // 2:
         raise ConfigError(f"train_per_user + heldout_per_user = {n_pick} must be at most half of n_items ({n_items})")
+    # One BLAS thread: the products here are small, and BLAS threads that wait for each
+    # other on a busy machine make them far slower.
+    with threadpool_limits(1):
+        return _generate(n_users, n_items, train_per_user, heldout_per_user, rank, als_dim, vector_dims, seed)
+
+
+def _generate(
+    n_users: int, n_items: int, train_per_user: int, heldout_per_user: int, rank: int, als_dim: int, vector_dims, seed: int
+) -> ScaleProblem:
+    n_pick = train_per_user + heldout_per_user
     rng = np.random.default_rng(seed)
     scale = np.float32(1.0 / np.sqrt(rank))
     P = (rng.standard_normal((n_users, rank), dtype=np.float32) * scale).astype(np.float32)
