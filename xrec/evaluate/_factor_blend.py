@@ -39,6 +39,8 @@ from xrec.errors import ConfigError
 LINEAR_NORMALIZERS = ("none", "zscore")
 # Item rows per step when accumulating the item factors' sum and Gram matrix.
 _ITEM_STEP = 1 << 16
+# Scratch budget of the seen-score gather.
+_SEEN_BYTES = 16 << 20
 # Relative variance below which a user's row is read as constant.
 _CONSTANT_RTOL = 1e-12
 
@@ -64,7 +66,12 @@ def item_moments(item_factors: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def zscore_moments(
-    user_rows: np.ndarray, item_factors: np.ndarray, total: np.ndarray, gram: np.ndarray, seen: sp.csr_matrix
+    user_rows: np.ndarray,
+    item_factors: np.ndarray,
+    total: np.ndarray,
+    gram: np.ndarray,
+    seen: sp.csr_matrix,
+    seen_scores: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Exact mean and population std of each user's raw scores over their candidates.
 
@@ -78,16 +85,22 @@ def zscore_moments(
         From :func:`item_moments`.
     seen
         ``(b, n)`` canonical CSR: the block's training items (not candidates).
+    seen_scores
+        The raw scores at ``seen``'s stored entries, in its order, when already known.
 
     Returns
     -------
     mean, std
         float64 arrays of length ``b``; ``std`` is 0 for constant rows and rows without candidates.
     """
-    u = np.asarray(user_rows, dtype=np.float64)
     b, n = seen.shape
     rows = np.repeat(np.arange(b), np.diff(seen.indptr))
-    s_seen = np.einsum("kd,kd->k", u[rows], np.asarray(item_factors[seen.indices], dtype=np.float64))
+    user_rows = np.asarray(user_rows, dtype=np.float32)
+    if seen_scores is None:
+        # Seen scores in float32 (as the product computes them), summed in float64.
+        seen_scores = np.einsum("kd,kd->k", user_rows[rows], np.asarray(item_factors[seen.indices], dtype=np.float32))
+    s_seen = np.asarray(seen_scores, dtype=np.float64)
+    u = user_rows.astype(np.float64)
     n_cand = n - np.diff(seen.indptr)
     count = np.maximum(n_cand, 1).astype(np.float64)
     s1 = u @ total - np.bincount(rows, weights=s_seen, minlength=b)
@@ -160,6 +173,8 @@ class FactorBlend:
         sizes = {len(v) for _, v in self._factors.values()}
         if len(sizes) > 1:
             raise ConfigError(f"sources: item factors have different numbers of items {sorted(sizes)}")
+        widths = np.cumsum([0] + [v.shape[1] for _, v in self._factors.values()])
+        self._columns = {n: (int(widths[i]), int(widths[i + 1])) for i, n in enumerate(self.linear)}
         self._moments = {n: item_moments(v) for n, (_, v) in self._factors.items() if self.normalizers[n] == "zscore"}
         self.item_side = (
             np.ascontiguousarray(np.hstack([v for _, v in self._factors.values()]), dtype=np.float32)
@@ -171,16 +186,48 @@ class FactorBlend:
         """User and item factors of a linear source."""
         return self._factors[name]
 
+    def seen_scores(self, users: np.ndarray, seen: sp.csr_matrix) -> dict[str, np.ndarray]:
+        """Raw float32 scores of every z-score source at ``seen``'s stored entries.
+
+        One gather of the side-by-side item factors per step of users (a few MiB of
+        scratch) serves every source.
+        """
+        names = [n for n in self.linear if self.normalizers[n] == "zscore"]
+        if not names:
+            return {}
+        cols = {n: self._columns[n] for n in names}
+        users_side = np.hstack([self._factors[n][0][users] for n in names]).astype(np.float32, copy=False)
+        item_cols = np.concatenate([np.arange(*cols[n]) for n in names])
+        offsets = np.r_[0, np.cumsum([cols[n][1] - cols[n][0] for n in names])]
+        selector = np.zeros((len(item_cols), len(names)), dtype=np.float32)
+        for j in range(len(names)):
+            selector[offsets[j] : offsets[j + 1], j] = 1.0
+        out = {n: np.empty(seen.nnz, dtype=np.float32) for n in names}
+        counts = np.diff(seen.indptr)
+        step = max(1, _SEEN_BYTES // (4 * len(item_cols) * max(1, int(counts.max(initial=1)))))
+        for lo in range(0, len(users), step):
+            hi = min(len(users), lo + step)
+            a, z = seen.indptr[lo], seen.indptr[hi]
+            items = self.item_side[seen.indices[a:z]]
+            if len(item_cols) != self.item_side.shape[1]:
+                items = items[:, item_cols]
+            prod = items * np.repeat(users_side[lo:hi], counts[lo:hi], axis=0)
+            sums = prod @ selector  # per-source sums of the products, one BLAS call
+            for j, n in enumerate(names):
+                out[n][a:z] = sums[:, j]
+        return out
+
     def slopes(self, users: np.ndarray, seen: sp.csr_matrix) -> dict[str, np.ndarray]:
         """Per linear source, ``w_s · a_us`` (float64, >= 0) for the block's users."""
         out = {}
+        seen_scores = self.seen_scores(users, seen)
         for name in self.linear:
             w = self.weights[name]
             if self.normalizers[name] == "none":
                 out[name] = np.full(len(users), w)
                 continue
             u, v = self._factors[name]
-            _, std = zscore_moments(u[users], v, *self._moments[name], seen)
+            _, std = zscore_moments(u[users], v, *self._moments[name], seen, seen_scores[name])
             out[name] = np.divide(w, std, out=np.zeros(len(users)), where=std > 0)
         return out
 

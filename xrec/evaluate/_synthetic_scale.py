@@ -55,6 +55,8 @@ DEFAULT_WEIGHTS: dict[str, float] = {"als": 1.0, "text": 0.5, "image": 0.3, "pop
 
 # Users generated together (bounds the pool scratch: chunk × pool × rank floats).
 _CHUNK = 512
+# Slices of the inverse-CDF table of the popularity law (a draw is exact to 1 / _TABLE).
+_TABLE = 1 << 22
 
 
 class GeneratedFactors(LowRankSource):
@@ -163,10 +165,9 @@ def _l2_rows(x: np.ndarray) -> np.ndarray:
 def _draw_rows(
     rng: np.random.Generator, P: np.ndarray, Q: np.ndarray, cdf: np.ndarray, n_pick: int, pool: int, noise: float
 ) -> np.ndarray:
-    """For a chunk of users: ``(b, n_pick)`` chosen items (``-1`` when a pool ran short), in random order."""
+    """For a chunk of users (``cdf``: the inverse-CDF table): ``(b, n_pick)`` chosen items (``-1`` when a pool ran short), in random order."""
     b = len(P)
-    cand = np.searchsorted(cdf, rng.random((b, pool), dtype=np.float64), side="right").astype(np.int64)
-    np.minimum(cand, len(cdf) - 1, out=cand)
+    cand = cdf[(rng.random((b, pool), dtype=np.float32) * len(cdf)).astype(np.int64)]
     cand.sort(axis=1)
     dup = np.zeros(cand.shape, dtype=bool)
     dup[:, 1:] = cand[:, 1:] == cand[:, :-1]
@@ -255,6 +256,8 @@ def _generate(
     weight[rng.permutation(n_items)] = 1.0 / (np.arange(n_items) + 10.0) ** 0.8
     cdf = np.cumsum(weight)
     cdf /= cdf[-1]
+    # Inverse-CDF table: item drawn for each of _TABLE equal slices of [0, 1).
+    cdf = np.minimum(np.searchsorted(cdf, (np.arange(_TABLE) + 0.5) / _TABLE), n_items - 1).astype(np.int64)
 
     pool = max(8 * n_pick, 64)
     train_rows, train_cols, held_rows, held_cols = [], [], [], []
