@@ -62,11 +62,17 @@ def _gamma(d: int) -> float:
 
 
 def top_n_items(
-    user_rows: np.ndarray, item_factors: np.ndarray, n: int, backend: str = "faiss", *, item_order: np.ndarray | None = None
+    user_rows: np.ndarray,
+    item_factors: np.ndarray,
+    n: int,
+    backend: str = "faiss",
+    *,
+    seen: sp.csr_matrix | None = None,
+    item_order: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Exact top-``n`` items by inner product ``user_rows @ item_factors.T`` per row.
 
-    Every item is scored (an exhaustive search), seen items included.
+    Every item is scored (an exhaustive search).
 
     Parameters
     ----------
@@ -77,17 +83,23 @@ def top_n_items(
     n
         List length, ``1 <= n <= n_items``.
     backend
-        ``"faiss"`` (``faiss.knn`` with the inner-product metric) or ``"numpy"`` (products
-        in row steps and ``argpartition``). Rank-1 factors (``d == 1``, e.g. popularity)
-        take neither: the items sorted once give every user's list.
+        ``"faiss"`` (``faiss.knn`` with the inner-product metric, over every item) or
+        ``"numpy"`` (products in row steps, then :func:`xrec.evaluate.top_k_items`, which
+        leaves out the ``seen`` items). Rank-1 factors (``d == 1``, e.g. popularity) take
+        neither: the items sorted once give every user's list (seen items included).
+    seen
+        ``(b, n_items)`` CSR of items to leave out (numpy backend only); ``None``: none.
     item_order
         For rank-1 factors, ``argsort`` of the item factor (computed when not given).
 
     Returns
     -------
     ids, scores
-        ``(b, n)`` int64 item indices and their float32 scores (not sorted within a row).
+        ``(b, n)`` int64 item indices and their float32 scores; ``-1`` ids (score ``-inf``)
+        pad a row that has fewer than ``n`` items left.
     """
+    from xrec.evaluate._ranking import top_k_items
+
     user_rows = np.ascontiguousarray(user_rows, dtype=np.float32)
     item_factors = np.ascontiguousarray(item_factors, dtype=np.float32)
     b, d = user_rows.shape
@@ -102,14 +114,16 @@ def top_n_items(
 
         scores, ids = faiss.knn(user_rows, item_factors, n, metric=faiss.METRIC_INNER_PRODUCT)
         return ids.astype(np.int64), scores.astype(np.float32)
+    if seen is None:
+        seen = sp.csr_matrix((b, len(item_factors)), dtype=np.float32)
     step = max(1, _SEARCH_BYTES // (4 * len(item_factors)))
     ids = np.empty((b, n), dtype=np.int64)
     scores = np.empty((b, n), dtype=np.float32)
     for lo in range(0, b, step):
         block = user_rows[lo : lo + step] @ item_factors.T
-        part = np.argpartition(block, len(item_factors) - n, axis=1)[:, -n:] if n < len(item_factors) else np.argsort(block, axis=1)
+        part = top_k_items(block, seen[lo : lo + step], n)
         ids[lo : lo + step] = part
-        scores[lo : lo + step] = np.take_along_axis(block, part, axis=1)
+        scores[lo : lo + step] = np.where(part >= 0, np.take_along_axis(block, np.maximum(part, 0), axis=1), -np.inf)
     return ids, scores
 
 
@@ -171,6 +185,15 @@ class CandidateEvaluation:
         return pd.DataFrame.from_dict(rows, orient="index")
 
 
+def _max_row_norm(rows: np.ndarray) -> float:
+    """Largest Euclidean row norm, in steps of rows (no float64 copy of a large factor matrix)."""
+    best = 0.0
+    for lo in range(0, len(rows), 1 << 16):
+        part = np.asarray(rows[lo : lo + (1 << 16)], dtype=np.float64)
+        best = max(best, float(np.sqrt(np.einsum("ij,ij->i", part, part).max(initial=0.0))))
+    return best
+
+
 def _check_top_n(top_n: object, n_items: int) -> int:
     if isinstance(top_n, bool) or not isinstance(top_n, (int, np.integer)) or top_n < 1:
         raise ConfigError(f"top_n must be a positive int, got {top_n!r}")
@@ -197,7 +220,8 @@ def _union_ranks(
     b, n = truth.shape
     rows = [np.repeat(np.arange(b, dtype=np.int64), lst.shape[1]) for lst in lists]
     t_rows = np.repeat(np.arange(b, dtype=np.int64), np.diff(truth.indptr))
-    keys = _unique(np.concatenate([r * n + lst.ravel() for r, lst in zip(rows, lists)] + [t_rows * n + truth.indices]))
+    listed = [r * n + lst.ravel() for r, lst in zip(rows, lists)]
+    keys = _unique(np.concatenate([k[lst.ravel() >= 0] for k, lst in zip(listed, lists)] + [t_rows * n + truth.indices]))
     u_rows, u_items = keys // n, keys % n
     counts = np.bincount(u_rows, minlength=b)
     starts = np.r_[0, np.cumsum(counts)]
@@ -292,7 +316,7 @@ def evaluate_candidates(
     top_n = _check_top_n(top_n, n_items)
     if isinstance(chunk_size, bool) or not isinstance(chunk_size, (int, np.integer)) or chunk_size < 1:
         raise ConfigError(f"chunk_size must be a positive int, got {chunk_size!r}")
-    max_norm = {n: float(np.linalg.norm(np.asarray(blend.factors(n)[1], dtype=np.float64), axis=1).max()) for n in blend.linear}
+    max_norm = {n: _max_row_norm(blend.factors(n)[1]) for n in blend.linear}
     dims = {n: blend.factors(n)[1].shape[1] for n in blend.linear}
     total_dim = blend.item_side.shape[1]
     orders = {n: np.argsort(blend.factors(n)[1][:, 0], kind="stable") for n in blend.linear if dims[n] == 1}
@@ -305,12 +329,14 @@ def evaluate_candidates(
         lists, threshold, margin = [], np.zeros(len(chunk)), np.zeros(len(chunk))
         for name_s in blend.linear:
             u_s, v_s = blend.factors(name_s)
-            ids, scores = top_n_items(u_s[chunk], v_s, top_n, backend, item_order=orders.get(name_s))
+            ids, scores = top_n_items(u_s[chunk], v_s, top_n, backend, seen=seen_rows, item_order=orders.get(name_s))
             lists.append(ids)
             if top_n == n_items:  # every item is listed: nothing lies outside the union
                 threshold[:] = -np.inf
                 continue
-            threshold += slopes[name_s] * scores.min(axis=1).astype(np.float64)
+            # A padded row lists every unseen item: nothing unseen lies outside (bound -inf).
+            tau = scores.min(axis=1).astype(np.float64)
+            threshold += np.multiply(slopes[name_s], tau, out=np.zeros(len(chunk)), where=slopes[name_s] > 0)
             margin += slopes[name_s] * norms[name_s] * max_norm[name_s] * (_gamma(dims[name_s]) + _gamma(total_dim) + 2 * _UNIT)
         ranks, target, union_size = _union_ranks(blend, chunk, slopes, lists, seen_rows, truth_rows)
         row_of = ranks.row_of
