@@ -13,7 +13,8 @@ Every (case, engine) pair runs in its own subprocess, so peak memory is that cas
 * ``cells_per_s``: evaluated users × items / ``wall_s``.
 
 Engines (pluggable: ``ENGINES[name] = fn(problem, users, case) -> dict``; another module can
-add its own and run ``main()``): ``chunked`` (full ranking, :func:`evaluate_blend_chunked`,
+add its own and run ``main()``): ``evaluate-blend`` (the general path,
+``evaluate(Blend(...), fold)``, as a baseline), ``chunked`` (full ranking, :func:`evaluate_blend_chunked`,
 one worker thread per CPU), ``chunked-1`` (one thread), ``candidates-faiss`` and
 ``candidates-numpy`` (:func:`evaluate_candidates`, top-100 per source).
 
@@ -57,6 +58,11 @@ CASES: dict[str, tuple[int, int, int, int | None]] = {
     "catalog-1m": (100_000, 1_000_000, 50, 2_000),
 }
 GROWTH = ("grow-1", "grow-2", "grow-3", "grow-4", "ml-20m")
+#: engines run per case when --engines is not given (others: ["chunked"])
+DEFAULT_ENGINES = {
+    "ml-1m": ["evaluate-blend", "chunked", "chunked-1"],
+    "catalog-1m": ["chunked", "candidates-faiss", "candidates-numpy"],
+}
 
 
 def _chunked(threads: int | None) -> Callable:
@@ -90,8 +96,19 @@ def _candidates(backend: str, top_n: int = 100) -> Callable:
     return run
 
 
+def _evaluate_blend(problem, users, case):
+    """The general path, as a baseline: ``evaluate(Blend(...), fold)``."""
+    from xrec.blend import Blend
+    from xrec.evaluate import evaluate
+
+    fold = problem.fold
+    card = evaluate(Blend(problem.sources, problem.weights).fit(fold), fold, ks=KS, metrics=("hit_rate", "ndcg"), users=users)
+    return {"ndcg@10": float(card.per_user["ndcg@10"].mean()), "hit_rate@10": float(card.per_user["hit_rate@10"].mean())}
+
+
 #: engine name -> fn(problem, users, case) -> dict of extra columns
 ENGINES: dict[str, Callable] = {
+    "evaluate-blend": _evaluate_blend,
     "chunked": _chunked(None),
     "chunked-1": _chunked(1),
     "candidates-faiss": _candidates("faiss"),
@@ -205,7 +222,7 @@ def to_markdown(rows: list[dict], exponents: dict[str, float | None]) -> str:
 def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--cases", nargs="+", default=["ml-1m", *GROWTH[:-1], "ml-20m", "catalog-1m"], choices=sorted(CASES))
-    parser.add_argument("--engines", nargs="+", default=None, help="default: chunked everywhere, plus candidates on catalog-1m")
+    parser.add_argument("--engines", nargs="+", default=None, help="default: DEFAULT_ENGINES per case, else chunked")
     parser.add_argument("--sample", type=int, default=None, help="users evaluated on catalog-1m (default 2000)")
     parser.add_argument("--out", default=str(RESULTS / "bench_scale"))
     parser.add_argument("--one", nargs=2, metavar=("CASE", "ENGINE"), help=argparse.SUPPRESS)
@@ -219,7 +236,7 @@ def main(argv: list[str] | None = None) -> None:
     extra = [] if args.sample is None else ["--sample", str(args.sample)]
     rows = []
     for case in args.cases:
-        engines = args.engines or (["chunked", "candidates-faiss", "candidates-numpy"] if case == "catalog-1m" else ["chunked"])
+        engines = args.engines or DEFAULT_ENGINES.get(case, ["chunked"])
         for engine in engines:
             row = _subprocess(case, engine, extra)
             rows.append(row)
