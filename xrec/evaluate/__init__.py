@@ -1,4 +1,4 @@
-"""Offline evaluation: full-ranking metrics, scorecards, paired comparisons."""
+"""Offline evaluation: full-ranking metrics, scorecards, paired comparisons; sharded over Dask workers."""
 
 from xrec.evaluate._metrics import ALL_METRICS, metrics_from_ranks
 from xrec.evaluate._ranking import UNRANKED, BlockRanks, count_at_least, rank_heldout, top_k_items
@@ -6,6 +6,7 @@ from xrec.evaluate.compare import Comparison, compare
 from xrec.evaluate.evaluator import as_score_fn, evaluate, evaluate_blocks
 from xrec.evaluate.protocols import FullRanking, SampledNegatives
 from xrec.evaluate.scorecard import Scorecard
+from xrec.evaluate.sharded import evaluate_blocks_sharded, evaluate_sharded
 
 __all__ = [
     "ALL_METRICS",
@@ -20,6 +21,8 @@ __all__ = [
     "count_at_least",
     "evaluate",
     "evaluate_blocks",
+    "evaluate_blocks_sharded",
+    "evaluate_sharded",
     "metrics_from_ranks",
     "rank_heldout",
     "top_k_items",

@@ -1,0 +1,196 @@
+"""Evaluation sharded by users on a Dask LocalCluster (xrec.evaluate.sharded, xrec.cluster).
+
+One 2-process LocalCluster is shared by the module (it starts in a few seconds).
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from _synthetic import FixedScores, interaction_frame, synthetic_fold
+from xrec.blend import Blend
+from xrec.cluster import check_cluster_options, open_client
+from xrec.errors import ConfigError, DataError
+from xrec.evaluate import SampledNegatives, evaluate
+from xrec.evaluate import evaluate_blocks_sharded, evaluate_sharded
+from xrec.evaluate.sharded import shard_bounds
+from xrec.sources import make_source
+
+distributed = pytest.importorskip("distributed")
+
+
+def _problem(seed: int = 0, n_users: int = 300, n_items: int = 90):
+    """A fold with 3-12 training items and 1-3 held-out items per user, and a 2-source blend on it."""
+    rng = np.random.default_rng(seed)
+    train_u, train_i, held_u, held_i = [], [], [], []
+    for u in range(n_users):
+        items = rng.choice(n_items, size=int(rng.integers(4, 16)), replace=False)
+        n_held = int(rng.integers(1, 4))
+        held_i += items[:n_held].tolist()
+        held_u += [u] * n_held
+        train_i += items[n_held:].tolist()
+        train_u += [u] * (len(items) - n_held)
+    fold = synthetic_fold(n_users, n_items, interaction_frame(train_u, train_i), interaction_frame(held_u, held_i))
+    # float32 draws are distinct with overwhelming probability, so no ties anywhere
+    raw = rng.standard_normal((n_users, n_items)).astype(np.float32)
+    blend = Blend(
+        {"popularity": make_source("popularity"), "fixed": FixedScores(raw)},
+        weights={"popularity": 0.4, "fixed": 1.0},
+        normalizers="zscore",
+    ).fit(fold)
+    return fold, blend
+
+
+class KillsItsWorkerOnce:
+    """Scores like ``inner``, but the first time it scores ``victim`` it kills the process it runs in.
+
+    A marker file records the kill, so the retried shard goes through. It never kills the
+    process that made it (the test's own).
+    """
+
+    def __init__(self, inner, victim: int, marker: Path) -> None:
+        self.inner = inner
+        self.victim = victim
+        self.marker = marker
+        self.owner_pid = os.getpid()
+
+    def score(self, users):
+        users = np.asarray(users)
+        if self.victim in users and os.getpid() != self.owner_pid and not self.marker.exists():
+            self.marker.write_text(str(os.getpid()))
+            os.kill(os.getpid(), signal.SIGKILL)
+        return self.inner.score(users)
+
+
+@pytest.fixture(scope="module")
+def client():
+    with open_client(workers=2) as c:
+        yield c
+
+
+def _assert_same_card(ours, reference):
+    pd.testing.assert_frame_equal(ours.per_user, reference.per_user, check_exact=True)
+    assert ours.list_metrics == reference.list_metrics
+    assert ours.ks == reference.ks and ours.protocol == reference.protocol and ours.n_items == reference.n_items
+    assert ours.fold_settings == reference.fold_settings
+
+
+@pytest.mark.parametrize("protocol", [None, SampledNegatives(n_negatives=20, seed=3)], ids=["full", "sampled"])
+def test_sharded_per_user_values_equal_one_process(client, protocol):
+    fold, blend = _problem()
+    kw = dict(ks=(1, 5, 10), chunk_size=16, protocol=protocol)
+    with pytest.warns(UserWarning) if protocol is not None else _no_warning():
+        reference = evaluate(blend, fold, **kw)
+    with pytest.warns(UserWarning) if protocol is not None else _no_warning():
+        ours = evaluate_sharded(blend, fold, shard_size=40, client=client, **kw)
+    _assert_same_card(ours, reference)
+    assert ours.per_user["user"].is_unique and ours.n_users == len(fold.eval_users)
+
+
+def _no_warning():
+    import contextlib
+
+    return contextlib.nullcontext()
+
+
+def test_sharded_user_subset_and_array_scorer(client):
+    fold, blend = _problem(seed=1)
+    users = np.sort(np.random.default_rng(5).choice(fold.eval_users, 97, replace=False))[::-1].copy()
+    scores = blend.score(np.arange(fold.n_users))
+    reference = evaluate(scores, fold, users=users, ks=(3, 10), chunk_size=7)
+    ours = evaluate_sharded(scores, fold, users=users, ks=(3, 10), chunk_size=7, client=client)
+    _assert_same_card(ours, reference)
+    np.testing.assert_array_equal(ours.users, users)  # the caller's order, not sorted
+
+
+def test_sharded_by_scheduler_address(client):
+    fold, blend = _problem(seed=2, n_users=120)
+    reference = evaluate_blocks_sharded(blend, fold.train_matrix, fold.heldout_matrix, chunk_size=32, client=client)
+    ours = evaluate_blocks_sharded(
+        blend, fold.train_matrix, fold.heldout_matrix, chunk_size=32, scheduler=client.scheduler.address
+    )
+    _assert_same_card(ours, reference)
+
+
+def test_killed_worker_shard_is_retried(client, tmp_path):
+    fold, blend = _problem(seed=4)
+    reference = evaluate(blend, fold, ks=(5, 10), chunk_size=16)
+    marker = tmp_path / "killed"
+    victim = int(fold.eval_users[len(fold.eval_users) // 2])
+    pids_before = set(client.run(os.getpid).values())
+    dying = KillsItsWorkerOnce(blend, victim, marker)
+    ours = evaluate_sharded(dying, fold, ks=(5, 10), chunk_size=16, shard_size=32, client=client, name="blend")
+    # the kill happened, in a worker process (not this one), and that worker is gone
+    assert marker.exists()
+    killed_pid = int(marker.read_text())
+    assert killed_pid in pids_before and killed_pid != os.getpid()
+    client.wait_for_workers(2, timeout=60)
+    assert killed_pid not in set(client.run(os.getpid).values())
+    # every user exactly once, every value as in one process
+    assert ours.per_user["user"].is_unique
+    ours.name = reference.name
+    _assert_same_card(ours, reference)
+
+
+def test_sharded_metrics_match_trec_eval(client):
+    pytrec_eval = pytest.importorskip("pytrec_eval")
+    fold, blend = _problem(seed=6)
+    card = evaluate_sharded(blend, fold, ks=(5, 10), chunk_size=16, client=client)
+    sample = np.random.default_rng(0).choice(card.n_users, 40, replace=False)
+    seen, truth = fold.train_matrix, fold.heldout_matrix
+    qrels, run = {}, {}
+    for pos in sample:
+        u = int(card.users[pos])
+        scores = blend.score(np.array([u]))[0]
+        unseen = np.setdiff1d(np.arange(fold.n_items), seen[u].indices)
+        qrels[f"q{u}"] = {f"d{i}": 1 for i in truth[u].indices}
+        run[f"q{u}"] = {f"d{j}": float(scores[j]) for j in unseen}
+    res = pytrec_eval.RelevanceEvaluator(qrels, {"ndcg_cut.5,10", "recall.5,10", "success.5,10"}).evaluate(run)
+    rows = card.per_user.iloc[sample]
+    for k in (5, 10):
+        # Source: trec_eval's ndcg_cut_K, recall_K and success_K through pytrec_eval
+        # (pytrec-eval-terrier), the reference implementation used by TREC.
+        expected = pd.DataFrame([res[f"q{int(u)}"] for u in rows["user"]])
+        np.testing.assert_allclose(rows[f"ndcg@{k}"], expected[f"ndcg_cut_{k}"], atol=1e-9)
+        np.testing.assert_allclose(rows[f"recall@{k}"], expected[f"recall_{k}"], atol=1e-12)
+        np.testing.assert_allclose(rows[f"hit_rate@{k}"], expected[f"success_{k}"], atol=1e-12)
+
+
+def test_shard_bounds_cut_on_chunk_boundaries():
+    bounds = shard_bounds(1000, 64, 100, 2)
+    assert bounds[0] == (0, 128) and bounds[-1] == (896, 1000)
+    assert all(start % 64 == 0 for start, _ in bounds)
+    assert [b for s, e in bounds for b in range(s, e)] == list(range(1000))
+    assert len(shard_bounds(1000, 10, None, 2)) == 8  # about four shards per worker
+
+
+def test_bad_options_are_refused(client):
+    fold, blend = _problem(n_users=20)
+    with pytest.raises(ConfigError, match="shard_size"):
+        evaluate_sharded(blend, fold, shard_size=0, client=client)
+    with pytest.raises(ConfigError, match="scorer must be"):
+        evaluate_sharded("nope", fold, client=client)
+    with pytest.raises(DataError, match="out of range"):
+        evaluate_sharded(blend, fold, users=np.array([999]), client=client)
+    with pytest.raises(ConfigError, match="workers"):
+        check_cluster_options("tcp://127.0.0.1:1", 2)
+    with pytest.raises(ConfigError, match="workers"):
+        check_cluster_options(None, 0)
+    with pytest.raises(ConfigError, match="scheduler"):
+        check_cluster_options("", None)
+    with pytest.raises(ConfigError, match="not both"):
+        with open_client(workers=2, client=client):
+            pass
+
+
+def test_errors_on_a_worker_reach_the_caller(client):
+    fold, blend = _problem(n_users=40)
+    bad = FixedScores(np.full((fold.n_users, fold.n_items + 1), 1.0, dtype=np.float32))
+    with pytest.raises(DataError, match="scorer returned shape"):
+        evaluate_sharded(bad, fold, client=client)

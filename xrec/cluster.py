@@ -1,0 +1,116 @@
+"""Connecting to a Dask cluster for the sharded jobs (evaluation by users, encoding by items).
+
+xrec does not schedule anything itself: :mod:`dask.distributed` runs the shard tasks,
+retries the shards of a worker that dies, and moves the data. This module only decides
+which cluster to use:
+
+* ``client=`` an existing :class:`distributed.Client` — used as it is and left open;
+* ``scheduler="tcp://host:8786"`` — the address of a running scheduler (started with
+  ``dask scheduler`` and ``dask worker ADDRESS``); the workers must be able to import
+  xrec and read the same files (data, embedding cache) as the caller;
+* neither — a :class:`distributed.LocalCluster` on this machine: ``workers`` processes
+  with one thread each (default: one per CPU core), closed again when the job ends.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import logging
+import os
+from collections.abc import Iterator
+from typing import TYPE_CHECKING, Any
+
+from xrec.errors import ConfigError
+
+if TYPE_CHECKING:
+    from distributed import Client
+
+#: Seconds to wait for a scheduler given by address before giving up.
+CONNECT_TIMEOUT = 30
+
+
+def check_cluster_options(scheduler: Any = None, workers: Any = None, *, where: str = "") -> None:
+    """Raise :class:`ConfigError` unless ``scheduler`` is ``None`` or an address and ``workers`` ``None`` or an int >= 1.
+
+    ``where`` prefixes the field names in messages (e.g. ``"evaluate."`` for a spec).
+    """
+    if scheduler is not None and (not isinstance(scheduler, str) or not scheduler.strip()):
+        raise ConfigError(f"{where}scheduler: give a scheduler address such as 'tcp://127.0.0.1:8786', got {scheduler!r}")
+    if workers is not None and (not isinstance(workers, int) or isinstance(workers, bool) or workers < 1):
+        raise ConfigError(f"{where}workers: must be an integer >= 1, got {workers!r}")
+    if scheduler is not None and workers is not None:
+        raise ConfigError(
+            f"{where}workers: the number of workers is set only for a local cluster; "
+            f"a running scheduler ({scheduler}) has the workers that were started for it"
+        )
+
+
+def default_workers() -> int:
+    """Workers of a local cluster when none is asked for: one per CPU core."""
+    return max(1, os.cpu_count() or 1)
+
+
+@contextlib.contextmanager
+def open_client(
+    scheduler: str | None = None,
+    workers: int | None = None,
+    *,
+    client: Client | None = None,
+) -> Iterator[Client]:
+    """A Dask client for the duration of a ``with`` block.
+
+    Parameters
+    ----------
+    scheduler
+        Address of a running Dask scheduler; ``None`` starts a local cluster.
+    workers
+        Worker processes of the local cluster (one thread each); default one per core.
+        Not allowed together with ``scheduler``.
+    client
+        An open client to use instead (then ``scheduler`` and ``workers`` must be ``None``);
+        it is not closed at the end.
+
+    Yields
+    ------
+    distributed.Client
+
+    Raises
+    ------
+    ConfigError
+        Bad options, or no scheduler answering at ``scheduler``.
+    """
+    if client is not None:
+        if scheduler is not None or workers is not None:
+            raise ConfigError("give either an open client or scheduler/workers, not both")
+        yield client
+        return
+    check_cluster_options(scheduler, workers)
+    from distributed import Client, LocalCluster
+
+    if scheduler is not None:
+        try:
+            connected = Client(scheduler, timeout=CONNECT_TIMEOUT)
+        except (OSError, TimeoutError) as exc:
+            raise ConfigError(f"scheduler: cannot reach a Dask scheduler at {scheduler!r}: {exc}") from exc
+        with connected:
+            yield connected
+        return
+    n = workers or default_workers()
+    with LocalCluster(
+        n_workers=n,
+        threads_per_worker=1,
+        processes=True,
+        dashboard_address=None,
+        silence_logs=logging.ERROR,
+    ) as cluster, Client(cluster) as local:
+        yield local
+
+
+def scatter_to_all(client: Client, value: Any) -> Any:
+    """``value`` copied once to every worker; returns its future (pass it to ``client.submit``).
+
+    Every worker holds a copy, so a worker that dies loses nothing: its replacement
+    fetches the value from another worker.
+    """
+    # A list of one, so a list or dict value is sent whole rather than element by element.
+    return client.scatter([value], broadcast=True, hash=False)[0]
