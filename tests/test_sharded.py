@@ -194,3 +194,80 @@ def test_errors_on_a_worker_reach_the_caller(client):
     bad = FixedScores(np.full((fold.n_users, fold.n_items + 1), 1.0, dtype=np.float32))
     with pytest.raises(DataError, match="scorer returned shape"):
         evaluate_sharded(bad, fold, client=client)
+
+
+# ------------------------------------------------------------------ specs and the command line
+
+
+def _write_spec(folder: Path, evaluate_lines: str = "") -> Path:
+    """A small CSV shop (two taste groups) and a spec with three sources and a blend."""
+    rows = []
+    for u in range(60):
+        group = u % 2
+        items = [f"i{group * 20 + (u * 7 + 3 * j) % 20}" for j in range(9)]
+        rows += [{"user": f"u{u}", "item": it, "timestamp": 1000 + u * 10 + j} for j, it in enumerate(items)]
+    pd.DataFrame(rows).drop_duplicates(["user", "item"]).to_csv(folder / "events.csv", index=False)
+    kinds = ["a" if j < 20 else "b" for j in range(40)]
+    pd.DataFrame({"item": [f"i{j}" for j in range(40)], "kind": kinds}).to_csv(folder / "items.csv", index=False)
+    spec = folder / "shop.toml"
+    spec.write_text(
+        f"""
+[data]
+dataset = "files"
+catalog = "items.csv"
+interactions = "events.csv"
+categorical = ["kind"]
+[evaluate]
+ks = [3, 5]
+baseline = "pop"
+chunk_size = 8
+{evaluate_lines}
+[sources.pop]
+kind = "popularity"
+[sources.knn]
+kind = "item_knn"
+neighbors = 10
+[sources.kind]
+kind = "attributes"
+[blends.mix]
+weights = {{ knn = 1.0, pop = 0.2, kind = 0.5 }}
+""",
+        encoding="utf-8",
+    )
+    return spec
+
+
+def test_cli_run_with_scheduler_prints_the_single_process_results(client, tmp_path, capsys):
+    from xrec.cli import main
+
+    spec = _write_spec(tmp_path)
+    assert main(["run", str(spec), "--json"]) == 0
+    alone = capsys.readouterr().out
+    assert main(["run", str(spec), "--json", "--scheduler", client.scheduler.address]) == 0
+    assert capsys.readouterr().out == alone
+    assert main(["run", str(spec), "-q", "--scheduler", client.scheduler.address, "--workers", "2"]) == 2
+    assert "--workers" in capsys.readouterr().err
+
+
+def test_spec_workers_run_on_a_local_cluster(tmp_path):
+    from xrec.experiment import run_experiment
+    from xrec.spec import load_spec
+
+    single = run_experiment(load_spec(_write_spec(tmp_path)))
+    sharded = run_experiment(load_spec(_write_spec(tmp_path, "workers = 1\nshard_size = 16")))
+    assert set(sharded.scorecards) == {"pop", "knn", "kind", "mix"}
+    for name, card in single.scorecards.items():
+        _assert_same_card(sharded.scorecards[name], card)
+
+
+def test_spec_cluster_keys_are_checked(tmp_path):
+    from xrec.spec import load_spec
+
+    with pytest.raises(ConfigError, match="evaluate.workers"):
+        load_spec(_write_spec(tmp_path, 'workers = 2\nscheduler = "tcp://127.0.0.1:8786"'))
+    with pytest.raises(ConfigError, match="evaluate.workers"):
+        load_spec(_write_spec(tmp_path, "workers = 0"))
+    with pytest.raises(ConfigError, match="evaluate.scheduler"):
+        load_spec(_write_spec(tmp_path, "scheduler = 8786"))
+    with pytest.raises(ConfigError, match="evaluate.shard_size"):
+        load_spec(_write_spec(tmp_path, "workers = 1\nshard_size = 0"))

@@ -22,13 +22,26 @@ def _cmd_run(args: argparse.Namespace) -> int:
     from xrec.report import experiment_payload, format_experiment
     from xrec.spec import load_spec
 
-    spec = load_spec(args.spec)
+    spec = _with_cluster_flags(load_spec(args.spec), args)
     result = run_experiment(spec, progress=not args.quiet and not args.json)
     if args.json:
         _print_json(experiment_payload(result))
     else:
         print(format_experiment(result))
     return 0
+
+
+def _with_cluster_flags(spec, args: argparse.Namespace):
+    """``spec`` with ``--scheduler`` / ``--workers`` put in its ``[evaluate]`` table (they replace the spec's own)."""
+    from xrec.cluster import check_cluster_options
+
+    if args.scheduler is None and args.workers is None:
+        return spec
+    check_cluster_options(args.scheduler, args.workers, where="--")
+    evaluate = {k: v for k, v in spec.evaluate.items() if k not in ("scheduler", "workers")}
+    evaluate.update({k: v for k, v in (("scheduler", args.scheduler), ("workers", args.workers)) if v is not None})
+    spec.evaluate = evaluate
+    return spec
 
 
 def _cmd_compare(args: argparse.Namespace) -> int:
@@ -109,6 +122,10 @@ def build_parser() -> argparse.ArgumentParser:
         "Evaluate every source and blend of an experiment spec (a TOML file or a built-in name such as "
         "'movielens') and print a scorecard table with paired comparisons against the baseline."))
     p.add_argument("spec", help="spec file, or a built-in spec name")
+    p.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                   help="evaluate on the Dask cluster of this scheduler (e.g. tcp://host:8786), users sharded over its workers")
+    p.add_argument("--workers", type=int, default=None, metavar="N",
+                   help="evaluate on a local Dask cluster of N worker processes, users sharded over them")
     common(p)
     p.set_defaults(func=_cmd_run)
 

@@ -100,7 +100,7 @@ def open_client(
         n_workers=n,
         threads_per_worker=1,
         processes=True,
-        dashboard_address=None,
+        dashboard_address=":0",  # any free port: several clusters may run side by side
         silence_logs=logging.ERROR,
     ) as cluster, Client(cluster) as local:
         yield local

@@ -179,7 +179,7 @@ def evaluate_sharded(
     Examples
     --------
     >>> card = evaluate_sharded(blend, fold, ks=(10,), workers=2)                # doctest: +SKIP
-    >>> card = evaluate_sharded(blend, fold, scheduler="tcp://10.0.0.5:8786")   # doctest: +SKIP
+    >>> card = evaluate_sharded(blend, fold, scheduler="tcp://scheduler-host:8786")   # doctest: +SKIP
     """
     return evaluate_blocks_sharded(
         scorer,
