@@ -199,42 +199,25 @@ def test_errors_on_a_worker_reach_the_caller(client):
 # ------------------------------------------------------------------ specs and the command line
 
 
-def _write_spec(folder: Path, evaluate_lines: str = "") -> Path:
-    """A small CSV shop (two taste groups) and a spec with three sources and a blend."""
-    rows = []
-    for u in range(60):
-        group = u % 2
-        items = [f"i{group * 20 + (u * 7 + 3 * j) % 20}" for j in range(9)]
-        rows += [{"user": f"u{u}", "item": it, "timestamp": 1000 + u * 10 + j} for j, it in enumerate(items)]
-    pd.DataFrame(rows).drop_duplicates(["user", "item"]).to_csv(folder / "events.csv", index=False)
-    kinds = ["a" if j < 20 else "b" for j in range(40)]
-    pd.DataFrame({"item": [f"i{j}" for j in range(40)], "kind": kinds}).to_csv(folder / "items.csv", index=False)
-    spec = folder / "shop.toml"
-    spec.write_text(
-        f"""
-[data]
-dataset = "files"
-catalog = "items.csv"
-interactions = "events.csv"
-categorical = ["kind"]
-[evaluate]
-ks = [3, 5]
-baseline = "pop"
-chunk_size = 8
-{evaluate_lines}
-[sources.pop]
-kind = "popularity"
-[sources.knn]
-kind = "item_knn"
-neighbors = 10
-[sources.kind]
-kind = "attributes"
-[blends.mix]
-weights = {{ knn = 1.0, pop = 0.2, kind = 0.5 }}
-""",
-        encoding="utf-8",
-    )
-    return spec
+def _write_spec(folder: Path, **evaluate_settings) -> Path:
+    """Random CSV interactions over 40 items of two kinds, and a spec with three sources and a blend."""
+    import tomli_w
+
+    rng = np.random.default_rng(8)
+    users = np.repeat(np.arange(60), 9)
+    frame = pd.DataFrame({"user": [f"u{u}" for u in users], "item": [f"i{j}" for j in rng.integers(0, 40, len(users))]})
+    frame["timestamp"] = np.arange(len(frame))
+    frame.drop_duplicates(["user", "item"]).to_csv(folder / "events.csv", index=False)
+    pd.DataFrame({"item": [f"i{j}" for j in range(40)], "kind": list("ab" * 20)}).to_csv(folder / "items.csv", index=False)
+    spec = {
+        "data": {"dataset": "files", "catalog": "items.csv", "interactions": "events.csv", "categorical": ["kind"]},
+        "evaluate": {"ks": [3, 5], "baseline": "pop", "chunk_size": 8, **evaluate_settings},
+        "sources": {"pop": {"kind": "popularity"}, "knn": {"kind": "item_knn", "neighbors": 10}, "kind": {"kind": "attributes"}},
+        "blends": {"mix": {"weights": {"knn": 1.0, "pop": 0.2, "kind": 0.5}}},
+    }
+    path = folder / "shop.toml"
+    path.write_bytes(tomli_w.dumps(spec).encode("utf-8"))
+    return path
 
 
 def test_cli_run_with_scheduler_prints_the_single_process_results(client, tmp_path, capsys):
@@ -254,7 +237,7 @@ def test_spec_workers_run_on_a_local_cluster(tmp_path):
     from xrec.spec import load_spec
 
     single = run_experiment(load_spec(_write_spec(tmp_path)))
-    sharded = run_experiment(load_spec(_write_spec(tmp_path, "workers = 1\nshard_size = 16")))
+    sharded = run_experiment(load_spec(_write_spec(tmp_path, workers=1, shard_size=16)))
     assert set(sharded.scorecards) == {"pop", "knn", "kind", "mix"}
     for name, card in single.scorecards.items():
         _assert_same_card(sharded.scorecards[name], card)
@@ -264,10 +247,10 @@ def test_spec_cluster_keys_are_checked(tmp_path):
     from xrec.spec import load_spec
 
     with pytest.raises(ConfigError, match="evaluate.workers"):
-        load_spec(_write_spec(tmp_path, 'workers = 2\nscheduler = "tcp://127.0.0.1:8786"'))
+        load_spec(_write_spec(tmp_path, workers=2, scheduler="tcp://127.0.0.1:8786"))
     with pytest.raises(ConfigError, match="evaluate.workers"):
-        load_spec(_write_spec(tmp_path, "workers = 0"))
+        load_spec(_write_spec(tmp_path, workers=0))
     with pytest.raises(ConfigError, match="evaluate.scheduler"):
-        load_spec(_write_spec(tmp_path, "scheduler = 8786"))
+        load_spec(_write_spec(tmp_path, scheduler=8786))
     with pytest.raises(ConfigError, match="evaluate.shard_size"):
-        load_spec(_write_spec(tmp_path, "workers = 1\nshard_size = 0"))
+        load_spec(_write_spec(tmp_path, workers=1, shard_size=0))
