@@ -1,6 +1,6 @@
 """Evaluation sharded by users on a Dask LocalCluster (xrec.evaluate.sharded, xrec.cluster).
 
-One 2-process LocalCluster is shared by the module (it starts in a few seconds).
+One 2-process LocalCluster (the ``dask_client`` fixture of tests/conftest.py) serves every test.
 """
 
 from __future__ import annotations
@@ -17,12 +17,10 @@ from _synthetic import FixedScores, interaction_frame, synthetic_fold
 from xrec.blend import Blend
 from xrec.cluster import check_cluster_options, open_client
 from xrec.errors import ConfigError, DataError
-from xrec.evaluate import SampledNegatives, evaluate
-from xrec.evaluate import evaluate_blocks_sharded, evaluate_sharded
+from xrec.evaluate import SampledNegatives, evaluate, evaluate_blocks_sharded, evaluate_sharded
 from xrec.evaluate.sharded import shard_bounds
 from xrec.sources import make_source
 
-distributed = pytest.importorskip("distributed")
 
 
 def _problem(seed: int = 0, n_users: int = 300, n_items: int = 90):
@@ -68,10 +66,10 @@ class KillsItsWorkerOnce:
         return self.inner.score(users)
 
 
-@pytest.fixture(scope="module")
-def client():
-    with open_client(workers=2) as c:
-        yield c
+@pytest.fixture
+def client(dask_client):
+    """The session's 2-worker LocalCluster (tests/conftest.py)."""
+    return dask_client
 
 
 def _assert_same_card(ours, reference):

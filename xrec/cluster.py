@@ -17,8 +17,10 @@ from __future__ import annotations
 import contextlib
 import logging
 import os
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from typing import TYPE_CHECKING, Any
+
+import numpy as np
 
 from xrec.errors import ConfigError
 
@@ -43,6 +45,14 @@ def check_cluster_options(scheduler: Any = None, workers: Any = None, *, where: 
             f"{where}workers: the number of workers is set only for a local cluster; "
             f"a running scheduler ({scheduler}) has the workers that were started for it"
         )
+
+
+def check_shard_size(shard_size: Any) -> None:
+    """Raise :class:`ConfigError` unless ``shard_size`` is ``None`` or an int >= 1."""
+    if shard_size is not None and (
+        not isinstance(shard_size, (int, np.integer)) or isinstance(shard_size, bool) or shard_size < 1
+    ):
+        raise ConfigError(f"shard_size must be a positive int, got {shard_size!r}")
 
 
 def default_workers() -> int:
@@ -114,3 +124,40 @@ def scatter_to_all(client: Client, value: Any) -> Any:
     """
     # A list of one, so a list or dict value is sent whole rather than element by element.
     return client.scatter([value], broadcast=True, hash=False)[0]
+
+
+def run_shards(
+    client: Client,
+    task: Any,
+    shared: Sequence[Any],
+    shards: Sequence[tuple],
+    *,
+    desc: str,
+    progress: bool = False,
+) -> list[Any]:
+    """Run ``task(*shared, *shard)`` for every shard on the cluster; results in shard order.
+
+    ``shared`` values are sent once to every worker (:func:`scatter_to_all`); each shard's
+    own arguments travel with its task, so Dask can run a shard again on another worker
+    when the one running it dies. Results are placed by shard number, so each shard
+    counts exactly once. A progress bar (``desc``) moves as shards finish; the first
+    error raised by a task is raised here, and the remaining tasks are cancelled.
+    """
+    from distributed import as_completed
+    from tqdm.auto import tqdm
+
+    shared_f = [scatter_to_all(client, value) for value in shared]
+    futures = [client.submit(task, *shared_f, *shard, pure=False) for shard in shards]
+    number = {f.key: i for i, f in enumerate(futures)}
+    results: list[Any] = [None] * len(futures)
+    try:
+        for future in tqdm(as_completed(futures), total=len(futures), desc=desc, unit="shard", disable=not progress):
+            results[number[future.key]] = future.result()
+    finally:
+        client.cancel([*futures, *shared_f])
+    return results
+
+
+def worker_count(client: Client) -> int:
+    """Workers the client's scheduler has now (at least 1)."""
+    return max(1, len(client.scheduler_info(n_workers=-1).get("workers", {})))

@@ -23,7 +23,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import scipy.sparse as sp
 
-from xrec.cluster import open_client, scatter_to_all
+from xrec.cluster import check_shard_size, open_client, run_shards, worker_count
 from xrec.errors import ConfigError
 from xrec.evaluate._partial import EvalInputs, PartialResult, check_inputs, evaluate_rows, fold_arguments, merge_partials
 from xrec.evaluate.evaluator import DEFAULT_METRICS, as_score_fn
@@ -67,28 +67,6 @@ def _evaluate_shard(scorer: Any, inputs: EvalInputs, start: int, stop: int) -> P
     """One shard task, run on a worker: users ``inputs.users[start:stop]``."""
     score_fn = as_score_fn(scorer, *inputs.truth.shape)
     return evaluate_rows(score_fn, inputs.options, inputs.users[start:stop], inputs.seen, inputs.truth)
-
-
-def _check_shard_size(shard_size: Any) -> None:
-    if shard_size is not None and (not isinstance(shard_size, (int, np.integer)) or isinstance(shard_size, bool) or shard_size < 1):
-        raise ConfigError(f"shard_size must be a positive int, got {shard_size!r}")
-
-
-def _run_shards(client: Client, scorer: Any, inputs: EvalInputs, bounds: list[tuple[int, int]], name: str, progress: bool):
-    from distributed import as_completed
-    from tqdm.auto import tqdm
-
-    scorer_f = scatter_to_all(client, scorer)
-    inputs_f = scatter_to_all(client, inputs)
-    futures = [client.submit(_evaluate_shard, scorer_f, inputs_f, start, stop, pure=False) for start, stop in bounds]
-    position = {f.key: i for i, f in enumerate(futures)}
-    parts: list[PartialResult | None] = [None] * len(futures)
-    try:
-        for future in tqdm(as_completed(futures), total=len(futures), desc=name, unit="shard", disable=not progress):
-            parts[position[future.key]] = future.result()
-    finally:
-        client.cancel([*futures, scorer_f, inputs_f])
-    return parts
 
 
 def evaluate_blocks_sharded(
@@ -141,15 +119,14 @@ def evaluate_blocks_sharded(
     inputs = check_inputs(
         seen, truth, users, ks=ks, metrics=metrics, protocol=protocol, chunk_size=chunk_size, item_counts=item_counts
     )
-    _check_shard_size(shard_size)
+    check_shard_size(shard_size)
     as_score_fn(scorer, *inputs.truth.shape)  # refuse a wrong scorer here, not on a worker
     if isinstance(inputs.options.protocol, SampledNegatives):
         warnings.warn(SAMPLED_WARNING, UserWarning, stacklevel=2)
     label = name or "evaluate"
     with open_client(scheduler, workers, client=client) as active:
-        n_workers = max(1, len(active.scheduler_info(n_workers=-1).get("workers", {})))
-        bounds = shard_bounds(len(inputs.users), inputs.options.chunk_size, shard_size, n_workers)
-        parts = _run_shards(active, scorer, inputs, bounds, label, progress)
+        bounds = shard_bounds(len(inputs.users), inputs.options.chunk_size, shard_size, worker_count(active))
+        parts = run_shards(active, _evaluate_shard, (scorer, inputs), bounds, desc=label, progress=progress)
     return merge_partials(parts, inputs, name=name or "scorer", settings=settings)
 
 
