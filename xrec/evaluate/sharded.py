@@ -24,7 +24,6 @@ import numpy as np
 import scipy.sparse as sp
 
 from xrec.cluster import check_shard_size, open_client, run_shards, worker_count
-from xrec.errors import ConfigError
 from xrec.evaluate._partial import EvalInputs, PartialResult, check_inputs, evaluate_rows, fold_arguments, merge_partials
 from xrec.evaluate.evaluator import DEFAULT_METRICS, as_score_fn
 from xrec.evaluate.protocols import SAMPLED_WARNING, FullRanking, SampledNegatives
