@@ -136,6 +136,19 @@ def test_killed_worker_shard_is_retried(client, tmp_path):
     _assert_same_card(ours, reference)
 
 
+def test_killed_only_worker_shards_are_sent_again(tmp_path):
+    # With one worker, its death takes the scorer and masks it was sent with it: the shards
+    # still waiting are cancelled by Dask and sent again with them (xrec.cluster.run_shards).
+    fold, blend = _problem(seed=7, n_users=150)
+    reference = evaluate(blend, fold, ks=(5,), chunk_size=16)
+    marker = tmp_path / "killed"
+    dying = KillsItsWorkerOnce(blend, int(fold.eval_users[100]), marker)
+    with open_client(workers=1) as lone:
+        ours = evaluate_sharded(dying, fold, ks=(5,), chunk_size=16, shard_size=16, client=lone, name=reference.name)
+    assert marker.exists()
+    _assert_same_card(ours, reference)
+
+
 def test_sharded_metrics_match_trec_eval(client):
     pytrec_eval = pytest.importorskip("pytrec_eval")
     fold, blend = _problem(seed=6)

@@ -22,7 +22,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from xrec.errors import ConfigError
+from xrec.errors import ConfigError, XrecError
 
 if TYPE_CHECKING:
     from distributed import Client
@@ -134,28 +134,52 @@ def run_shards(
     *,
     desc: str,
     progress: bool = False,
+    rounds: int = 3,
 ) -> list[Any]:
     """Run ``task(*shared, *shard)`` for every shard on the cluster; results in shard order.
 
     ``shared`` values are sent once to every worker (:func:`scatter_to_all`); each shard's
-    own arguments travel with its task, so Dask can run a shard again on another worker
-    when the one running it dies. Results are placed by shard number, so each shard
-    counts exactly once. A progress bar (``desc``) moves as shards finish; the first
-    error raised by a task is raised here, and the remaining tasks are cancelled.
+    own arguments travel with its task. When a worker dies, Dask runs its unfinished
+    shards again on another worker. When every worker holding the shared values died
+    (e.g. the only one), the shards still waiting are cancelled by Dask; they are sent
+    again with the shared values, up to ``rounds`` times in all. Results are placed by
+    shard number, so each shard counts exactly once. A progress bar (``desc``) moves as
+    shards finish; the first error raised by a task is raised here, and the remaining
+    tasks are cancelled.
+
+    Raises
+    ------
+    XrecError
+        Shards still not run after ``rounds`` sendings.
     """
     from distributed import as_completed
+    from distributed.client import FutureCancelledError
     from tqdm.auto import tqdm
 
-    shared_f = [scatter_to_all(client, value) for value in shared]
-    futures = [client.submit(task, *shared_f, *shard, pure=False) for shard in shards]
-    number = {f.key: i for i, f in enumerate(futures)}
-    results: list[Any] = [None] * len(futures)
-    try:
-        for future in tqdm(as_completed(futures), total=len(futures), desc=desc, unit="shard", disable=not progress):
-            results[number[future.key]] = future.result()
-    finally:
-        client.cancel([*futures, *shared_f])
-    return results
+    results: list[Any] = [None] * len(shards)
+    pending = list(range(len(shards)))
+    with tqdm(total=len(shards), desc=desc, unit="shard", disable=not progress) as bar:
+        for _ in range(rounds):
+            client.wait_for_workers(1, timeout=CONNECT_TIMEOUT)
+            shared_f = [scatter_to_all(client, value) for value in shared]
+            number = {}
+            for i in pending:
+                number[client.submit(task, *shared_f, *shards[i], pure=False)] = i
+            lost = []
+            try:
+                for future in as_completed(list(number)):
+                    try:
+                        results[number[future]] = future.result()
+                    except FutureCancelledError:  # its shared inputs died with the workers holding them
+                        lost.append(number[future])
+                        continue
+                    bar.update()
+            finally:
+                client.cancel([*number, *shared_f])
+            pending = sorted(lost)
+            if not pending:
+                return results
+    raise XrecError(f"{len(pending)} of {len(shards)} shards could not be run: the workers holding their inputs kept dying")
 
 
 def worker_count(client: Client) -> int:

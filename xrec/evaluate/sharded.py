@@ -10,8 +10,10 @@ values depend only on its own row, the joined per-user arrays equal the single-p
 ones exactly.
 
 When a worker dies, Dask runs its unfinished shards again on another worker (up to the
-scheduler's ``distributed.scheduler.allowed-failures``, 3 by default); results are
-joined by shard number, so no user is lost or counted twice — the join checks it.
+scheduler's ``distributed.scheduler.allowed-failures``, 3 by default); when no surviving
+worker holds the scorer and masks, they are sent again with the waiting shards
+(:func:`xrec.cluster.run_shards`). Results are joined by shard number, so no user is lost
+or counted twice — the join checks it.
 """
 
 from __future__ import annotations
