@@ -14,10 +14,13 @@ import pandas as pd
 import pytest
 
 from _synthetic import FixedScores, interaction_frame, synthetic_fold
+from threadpoolctl import threadpool_limits
+
 from xrec.blend import Blend
 from xrec.cluster import check_cluster_options, open_client
 from xrec.errors import ConfigError, DataError
 from xrec.evaluate import SampledNegatives, evaluate, evaluate_blocks_sharded, evaluate_sharded
+from xrec.evaluate._synthetic_scale import GeneratedFactors
 from xrec.evaluate.sharded import shard_bounds
 from xrec.sources import make_source
 
@@ -147,6 +150,43 @@ def test_killed_only_worker_shards_are_sent_again(tmp_path):
         ours = evaluate_sharded(dying, fold, ks=(5,), chunk_size=16, shard_size=16, client=lone, name=reference.name)
     assert marker.exists()
     _assert_same_card(ours, reference)
+
+
+def _twin_items_problem():
+    """A low-rank source over items that come in pairs with the same vector (exact score ties).
+
+    Each user's held-out item is its best-scored item, so its rank (1 or 2, after its twin
+    when they tie) shows the last bit of the score difference between the twins.
+    """
+    rng = np.random.default_rng(11)
+    n_users, n_items = 600, 3000
+    # item j and item j + 1500 share a vector (twins far apart: matrix products then tie them
+    # or not depending on how the product is tiled over threads)
+    item_vectors = np.tile(rng.standard_normal((n_items // 2, 24)).astype(np.float32), (2, 1))
+    user_vectors = rng.standard_normal((n_users, 24)).astype(np.float32)
+    best = (user_vectors.astype(np.float64) @ item_vectors.T.astype(np.float64)).argmax(axis=1)
+    train_items = (best[:, None] + rng.integers(1, n_items // 2, (n_users, 5))) % n_items  # never the best pair
+    train = interaction_frame(np.repeat(np.arange(n_users), 5), train_items.ravel())
+    fold = synthetic_fold(n_users, n_items, train, interaction_frame(np.arange(n_users), best))
+    return fold, GeneratedFactors.from_factors("twins", user_vectors, item_vectors)
+
+
+def test_blas_threads_same_as_this_process_keeps_tied_items_identical(client):
+    fold, source = _twin_items_problem()
+    with threadpool_limits(1, "blas"):
+        one_thread = source.score(np.arange(256))
+    if np.array_equal(one_thread, source.score(np.arange(256))):
+        pytest.skip("this BLAS rounds the same with one thread and with its own count")
+    kw = dict(ks=(10,), chunk_size=256, metrics=("hit_rate", "ndcg", "coverage", "popularity"))
+    reference = evaluate(source, fold, **kw)
+    with threadpool_limits(1, "blas"):
+        reference_one_thread = evaluate(source, fold, **kw)
+    # the rounding difference is visible in the results (else this test could not fail)
+    assert reference.list_metrics != reference_one_thread.list_metrics or not reference.per_user.equals(
+        reference_one_thread.per_user
+    )
+    _assert_same_card(evaluate_sharded(source, fold, client=client, **kw), reference)
+    _assert_same_card(evaluate_sharded(source, fold, client=client, blas_threads=1, **kw), reference_one_thread)
 
 
 def test_sharded_metrics_match_trec_eval(client):

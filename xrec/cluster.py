@@ -55,6 +55,31 @@ def check_shard_size(shard_size: Any) -> None:
         raise ConfigError(f"shard_size must be a positive int, got {shard_size!r}")
 
 
+def blas_threads_here() -> int | None:
+    """Threads the BLAS library of this process uses now (``None`` when numpy has no BLAS to ask)."""
+    from threadpoolctl import threadpool_info
+
+    counts = [int(pool["num_threads"]) for pool in threadpool_info() if pool.get("user_api") == "blas"]
+    return max(counts) if counts else None
+
+
+def resolve_blas_threads(blas_threads: Any) -> int | None:
+    """``"same"`` -> :func:`blas_threads_here`; an int >= 1 as it is; ``None`` -> leave the workers' setting.
+
+    Raises
+    ------
+    ConfigError
+        Anything else.
+    """
+    if blas_threads is None:
+        return None
+    if blas_threads == "same":
+        return blas_threads_here()
+    if not isinstance(blas_threads, int) or isinstance(blas_threads, bool) or blas_threads < 1:
+        raise ConfigError(f"blas_threads must be 'same', None or an integer >= 1, got {blas_threads!r}")
+    return blas_threads
+
+
 def default_workers() -> int:
     """Workers of a local cluster when none is asked for: one per CPU core."""
     return max(1, os.cpu_count() or 1)

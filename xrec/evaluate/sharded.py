@@ -18,14 +18,16 @@ or counted twice — the join checks it.
 
 from __future__ import annotations
 
+import contextlib
 import warnings
 from collections.abc import Sequence
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import scipy.sparse as sp
+from threadpoolctl import threadpool_limits
 
-from xrec.cluster import check_shard_size, open_client, run_shards, worker_count
+from xrec.cluster import check_shard_size, open_client, resolve_blas_threads, run_shards, worker_count
 from xrec.evaluate._partial import EvalInputs, PartialResult, check_inputs, evaluate_rows, fold_arguments, merge_partials
 from xrec.evaluate.evaluator import DEFAULT_METRICS, as_score_fn
 from xrec.evaluate.protocols import SAMPLED_WARNING, FullRanking, SampledNegatives
@@ -64,10 +66,11 @@ def shard_bounds(n_users: int, chunk_size: int, shard_size: int | None, n_worker
     return [(start, min(n_users, start + step)) for start in range(0, n_users, step)]
 
 
-def _evaluate_shard(scorer: Any, inputs: EvalInputs, start: int, stop: int) -> PartialResult:
+def _evaluate_shard(scorer: Any, inputs: EvalInputs, blas_threads: int | None, start: int, stop: int) -> PartialResult:
     """One shard task, run on a worker: users ``inputs.users[start:stop]``."""
     score_fn = as_score_fn(scorer, *inputs.truth.shape)
-    return evaluate_rows(score_fn, inputs.options, inputs.users[start:stop], inputs.seen, inputs.truth)
+    with contextlib.nullcontext() if blas_threads is None else threadpool_limits(blas_threads, "blas"):
+        return evaluate_rows(score_fn, inputs.options, inputs.users[start:stop], inputs.seen, inputs.truth)
 
 
 def evaluate_blocks_sharded(
@@ -88,6 +91,7 @@ def evaluate_blocks_sharded(
     scheduler: str | None = None,
     workers: int | None = None,
     client: Client | None = None,
+    blas_threads: int | str | None = "same",
 ) -> Scorecard:
     """:func:`~xrec.evaluate.evaluate_blocks` with the users sharded over a Dask cluster.
 
@@ -110,24 +114,34 @@ def evaluate_blocks_sharded(
     scheduler, workers, client
         Which cluster (see :func:`xrec.cluster.open_client`): a scheduler address, the
         number of processes of a local cluster (default one per core), or an open client.
+    blas_threads
+        Threads of the workers' BLAS while they score: ``"same"`` (default) as this
+        process uses, an int, or ``None`` to leave the workers' own setting (one thread
+        on a local cluster). Matrix products round differently in the last bit with
+        another thread count, which can reorder items whose scores tie exactly (e.g.
+        items with the same attribute vector); with ``"same"`` on this machine the
+        values are identical to one process. ``1`` avoids running more BLAS threads
+        than cores when the workers fill the machine.
 
     Returns
     -------
     Scorecard
         Equal to the single-process scorecard: the same users in the same order with
-        exactly the same per-user values, the same coverage and popularity.
+        exactly the same per-user values, the same coverage and popularity (given the
+        same BLAS thread count and CPU, see ``blas_threads``).
     """
     inputs = check_inputs(
         seen, truth, users, ks=ks, metrics=metrics, protocol=protocol, chunk_size=chunk_size, item_counts=item_counts
     )
     check_shard_size(shard_size)
     as_score_fn(scorer, *inputs.truth.shape)  # refuse a wrong scorer here, not on a worker
+    threads = resolve_blas_threads(blas_threads)
     if isinstance(inputs.options.protocol, SampledNegatives):
         warnings.warn(SAMPLED_WARNING, UserWarning, stacklevel=2)
     label = name or "evaluate"
     with open_client(scheduler, workers, client=client) as active:
         bounds = shard_bounds(len(inputs.users), inputs.options.chunk_size, shard_size, worker_count(active))
-        parts = run_shards(active, _evaluate_shard, (scorer, inputs), bounds, desc=label, progress=progress)
+        parts = run_shards(active, _evaluate_shard, (scorer, inputs, threads), bounds, desc=label, progress=progress)
     return merge_partials(parts, inputs, name=name or "scorer", settings=settings)
 
 
@@ -146,13 +160,14 @@ def evaluate_sharded(
     scheduler: str | None = None,
     workers: int | None = None,
     client: Client | None = None,
+    blas_threads: int | str | None = "same",
 ) -> Scorecard:
     """:func:`~xrec.evaluate.evaluate` on a Dask cluster, sharded by users.
 
     Same arguments and result as :func:`~xrec.evaluate.evaluate`, plus the cluster
     (``scheduler`` address, local ``workers`` count, or an open ``client``; default a
-    local cluster with one worker process per core) and ``shard_size`` (users per task).
-    See :func:`evaluate_blocks_sharded`.
+    local cluster with one worker process per core), ``shard_size`` (users per task) and
+    ``blas_threads``. See :func:`evaluate_blocks_sharded`.
 
     Examples
     --------
@@ -170,5 +185,6 @@ def evaluate_sharded(
         scheduler=scheduler,
         workers=workers,
         client=client,
+        blas_threads=blas_threads,
         **fold_arguments(scorer, fold, users, name),
     )
