@@ -240,6 +240,20 @@ def test_bad_options_are_refused(client):
             pass
 
 
+def test_unreachable_scheduler_is_a_config_error(monkeypatch):
+    import socket
+
+    import xrec.cluster
+
+    with socket.socket() as probe:  # a port nothing listens on
+        probe.bind(("127.0.0.1", 0))
+        port = probe.getsockname()[1]
+    monkeypatch.setattr(xrec.cluster, "CONNECT_TIMEOUT", 1)
+    with pytest.raises(ConfigError, match=f"scheduler: cannot reach a Dask scheduler at 'tcp://127.0.0.1:{port}'"):
+        with open_client(f"tcp://127.0.0.1:{port}"):
+            pass
+
+
 def test_errors_on_a_worker_reach_the_caller(client):
     fold, blend = _problem(n_users=40)
     bad = FixedScores(np.full((fold.n_users, fold.n_items + 1), 1.0, dtype=np.float32))
