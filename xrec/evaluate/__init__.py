@@ -1,5 +1,7 @@
 """Offline evaluation: full-ranking metrics, scorecards, paired comparisons; sharded over Dask workers."""
 
+from xrec.evaluate._candidates import CandidateEvaluation, evaluate_candidates, top_n_items
+from xrec.evaluate._chunked import evaluate_blend_chunked
 from xrec.evaluate._metrics import ALL_METRICS, metrics_from_ranks
 from xrec.evaluate._ranking import UNRANKED, BlockRanks, count_at_least, rank_heldout, top_k_items
 from xrec.evaluate.compare import Comparison, compare
@@ -12,6 +14,7 @@ __all__ = [
     "ALL_METRICS",
     "UNRANKED",
     "BlockRanks",
+    "CandidateEvaluation",
     "Comparison",
     "FullRanking",
     "SampledNegatives",
@@ -20,10 +23,13 @@ __all__ = [
     "compare",
     "count_at_least",
     "evaluate",
+    "evaluate_blend_chunked",
     "evaluate_blocks",
     "evaluate_blocks_sharded",
     "evaluate_sharded",
+    "evaluate_candidates",
     "metrics_from_ranks",
     "rank_heldout",
     "top_k_items",
+    "top_n_items",
 ]

@@ -36,6 +36,7 @@ from typing import Any, Self
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
+from threadpoolctl import threadpool_limits
 
 from xrec.errors import ConfigError
 from xrec.fold import Fold
@@ -54,6 +55,8 @@ DEFAULT_WEIGHTS: dict[str, float] = {"als": 1.0, "text": 0.5, "image": 0.3, "pop
 
 # Users generated together (bounds the pool scratch: chunk × pool × rank floats).
 _CHUNK = 512
+# Slices of the inverse-CDF table of the popularity law (a draw is exact to 1 / _TABLE).
+_TABLE = 1 << 22
 
 
 class GeneratedFactors(LowRankSource):
@@ -162,10 +165,9 @@ def _l2_rows(x: np.ndarray) -> np.ndarray:
 def _draw_rows(
     rng: np.random.Generator, P: np.ndarray, Q: np.ndarray, cdf: np.ndarray, n_pick: int, pool: int, noise: float
 ) -> np.ndarray:
-    """For a chunk of users: ``(b, n_pick)`` chosen items (``-1`` when a pool ran short), in random order."""
+    """For a chunk of users (``cdf``: the inverse-CDF table): ``(b, n_pick)`` chosen items (``-1`` when a pool ran short), in random order."""
     b = len(P)
-    cand = np.searchsorted(cdf, rng.random((b, pool), dtype=np.float64), side="right").astype(np.int64)
-    np.minimum(cand, len(cdf) - 1, out=cand)
+    cand = cdf[(rng.random((b, pool), dtype=np.float32) * len(cdf)).astype(np.int64)]
     cand.sort(axis=1)
     dup = np.zeros(cand.shape, dtype=bool)
     dup[:, 1:] = cand[:, 1:] == cand[:, :-1]
@@ -235,6 +237,16 @@ def make_scale_problem(
     n_pick = train_per_user + heldout_per_user
     if n_pick > n_items // 2:
         raise ConfigError(f"train_per_user + heldout_per_user = {n_pick} must be at most half of n_items ({n_items})")
+    # One BLAS thread: the products here are small, and BLAS threads that wait for each
+    # other on a busy machine make them far slower.
+    with threadpool_limits(1):
+        return _generate(n_users, n_items, train_per_user, heldout_per_user, rank, als_dim, vector_dims, seed)
+
+
+def _generate(
+    n_users: int, n_items: int, train_per_user: int, heldout_per_user: int, rank: int, als_dim: int, vector_dims, seed: int
+) -> ScaleProblem:
+    n_pick = train_per_user + heldout_per_user
     rng = np.random.default_rng(seed)
     scale = np.float32(1.0 / np.sqrt(rank))
     P = (rng.standard_normal((n_users, rank), dtype=np.float32) * scale).astype(np.float32)
@@ -244,6 +256,8 @@ def make_scale_problem(
     weight[rng.permutation(n_items)] = 1.0 / (np.arange(n_items) + 10.0) ** 0.8
     cdf = np.cumsum(weight)
     cdf /= cdf[-1]
+    # Inverse-CDF table: item drawn for each of _TABLE equal slices of [0, 1).
+    cdf = np.minimum(np.searchsorted(cdf, (np.arange(_TABLE) + 0.5) / _TABLE), n_items - 1).astype(np.int64)
 
     pool = max(8 * n_pick, 64)
     train_rows, train_cols, held_rows, held_cols = [], [], [], []
