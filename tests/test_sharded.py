@@ -19,8 +19,15 @@ from threadpoolctl import threadpool_limits
 from xrec.blend import Blend
 from xrec.cluster import check_cluster_options, open_client
 from xrec.errors import ConfigError, DataError
-from xrec.evaluate import SampledNegatives, evaluate, evaluate_blocks_sharded, evaluate_sharded
-from xrec.evaluate._synthetic_scale import GeneratedFactors
+from xrec.evaluate import (
+    SampledNegatives,
+    evaluate,
+    evaluate_blend_chunked,
+    evaluate_blend_sharded,
+    evaluate_blocks_sharded,
+    evaluate_sharded,
+)
+from xrec.evaluate._synthetic_scale import GeneratedFactors, make_scale_problem
 from xrec.evaluate.sharded import shard_bounds
 from xrec.sources import make_source
 
@@ -187,6 +194,21 @@ def test_blas_threads_same_as_this_process_keeps_tied_items_identical(client):
     )
     _assert_same_card(evaluate_sharded(source, fold, client=client, **kw), reference)
     _assert_same_card(evaluate_sharded(source, fold, client=client, blas_threads=1, **kw), reference_one_thread)
+
+
+def test_blend_sharded_equals_chunked_blend_in_one_process(client):
+    problem = make_scale_problem(700, 400, 20, heldout_per_user=2, seed=5)
+    kw = dict(ks=(5, 10), chunk_size=64, normalizers={"als": "zscore", "text": "zscore", "image": "minmax", "popularity": "rank"})
+    reference = evaluate_blend_chunked(problem.sources, problem.weights, problem.train, problem.heldout, threads=2, **kw)
+    ours = evaluate_blend_sharded(
+        problem.sources, problem.weights, problem.train, problem.heldout, shard_size=100, client=client, **kw
+    )
+    _assert_same_card(ours, reference)
+    users = np.random.default_rng(2).choice(700, 150, replace=False)
+    _assert_same_card(
+        evaluate_blend_sharded(problem.sources, problem.weights, problem.train, problem.heldout, users=users, client=client, **kw),
+        evaluate_blend_chunked(problem.sources, problem.weights, problem.train, problem.heldout, users=users, **kw),
+    )
 
 
 def test_sharded_metrics_match_trec_eval(client):

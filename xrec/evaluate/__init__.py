@@ -8,7 +8,7 @@ from xrec.evaluate.compare import Comparison, compare
 from xrec.evaluate.evaluator import as_score_fn, evaluate, evaluate_blocks
 from xrec.evaluate.protocols import FullRanking, SampledNegatives
 from xrec.evaluate.scorecard import Scorecard
-from xrec.evaluate.sharded import evaluate_blocks_sharded, evaluate_sharded
+from xrec.evaluate.sharded import evaluate_blend_sharded, evaluate_blocks_sharded, evaluate_sharded
 
 __all__ = [
     "ALL_METRICS",
@@ -24,6 +24,7 @@ __all__ = [
     "count_at_least",
     "evaluate",
     "evaluate_blend_chunked",
+    "evaluate_blend_sharded",
     "evaluate_blocks",
     "evaluate_blocks_sharded",
     "evaluate_sharded",

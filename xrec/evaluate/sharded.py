@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import contextlib
 import warnings
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -28,7 +28,10 @@ import scipy.sparse as sp
 from threadpoolctl import threadpool_limits
 
 from xrec.cluster import check_shard_size, open_client, resolve_blas_threads, run_shards, worker_count
-from xrec.evaluate._partial import EvalInputs, PartialResult, check_inputs, evaluate_rows, fold_arguments, merge_partials
+from xrec.errors import ConfigError
+from xrec.evaluate._chunked import DEFAULT_BLOCK_BYTES, check_problem, check_run_settings, evaluate_blend_chunked
+from xrec.evaluate._partial import EvalInputs, EvalOptions, PartialResult, check_inputs, evaluate_rows, fold_arguments, merge_partials
+from xrec.evaluate._metrics import RANK_METRICS
 from xrec.evaluate.evaluator import DEFAULT_METRICS, as_score_fn
 from xrec.evaluate.protocols import SAMPLED_WARNING, FullRanking, SampledNegatives
 from xrec.evaluate.scorecard import Scorecard
@@ -188,3 +191,63 @@ def evaluate_sharded(
         blas_threads=blas_threads,
         **fold_arguments(scorer, fold, users, name),
     )
+
+
+def _blend_shard(sources: Any, weights: Any, normalizers: Any, seen: sp.csr_matrix, truth: sp.csr_matrix,
+                 options: dict, users: np.ndarray) -> PartialResult:
+    """One shard task of :func:`evaluate_blend_sharded`, run on a worker with one thread."""
+    card = evaluate_blend_chunked(sources, weights, seen, truth, normalizers=normalizers, users=users, threads=1, **options)
+    columns = {c: card.per_user[c].to_numpy() for c in card.metric_columns}
+    return PartialResult(users, columns, {})
+
+
+def evaluate_blend_sharded(
+    sources: Mapping[str, Any],
+    weights: Mapping[str, float],
+    seen: sp.spmatrix,
+    truth: sp.spmatrix,
+    *,
+    normalizers: str | Mapping[str, str] = "zscore",
+    users: np.ndarray | None = None,
+    ks: Sequence[int] | int = (10,),
+    metrics: Sequence[str] = RANK_METRICS,
+    chunk_size: int | None = None,
+    shard_size: int | None = None,
+    name: str = "blend",
+    settings: dict | None = None,
+    progress: bool = False,
+    scheduler: str | None = None,
+    workers: int | None = None,
+    client: Client | None = None,
+) -> Scorecard:
+    """:func:`~xrec.evaluate.evaluate_blend_chunked` with the users sharded over a Dask cluster.
+
+    The sources, weights and masks are sent once to every worker; each task evaluates one
+    shard of users (whole chunks) with ``evaluate_blend_chunked(..., threads=1)``, whose
+    BLAS runs on one thread as it does in one process, so the per-user values are
+    identical to ``evaluate_blend_chunked`` in one process. Arguments as there, plus
+    ``shard_size`` (users per task, rounded up to whole chunks; default about four shards
+    per worker) and the cluster (``scheduler``, ``workers``, ``client``: see
+    :func:`xrec.cluster.open_client`).
+
+    Returns
+    -------
+    Scorecard
+        Per-user rank metrics (no list metrics), as ``evaluate_blend_chunked`` returns.
+    """
+    ks, metrics, _ = check_run_settings(ks, metrics, 1)
+    check_shard_size(shard_size)
+    seen, truth, users = check_problem(seen, truth, users, None)
+    n_items = truth.shape[1]
+    if chunk_size is None:
+        chunk_size = max(1, min(4096, DEFAULT_BLOCK_BYTES // (4 * n_items)))
+    if isinstance(chunk_size, bool) or not isinstance(chunk_size, (int, np.integer)) or chunk_size < 1:
+        raise ConfigError(f"chunk_size must be a positive int or None, got {chunk_size!r}")
+    options = {"ks": ks, "metrics": metrics, "chunk_size": int(chunk_size)}
+    with open_client(scheduler, workers, client=client) as active:
+        bounds = shard_bounds(len(users), int(chunk_size), shard_size, worker_count(active))
+        shards = [(users[start:stop],) for start, stop in bounds]
+        shared = (dict(sources), dict(weights), normalizers, seen, truth, options)
+        parts = run_shards(active, _blend_shard, shared, shards, desc=name, progress=progress)
+    inputs = EvalInputs(seen, truth, users, EvalOptions(ks, metrics, FullRanking(), int(chunk_size), n_items))
+    return merge_partials(parts, inputs, name=name, settings=settings)
