@@ -1,4 +1,9 @@
-"""Sharded evaluation on a Dask LocalCluster against one process, on a generated problem.
+"""Sharded evaluation of any scorer on a Dask LocalCluster against one process, on a generated problem.
+
+This measures the general path (a :class:`~xrec.blend.Blend` as the scorer of
+:func:`~xrec.evaluate.evaluate_blocks`); the fast path for blends of fitted sources,
+``evaluate_blend_chunked`` against ``evaluate_blend_sharded``, is measured by the
+``dask-1`` / ``dask-2`` engines of ``benchmarks/bench_scale.py``.
 
 The problem comes from the seeded scale generator (``xrec.evaluate._synthetic_scale``):
 users × items with ~144 training items per user on the ML-20M shape, four already
