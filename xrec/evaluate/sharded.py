@@ -7,7 +7,8 @@ chunk by chunk with the same evaluator core as :func:`~xrec.evaluate.evaluate_bl
 and returns their per-user metric values. The caller joins the shards in user order.
 Since every user is scored in the same block of users as in one process and a user's
 values depend only on its own row, the joined per-user arrays equal the single-process
-ones exactly.
+ones exactly. :func:`evaluate_blend_sharded` does the same for the chunked blend evaluation
+of already fitted sources (:func:`~xrec.evaluate.evaluate_blend_chunked`).
 
 When a worker dies, Dask runs its unfinished shards again on another worker (up to the
 scheduler's ``distributed.scheduler.allowed-failures``, 3 by default); when no surviving
