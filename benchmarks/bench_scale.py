@@ -20,7 +20,7 @@ one worker thread per CPU), ``chunked-1`` (one thread), ``candidates-faiss`` and
 ``dask-2`` (:func:`evaluate_blend_sharded`: the chunked evaluation sharded by users over a
 Dask LocalCluster of 1 or 2 single-thread worker processes; ``wall_s`` includes starting
 the cluster, reported apart with the sharded evaluation's own time; the RSS columns are
-the calling process's only, the workers' resident memory at the end is reported apart).
+the calling process's only, the workers' peak resident memory is reported apart).
 
 Cases (``--cases``): ``ml-1m``, ``ml-20m``, the growth sweep ``grow-1`` … ``grow-5`` (users ×
 items from 2·10^7 to 3.7·10^9 cells) and ``catalog-1m`` (10^6 items × 10^5 users). On the
@@ -124,7 +124,8 @@ def _dask(workers: int) -> Callable:
                 problem.sources, problem.weights, problem.train, problem.heldout, users=users, ks=KS, client=client
             )
             sharded = time.perf_counter() - t1
-            rss = sum(client.run(lambda: __import__("psutil").Process().memory_info().rss).values())
+            # ru_maxrss: each worker process's peak resident memory (KiB on Linux)
+            rss = sum(client.run(lambda: __import__("resource").getrusage(0).ru_maxrss * 1024).values())
         return {
             "ndcg@10": float(card.per_user["ndcg@10"].mean()),
             "hit_rate@10": float(card.per_user["hit_rate@10"].mean()),
@@ -240,7 +241,7 @@ def to_markdown(rows: list[dict], exponents: dict[str, float | None]) -> str:
         if "cluster_start_s" in r:
             notes.append(
                 f"cluster start {r['cluster_start_s']:.1f} s + sharded evaluation {r['sharded_eval_s']:.1f} s; "
-                f"workers' RSS at the end {r['workers_rss_gb']:.2f} GB"
+                f"workers' peak RSS, added up, {r['workers_rss_gb']:.2f} GB"
             )
         if "ndcg@10" in r:
             notes.append(f"ndcg@10 {r['ndcg@10']:.4f}")
