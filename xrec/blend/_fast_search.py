@@ -117,10 +117,11 @@ class HalvingAscent:
         n = len(engine.users_)
         sizes: list[int | None] = []
         if sample and engine.users is None:
-            for frac in (0.25, 0.5):
-                size = max(min(min_users, n), int(round(frac * n)))
-                if size < n and size not in sizes:
-                    sizes.append(size)
+            # Halving rounds on a half and a quarter of the users, none below min_users.
+            size = n // 2
+            while size >= min_users and len(sizes) < 2:
+                sizes.insert(0, size)
+                size //= 2
         self.sizes = sizes + [None]
         self.full, self.full_sample = evaluator_for(engine, None, self.seed)
 
@@ -190,7 +191,8 @@ class HalvingAscent:
         out[c] = share
         return out
 
-    def climb(self, ev: LineEvaluator, sample: Any, v: np.ndarray, coords: Sequence[int], rng: np.random.Generator, phase: str) -> tuple[np.ndarray, float, np.ndarray]:
+    def climb(self, ev: LineEvaluator, sample: Any, v: np.ndarray, coords: Sequence[int], rng: np.random.Generator, phase: str,
+              stop_z: float) -> tuple[np.ndarray, float, np.ndarray]:
         """Sweeps of line searches from ``v`` on one user set; ``(v, score, per-user values)``."""
         v = v / v.sum()
         values = self.point(ev, v, phase)
@@ -213,7 +215,7 @@ class HalvingAscent:
             if not improved:
                 break
             se = paired_se(ev, sample, values - start_values)
-            if score - start_score <= self.stop_z * se:
+            if stop_z > 0 and score - start_score <= stop_z * se:
                 break  # the sweep's gain is within the sample's noise
         return v, score, values
 
@@ -232,7 +234,7 @@ class HalvingAscent:
             plan.append({"users": len(ev.rows), "starts": [r for r, _ in alive]})
             finals = []
             for r, v in alive:
-                v, score, _ = self.climb(ev, sample, v, coords, rng, f"start {r}")
+                v, score, _ = self.climb(ev, sample, v, coords, rng, f"start {r}", self.stop_z)
                 finals.append((score, r, v))
             alive = [(r, v) for _, r, v in finals]
         self.bar.close()
@@ -250,7 +252,7 @@ def fast_coordinate_ascent(
     seed: int = 0,
     sample: bool = True,
     min_users: int = 300,
-    stop_z: float = 1.0,
+    stop_z: float = 2.0,
     progress: bool = False,
 ) -> Any:
     """Coordinate ascent on the simplex, fast (see the module docstring).
@@ -292,7 +294,7 @@ def fast_coordinate_ascent(
     n = len(names)
     search = HalvingAscent(
         engine, lambda v: dict(zip(names, v.tolist(), strict=True)), [(s, None) for s in names], names,
-        grid=grid or DEFAULT_GRID, refine=refine, max_sweeps=max_sweeps, tol=tol, stop_z=stop_z, min_users=min_users,
+        grid=DEFAULT_GRID if grid is None else grid, refine=refine, max_sweeps=max_sweeps, tol=tol, stop_z=stop_z, min_users=min_users,
         sample=sample, seed=seed, progress=progress, desc="coordinate ascent",
     )
     corners = [float(search.full.mean(search.point(search.full, np.eye(n)[j], "corner"))) for j in range(n)]
@@ -329,7 +331,7 @@ def fast_gated_search(
     seed: int = 0,
     sample: bool = True,
     min_users: int = 300,
-    stop_z: float = 1.0,
+    stop_z: float = 2.0,
     test_engine: Any = None,
     progress: bool = False,
 ) -> Any:
@@ -365,7 +367,7 @@ def fast_gated_search(
     labels = [f"{b}.{nm}" for b in BANDS for nm in names]
     moves = [(names[i % n_src], item_band == i // n_src) for i in range(len(labels))]
     search = HalvingAscent(
-        engine, to_weights, moves, labels, grid=grid or DEFAULT_GRID, refine=refine, max_sweeps=max_sweeps, tol=1e-12,
+        engine, to_weights, moves, labels, grid=DEFAULT_GRID if grid is None else grid, refine=refine, max_sweeps=max_sweeps, tol=1e-12,
         stop_z=stop_z, min_users=min_users, sample=sample, seed=seed, progress=progress, desc="gated coordinate ascent",
     )
     coords = [i for i in range(len(labels)) if present[i // n_src]]

@@ -31,6 +31,8 @@ from xrec.evaluate import UNRANKED, BlockRanks, count_at_least, metrics_from_ran
 _CHUNK_CELLS = 1 << 20
 # Past this share of undecided cells in a chunk, dense sums are cheaper than gathered ones.
 _DENSE_SHARE = 0.3
+# Memory a line may keep for its densely summed chunks between calls.
+_KEEP_BYTES = 256 << 20
 
 
 class LineEvaluator:
@@ -208,6 +210,8 @@ class _Line:
         rel = 8.0 * (len(positive) + 2) * 2.0**-24
         self.margin = (rel * 2.0 * bound + 1e-30).astype(np.float32)
         self.chunks = []
+        self._kept: dict[int, tuple] = {}
+        self._kept_bytes = 0
         with np.errstate(invalid="ignore", over="ignore"):
             for lo in range(0, len(ev.rows), ev.step):
                 hi = min(lo + ev.step, len(ev.rows))
@@ -224,6 +228,17 @@ class _Line:
         b = ev._rows_of(self.name, lo, hi)
         fixed = None if self.band is None else np.multiply(b, self.fixed_w)
         return prefix, after, b, fixed
+
+    def _dense_parts(self, lo: int, hi: int) -> tuple:
+        """A dense chunk's fixed parts, kept for the line's later calls while they fit the budget."""
+        if lo in self._kept:
+            return self._kept[lo]
+        parts = self._parts(lo, hi)
+        size = sum(a.nbytes for a in (parts[0], parts[3], *parts[1]) if a is not None)
+        if self._kept_bytes + size <= _KEEP_BYTES:
+            self._kept[lo] = parts
+            self._kept_bytes += size
+        return parts
 
     @staticmethod
     def _sum(t: np.float32, b: np.ndarray, fixed: np.ndarray | None, var: np.ndarray | None, prefix, after) -> np.ndarray:
@@ -255,7 +270,7 @@ class _Line:
         dense_rows = np.flatnonzero(ev.reach[lo:hi]) if compact is None else np.zeros(0, dtype=np.int64)
         multi = np.flatnonzero(~ev.single[lo:hi])
         if len(dense_rows) or len(multi):
-            prefix, after, b, fixed = self._parts(lo, hi)
+            prefix, after, b, fixed = self._dense_parts(lo, hi)
             var = None if self.band is None else np.broadcast_to(self.band, b.shape)
             tgt = ev.target[lo:hi][dense_rows]
             if len(multi):
@@ -274,11 +289,14 @@ class _Line:
             c = compact
             rows_pos = tpos[c["rows"]]
             for g, t in enumerate(ts):
-                acc = self._sum(t, c["b"], c["fixed"], c["var"], c["prefix"], c["after"])
                 tv = self._sum(t, c["tb"], c["tfixed"], c["tvar"], c["tprefix"], c["tafter"])
-                above = acc >= tv[c["cell_row"]]
-                extra = np.bincount(c["cell_row"], weights=above, minlength=len(c["rows"])).astype(np.int64)
-                ranks[g, rows_pos] = 1 + c["always"] + extra
+                count = c["base"].copy()
+                if len(c["v_row"]):
+                    acc = self._sum(t, c["v_b"], None, None, c["v_prefix"], c["v_after"])
+                    count += np.bincount(c["v_row"], weights=acc >= tv[c["v_row"]], minlength=len(count)).astype(np.int64)
+                if len(c["c_row"]):
+                    count += np.bincount(c["c_row"], weights=c["c_acc"] >= tv[c["c_row"]], minlength=len(count)).astype(np.int64)
+                ranks[g, rows_pos] = count
 
     def _classify(self, lo: int, hi: int, parts: tuple) -> dict | None:
         """Split the reachable single-target rows' cells into always above, never above and undecided.
@@ -330,25 +348,43 @@ class _Line:
         undecided[n_always >= ev.k] = False
         if int(np.count_nonzero(undecided)) > _DENSE_SHARE * undecided.size:
             return None
+        base = 1 + n_always.astype(np.int64)
+        tb = b[rows, r_t]
+        tfixed = None if fixed is None else fixed[rows, r_t]
+        tvar = None if self.band is None else self.band[r_t]
+        tprefix = None if prefix is None else prefix[rows, r_t]
+        tafter = [a[rows, r_t] for a in after]
         ur, ui = np.nonzero(undecided)
-        gr = rows[ur]
-        pick = lambda a: None if a is None else a[gr, ui]  # noqa: E731
-        tpick = lambda a: None if a is None else a[rows, r_t]  # noqa: E731
-        return {
+        if self.band is None:
+            moving = np.ones(len(ur), dtype=bool)
+        else:
+            moving = self.band[ui]
+            # Cells whose candidate does not move: their sum is one number; against a held-out
+            # item that does not move either, the comparison is decided here.
+            still = ~moving
+            sr, si = ur[still], ui[still]
+            c_acc = self._sum(self.t_lo, b[rows[sr], si], fixed[rows[sr], si], np.zeros(len(sr), dtype=bool),
+                              None if prefix is None else prefix[rows[sr], si], [a[rows[sr], si] for a in after])
+            t_still = ~tvar[sr]
+            if t_still.any():
+                tv0 = self._sum(self.t_lo, tb, tfixed, tvar, tprefix, tafter)
+                base += np.bincount(sr[t_still], weights=c_acc[t_still] >= tv0[sr[t_still]], minlength=len(rows)).astype(np.int64)
+        vr, vi = ur[moving], ui[moving]
+        gr = rows[vr]
+        out = {
             "rows": rows,
-            "always": n_always.astype(np.int64),
-            "cell_row": ur,
-            "b": b[gr, ui],
-            "fixed": pick(fixed),
-            "var": None if self.band is None else self.band[ui],
-            "prefix": pick(prefix),
-            "after": [a[gr, ui] for a in after],
-            "tb": b[rows, r_t],
-            "tfixed": tpick(fixed),
-            "tvar": None if self.band is None else self.band[r_t],
-            "tprefix": tpick(prefix),
-            "tafter": [a[rows, r_t] for a in after],
+            "base": base,
+            "v_row": vr,
+            "v_b": b[gr, vi],
+            "v_prefix": None if prefix is None else prefix[gr, vi],
+            "v_after": [a[gr, vi] for a in after],
+            "tb": tb, "tfixed": tfixed, "tvar": tvar, "tprefix": tprefix, "tafter": tafter,
+            "c_row": np.zeros(0, dtype=np.int64), "c_acc": np.zeros(0, dtype=np.float32),
         }
+        if self.band is not None:
+            keep = ~t_still
+            out["c_row"], out["c_acc"] = sr[keep], c_acc[keep]
+        return out
 
 
 def _within(indptr: np.ndarray) -> np.ndarray:
