@@ -8,10 +8,10 @@ import numpy as np
 import pytest
 from sklearn.metrics import ndcg_score
 
-from xrec.blend._fast_search import fast_coordinate_ascent, fast_gated_search
+from xrec.blend._fast_search import fast_coordinate_ascent
 from xrec.blend._line import LineEvaluator
 from xrec.blend.engine import BlendEngine
-from xrec.blend.gating import PopularityBands
+from xrec.blend.gating import PopularityBands, learn_gated_weights
 from xrec.errors import ConfigError
 
 from test_engine import make_fold, make_sources
@@ -148,7 +148,7 @@ def test_seeded_and_deterministic(planted):
 def test_gated_search_scores_exactly_and_never_below_its_start(planted):
     fold, engine, _, _ = planted
     start = {"s0": 0.2, "s1": 0.5, "s2": 0.3}
-    result = fast_gated_search(engine, start=start, seed=0, min_users=60, n_restarts=1)
+    result = learn_gated_weights(engine, start=start, seed=0, min_users=60, n_restarts=1)
     assert result.valid_score >= result.best_single[1]
     assert result.best_single[1] == engine.score(start)
     bands = PopularityBands(int(result.details["head_min"]))

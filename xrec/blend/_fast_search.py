@@ -286,7 +286,7 @@ def fast_coordinate_ascent(
         ``method="coordinate_ascent"``; ``details["rungs"]`` lists the users and starts of
         each halving round.
     """
-    from xrec.blend.learn import DEFAULT_GRID, LearnResult
+    from xrec.blend._search import DEFAULT_GRID, LearnResult
 
     if isinstance(n_restarts, bool) or not isinstance(n_restarts, (int, np.integer)) or n_restarts < 0:
         raise ConfigError(f"n_restarts must be an integer >= 0, got {n_restarts!r}")
@@ -318,88 +318,42 @@ def fast_coordinate_ascent(
     )
 
 
-def fast_gated_search(
+def gated_climb(
     engine: Any,
-    bands: Any = None,
+    to_weights: Callable,
+    moves: Sequence[tuple[str, np.ndarray | None]],
+    labels: Sequence[str],
+    starts: Sequence[np.ndarray],
+    coords: Sequence[int],
     *,
-    start: dict[str, float] | None = None,
-    head_share: float = 0.2,
-    n_restarts: int = 2,
-    grid: Sequence[float] | None = None,
-    refine: int = 2,
-    max_sweeps: int = 6,
-    seed: int = 0,
+    grid: Sequence[float],
+    refine: int,
+    max_sweeps: int,
+    seed: int,
+    progress: bool,
     sample: bool = True,
     min_users: int = 300,
     stop_z: float = 2.0,
-    test_engine: Any = None,
-    progress: bool = False,
-) -> Any:
-    """Band × source weights by the fast coordinate ascent; the result of
-    :func:`xrec.blend.gating.learn_gated_weights` (same parameters, plus ``sample``,
-    ``min_users`` and ``stop_z`` as in :func:`fast_coordinate_ascent`).
+) -> tuple[np.ndarray, float, float, Any, dict]:
+    """The fast search behind :func:`xrec.blend.gating.learn_gated_weights`.
 
-    The ungated start (``start``, or :func:`fast_coordinate_ascent` with one restart) is
-    evaluated on all users, so the gated result never scores below it on them.
+    ``starts[0]`` is the ungated start; it is scored on all users and kept when no climb
+    beats it there. Returns ``(v, score, start score, history, details)`` with ``v`` on the simplex.
     """
-    from xrec.blend.gating import BANDS, PopularityBands
-    from xrec.blend.learn import DEFAULT_GRID, LearnResult
-
-    names = list(engine.names_)
-    n_src = len(names)
-    counts = engine.fold.item_train_counts
-    bands = bands or PopularityBands.from_counts(counts, head_share)
-    item_band = bands.assign(counts)
-    present = np.bincount(item_band, minlength=len(BANDS)) > 0
-
-    def to_weights(v: np.ndarray) -> dict[str, np.ndarray]:
-        table = np.asarray(v).reshape(len(BANDS), n_src).astype(np.float32)
-        return {nm: table[item_band, j] for j, nm in enumerate(names)}
-
-    if start is None:
-        base = fast_coordinate_ascent(engine, n_restarts=1, seed=seed, sample=sample, min_users=min_users, stop_z=stop_z, progress=progress)
-        start_w = np.array([base.weights[nm] for nm in names])
-    else:
-        start_w = np.maximum(np.array([float(start[nm]) for nm in names]), 0.0)
-        if start_w.sum() <= 0:
-            raise ConfigError("start: all weights are zero")
-        start_w = start_w / start_w.sum()
-    labels = [f"{b}.{nm}" for b in BANDS for nm in names]
-    moves = [(names[i % n_src], item_band == i // n_src) for i in range(len(labels))]
     search = HalvingAscent(
-        engine, to_weights, moves, labels, grid=DEFAULT_GRID if grid is None else grid, refine=refine, max_sweeps=max_sweeps, tol=1e-12,
-        stop_z=stop_z, min_users=min_users, sample=sample, seed=seed, progress=progress, desc="gated coordinate ascent",
+        engine, to_weights, moves, labels, grid=grid, refine=refine, max_sweeps=max_sweeps, tol=1e-12, stop_z=stop_z,
+        min_users=min_users, sample=sample, seed=seed, progress=progress, desc="gated coordinate ascent",
     )
-    coords = [i for i in range(len(labels)) if present[i // n_src]]
-    first = np.tile(start_w, len(BANDS))
+    first = np.asarray(starts[0], dtype=np.float64)
     first = first / first.sum()
     start_score = float(search.full.mean(search.point(search.full, first, "ungated start")))
-    rng = np.random.default_rng(seed)
-    starts = [first] + [np.tile(rng.dirichlet(np.ones(n_src)), len(BANDS)) * rng.uniform(0.5, 1.5, len(BANDS)).repeat(n_src) for _ in range(n_restarts)]
     finals, plan = search.run(starts, coords)
-    score, r, v = max(finals, key=lambda t: (t[0], -t[1]))
+    score, _, v = max(finals, key=lambda t: (t[0], -t[1]))
     if score < start_score:
-        v, score = first, start_score
+        v = first
     v = v / v.sum()
     score = float(search.full.mean(search.full.point(to_weights(v))))
-    table = v.reshape(len(BANDS), n_src)
-    band_weights = {b: dict(zip(names, table[i].tolist(), strict=True)) for i, b in enumerate(BANDS)}
-    result = LearnResult(
-        method="gated_coordinate_ascent",
-        metric=engine.metric,
-        weights=dict(zip(labels, v.tolist(), strict=True)),
-        valid_score=score,
-        best_single=("ungated start", start_score),
-        history=_history(search.rows),
-        band_weights=band_weights,
-        details={"head_min": bands.head_min, "band_sizes": np.bincount(item_band, minlength=3).tolist(), "seed": seed, **plan},
-    )
-    if test_engine is not None:
-        titem = bands.assign(test_engine.fold.item_train_counts)
-        tt = table.astype(np.float32)
-        result.test_score = float(test_engine.score({nm: tt[titem, j] for j, nm in enumerate(names)}))
-        result.best_single_test = float(test_engine.score(dict(zip(names, start_w.tolist(), strict=True))))
-    return result
+    return v, score, start_score, _history(search.rows), plan
 
 
 def _history(rows: list[dict]) -> Any:
