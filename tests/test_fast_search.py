@@ -55,6 +55,20 @@ def test_line_equals_engine_point_by_point(multi, normalizers):
             np.testing.assert_array_equal(got, want)
 
 
+def test_sample_rows_read_in_place_when_a_copy_is_too_big(monkeypatch):
+    import xrec.blend._line as line_module
+
+    fold = make_fold(n_users=50, n_items=30, seed=3, multi=False)
+    engine = BlendEngine(make_sources(fold), fold, "zscore", ks=(5,), metric="mrr@5", factorized=False).prepare()
+    rows = np.arange(1, len(engine.users_), 2)
+    w = {n: 1.0 for n in engine.names_}
+    copied = LineEvaluator(engine, rows).line(w, "pop", 0.0, 4.0).values(GRID)
+    monkeypatch.setattr(line_module, "_COPY_BYTES", 0)
+    in_place = LineEvaluator(engine, rows)
+    assert not in_place._copies
+    np.testing.assert_array_equal(in_place.line(w, "pop", 0.0, 4.0).values(GRID), copied)
+
+
 def test_line_refuses_weights_outside_its_range():
     fold = make_fold(n_users=30, n_items=20, seed=0, multi=False)
     engine = BlendEngine(make_sources(fold), fold, "zscore", ks=(5,), metric="hit_rate@5", factorized=False).prepare()

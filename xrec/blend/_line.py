@@ -20,6 +20,7 @@ the chunk is summed densely instead.
 
 from __future__ import annotations
 
+import hashlib
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -31,6 +32,8 @@ from xrec.evaluate import UNRANKED, BlockRanks, count_at_least, metrics_from_ran
 _CHUNK_CELLS = 1 << 20
 # Past this share of undecided cells in a chunk, dense sums are cheaper than gathered ones.
 _DENSE_SHARE = 0.3
+# Largest copy of a user sample's rows of every block (beyond it, rows are gathered per chunk).
+_COPY_BYTES = 1 << 30
 # Memory a line may keep for its densely summed chunks between calls.
 _KEEP_BYTES = 256 << 20
 
@@ -80,7 +83,8 @@ class LineEvaluator:
         self.column = engine.metric
         self.step = max(1, _CHUNK_CELLS // max(self.n_items, 1))
         self._copies: dict[str, np.ndarray] = {}
-        if not self.all_rows:
+        if not self.all_rows and len(self.names) * n * self.n_items * 4 <= _COPY_BYTES:
+            # A sample's rows are gathered once (row gathers per chunk and call cost more).
             for s in self.names:
                 self._copies[s] = self._fetch(s, self.rows)
         self._point_cache: dict[tuple, np.ndarray] = {}
@@ -102,7 +106,9 @@ class LineEvaluator:
     def _rows_of(self, name: str, lo: int, hi: int) -> np.ndarray:
         if self.all_rows:
             return self._fetch(name, slice(lo, hi))
-        return self._copies[name][lo:hi]
+        if name in self._copies:
+            return self._copies[name][lo:hi]
+        return self._fetch(name, self.rows[lo:hi])
 
     def multi_rows(self, lo: int, hi: int) -> np.ndarray:
         """Rows in ``lo:hi`` with several held-out items (local positions)."""
@@ -140,7 +146,7 @@ class LineEvaluator:
     def point(self, weights: Mapping[str, Any]) -> np.ndarray:
         """Per-row metric values of one weight vector (name -> number or per-item vector)."""
         weights = self._check(weights)
-        key = tuple((n, w.tobytes() if isinstance(w, np.ndarray) else w) for n, w in sorted(weights.items()))
+        key = tuple((n, hashlib.sha256(w.tobytes()).digest() if isinstance(w, np.ndarray) else w) for n, w in sorted(weights.items()))
         if key not in self._point_cache:
             first = next(n for n in self.names if np.any(np.asarray(weights[n]) > 0))
             w = weights[first]
