@@ -205,6 +205,7 @@ class _Line:
         self.before = [n for n in positive if ev.names.index(n) < pos]
         self.after = [n for n in positive if ev.names.index(n) > pos]
         self.fixed_w = None
+        self._still = None if band is None else ~band
         if band is not None:
             self.fixed_w = np.asarray(np.broadcast_to(np.asarray(weights[name], dtype=np.float32), (ev.n_items,)))
         # Per-row bound of the summed magnitudes, for the rounding margin.
@@ -331,7 +332,10 @@ class _Line:
         if self.band is not None:
             var = np.broadcast_to(self.band, bb.shape)
             fx = take(fixed)
-            alpha = np.where(var, 0.0, fx) if alpha is None else alpha + np.where(var, np.float32(0.0), fx)
+            if alpha is None:
+                alpha = np.where(var, np.float32(0.0), fx)
+            else:
+                np.add(alpha, fx, out=alpha, where=np.broadcast_to(self._still, bb.shape))
             bb = np.where(var, bb, np.float32(0.0))
         elif alpha is None:
             alpha = np.zeros_like(bb)
@@ -339,18 +343,25 @@ class _Line:
         b_t = bb[idx, r_t][:, None]
         if not (np.isfinite(a_t).all() and np.isfinite(b_t).all()):
             return None
-        da = np.subtract(a_t, alpha)  # +inf at seen items: never above
+        # The gap at both ends of the range, in place: alpha becomes A, db becomes the t_hi end.
+        da = np.subtract(a_t, alpha, out=alpha)  # +inf at seen items: never above
         db = np.subtract(b_t, bb)
-        g_lo = da if self.t_lo == 0 else da + self.t_lo * db
-        g_hi = da + self.t_hi * db
-        g_lo, g_hi = np.minimum(g_lo, g_hi), np.maximum(g_lo, g_hi)
+        if self.t_lo == 0:
+            g1 = da
+        else:
+            g1 = np.multiply(db, self.t_lo)
+            g1 += da
+        g2 = np.multiply(db, self.t_hi, out=db)
+        g2 += da
         margin = self.margin[lo:hi][rows][:, None]
-        always = g_hi < -margin
-        below = ~(g_lo <= margin)  # NaN (an unscored candidate) counts as never above
+        always = g1 < -margin
+        always &= g2 < -margin
+        near = g1 <= margin  # NaN (an unscored candidate) is never near: never above
+        near |= g2 <= margin
         always[idx, r_t] = False
-        below[idx, r_t] = True
-        n_always = always.sum(axis=1)
-        undecided = ~(always | below)
+        near[idx, r_t] = False
+        n_always = np.count_nonzero(always, axis=1)
+        undecided = np.logical_and(near, ~always, out=near)
         undecided[n_always >= ev.k] = False
         if int(np.count_nonzero(undecided)) > _DENSE_SHARE * undecided.size:
             return None
