@@ -121,8 +121,11 @@ def _spec_table(name: str) -> str:
     lines.append(
         f"`xrec run {name}`: {fold.n_users:,} users × {fold.n_items:,} items, split {spec.split.get('rule')} "
         f"(seed {spec.split.get('seed', 0)}), full ranking, test split; differences are paired "
-        "(bootstrap 95% CI)" + ("; validation is the learned weights' score on the validation split." if learned else ".")
+        "(bootstrap 95% CI)" + ("; validation is the learned weights' score on the validation split" if learned else ".")
     )
+    singles = sorted({(r["best_single"], r["best_single_validation"]) for r in learned.values() if r.get("best_single")})
+    if singles:
+        lines[-1] += ", where the best single source scores " + ", ".join(f"{n} {v:.4f}" for n, v in singles) + "."
     return "\n".join(lines) + "\n"
 
 
