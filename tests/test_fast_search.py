@@ -151,6 +151,19 @@ def test_finds_the_brute_force_optimum(planted, options):
         assert [r["users"] for r in result.details["rungs"]] == [60, 120, 240]
 
 
+def test_cached_evaluators_do_not_keep_the_engine_alive():
+    import gc
+    import weakref
+
+    fold = make_fold(n_users=40, n_items=30, seed=4, multi=False)
+    engine = BlendEngine(make_sources(fold), fold, "zscore", ks=(5,), metric="ndcg@5", factorized=False).prepare()
+    fast_coordinate_ascent(engine, n_restarts=1, seed=0, min_users=10)
+    ref = weakref.ref(engine)
+    del engine
+    gc.collect()
+    assert ref() is None
+
+
 def test_seeded_and_deterministic(planted):
     _, engine, _, _ = planted
     a = fast_coordinate_ascent(engine, n_restarts=3, seed=5, min_users=60)

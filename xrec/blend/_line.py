@@ -52,7 +52,10 @@ class LineEvaluator:
     """
 
     def __init__(self, engine: Any, rows: np.ndarray | None = None, row_weights: np.ndarray | None = None) -> None:
-        self.engine = engine
+        # The engine's arrays, not the engine: evaluators are cached per engine (weakly keyed),
+        # so they must not keep it alive.
+        self._blocks, self._factors, self._users = engine.blocks_, engine.factors_, engine.users_
+        self._train = engine.fold.train_matrix
         self.names = list(engine.names_)
         n_all = len(engine.users_)
         self.rows = np.arange(n_all) if rows is None else np.asarray(rows, dtype=np.int64)
@@ -93,13 +96,12 @@ class LineEvaluator:
     # ------------------------------------------------------------------ blocks
     def _fetch(self, name: str, rows: np.ndarray | slice) -> np.ndarray:
         """float32 rows of a source's block, ``-inf`` at seen items."""
-        eng = self.engine
-        block = eng.blocks_.get(name)
+        block = self._blocks.get(name)
         if block is not None:
             return np.asarray(block[rows], dtype=np.float32)
-        uf, vt = eng.factors_[name]
+        uf, vt = self._factors[name]
         out = np.ascontiguousarray(uf[rows] @ vt, dtype=np.float32)
-        sub = self.engine.fold.train_matrix[eng.users_[rows]].tocsr()
+        sub = self._train[self._users[rows]].tocsr()
         out[np.repeat(np.arange(out.shape[0]), np.diff(sub.indptr)), sub.indices] = -np.inf
         return out
 
