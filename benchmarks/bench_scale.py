@@ -12,8 +12,9 @@ Every (case, engine) pair runs in its own subprocess, so peak memory is that cas
   20 ms with psutil) and ``max_rss_gb`` over the whole process (generation included);
 * ``cells_per_s``: evaluated users × items / ``wall_s``.
 
-Engines (pluggable: ``ENGINES[name] = fn(problem, users, case) -> dict``; another module can
-add its own and run ``main()``): ``evaluate-blend`` (the general path,
+Engines (pluggable: ``ENGINES[name] = fn(problem, users, case) -> dict``; another script can
+import this module, add its own engines and call ``main()``; the per-case subprocesses re-run
+that script, so its engines exist there too): ``evaluate-blend`` (the general path,
 ``evaluate(Blend(...), fold)``, as a baseline), ``chunked`` (full ranking, :func:`evaluate_blend_chunked`,
 one worker thread per CPU), ``chunked-1`` (one thread), ``candidates-faiss`` and
 ``candidates-numpy`` (:func:`evaluate_candidates`, top-100 per source), ``dask-1`` and
@@ -212,7 +213,9 @@ def run_case(case: str, engine: str) -> dict:
 
 
 def _subprocess(case: str, engine: str, extra_args: list[str]) -> dict:
-    cmd = [sys.executable, __file__, "--one", case, engine, *extra_args]
+    # Re-run the script that was started (it may be another module that added engines).
+    script = getattr(sys.modules["__main__"], "__file__", None) or __file__
+    cmd = [sys.executable, str(script), "--one", case, engine, *extra_args]
     env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
     out = subprocess.run(cmd, check=True, capture_output=True, text=True, env=env, cwd=ROOT)
     return json.loads(out.stdout.strip().splitlines()[-1])

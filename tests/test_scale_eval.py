@@ -168,3 +168,12 @@ def test_candidate_mode_refuses_inexact_normalizers_and_bad_settings(small):
         evaluate_blend_chunked(small.sources, small.weights, small.train, empty)
     with pytest.raises(DataError, match="columns"):
         evaluate_blend_chunked(small.sources, small.weights, small.train[:, :100], small.heldout[:, :100])
+
+
+def test_generated_sources_go_through_the_blend_engine(small):
+    from xrec.blend import BlendEngine
+
+    engine = BlendEngine(small.sources, small.fold, "zscore", ks=KS, metrics=METRICS).prepare()
+    card = evaluate_blend_chunked(small.sources, small.weights, small.train, small.heldout, ks=KS)
+    ours = card.per_user.drop(columns="user")
+    np.testing.assert_array_equal(engine.per_user(small.weights)[ours.columns].to_numpy(), ours.to_numpy())

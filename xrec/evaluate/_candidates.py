@@ -23,6 +23,11 @@ and ``u = 2^-24`` (Higham, "Accuracy and Stability of Numerical Algorithms", 2nd
 2002, §3.1), bounded above by ``‖x‖·max_j‖y_j‖``, for the sources' searches and for the
 blend's product.
 
+The union's blended scores come from the same float32 product as the full ranking's
+(:func:`xrec.evaluate._factor_blend.blend_product`, on a slice of the items), so a certified
+rank equals the full-ranking rank bit for bit as long as the BLAS kernel sums each dot
+product in the same order for both shapes, as OpenBLAS does here (tested on both backends).
+
 Normalizer statistics stay exact: z-score moments come from the factors over all
 candidates (see :mod:`xrec.evaluate._factor_blend`), never from the lists. Min-max and
 rank normalizers need every item's score, so they are refused in this mode.
