@@ -307,7 +307,7 @@ def _write_spec(folder: Path, **evaluate_settings) -> Path:
     return path
 
 
-def test_cli_run_with_scheduler_prints_the_single_process_results(client, tmp_path, capsys):
+def test_cli_with_scheduler_prints_and_writes_the_single_process_results(client, tmp_path, capsys):
     from xrec.cli import main
 
     spec = _write_spec(tmp_path)
@@ -317,6 +317,15 @@ def test_cli_run_with_scheduler_prints_the_single_process_results(client, tmp_pa
     assert capsys.readouterr().out == alone
     assert main(["run", str(spec), "-q", "--scheduler", client.scheduler.address, "--workers", "2"]) == 2
     assert "--workers" in capsys.readouterr().err
+    # compare and export take the same flags
+    assert main(["compare", str(spec), str(spec), "--json"]) == 0
+    compared = capsys.readouterr().out
+    assert main(["compare", str(spec), str(spec), "--json", "--scheduler", client.scheduler.address]) == 0
+    assert capsys.readouterr().out == compared
+    alone_file, sharded_file = tmp_path / "alone.toml", tmp_path / "sharded.toml"
+    assert main(["export", str(spec), "-q", "-o", str(alone_file)]) == 0
+    assert main(["export", str(spec), "-q", "-o", str(sharded_file), "--scheduler", client.scheduler.address]) == 0
+    assert sharded_file.read_text(encoding="utf-8") == alone_file.read_text(encoding="utf-8")
 
 
 def test_spec_workers_run_on_a_local_cluster(tmp_path):
