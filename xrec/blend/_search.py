@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 from tqdm.auto import tqdm
 
+from xrec._validation import check_int
 from xrec.errors import ConfigError
 
 if TYPE_CHECKING:
@@ -230,8 +231,7 @@ def coordinate_ascent(
     progress
         Show a progress bar over evaluations.
     """
-    if isinstance(n_restarts, bool) or not isinstance(n_restarts, (int, np.integer)) or n_restarts < 0:
-        raise ConfigError(f"n_restarts must be an integer >= 0, got {n_restarts!r}")
+    check_int(n_restarts, "n_restarts", low=0)
     track = Tracker(engine, progress, "coordinate ascent")
     n = len(engine.names_)
     single_name, single_score, _ = track.corners()

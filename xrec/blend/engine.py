@@ -41,13 +41,14 @@ import pandas as pd
 from threadpoolctl import ThreadpoolController, threadpool_limits
 from tqdm.auto import tqdm
 
+from xrec._validation import check_choice, check_fitted, check_int, parse_metric_column
 from xrec.blend._dominance import DominancePruning
 from xrec.blend._rank import Candidates
 from xrec.blend._weighted_sum import WeightedSumKernels
 from xrec.blend.blend import check_normalizers
 from xrec.blend.normalize import normalize
-from xrec.errors import ConfigError, DataError
-from xrec.evaluate._metrics import RANK_METRICS, metrics_from_ranks, parse_metric
+from xrec.errors import ConfigError, DataError, NotFittedError
+from xrec.evaluate._metrics import RANK_METRICS, metrics_from_ranks
 from xrec.evaluate._ranking import BlockRanks, _seen_flags
 from xrec.evaluate._sampling import UserSample, sample_users
 from xrec.fold import Fold
@@ -172,15 +173,12 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
         if bad:
             raise ConfigError(f"metrics: the engine computes rank metrics {list(RANK_METRICS)} only, got {bad}")
         self._metrics = metrics
-        self._main = parse_metric(self.metric, self._ks)
+        self._main = parse_metric_column(self.metric, names=RANK_METRICS, ks=self._ks)
         if self._main[0] not in metrics:
             raise ConfigError(f"metric {self.metric!r} is not among the computed metrics {list(metrics)}")
-        if self.dtype not in _DTYPES:
-            raise ConfigError(f"dtype must be one of {list(_DTYPES)}, got {self.dtype!r}")
-        if isinstance(self.threads, bool) or not isinstance(self.threads, (int, np.integer)) or self.threads < 1:
-            raise ConfigError(f"threads must be a positive integer, got {self.threads!r}")
-        if self.chunk_rows is not None and (not isinstance(self.chunk_rows, (int, np.integer)) or self.chunk_rows < 1):
-            raise ConfigError(f"chunk_rows must be a positive integer or None, got {self.chunk_rows!r}")
+        check_choice(self.dtype, "dtype", _DTYPES)
+        check_int(self.threads, "threads", low=1)
+        check_int(self.chunk_rows, "chunk_rows", low=1, allow_none=True)
 
     def _factorized_names(self, n_rows: int, n_items: int) -> set[str]:
         eligible = {
@@ -302,8 +300,7 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
 
     # ------------------------------------------------------------------ weights
     def _check_prepared(self) -> None:
-        if not getattr(self, "prepared_", False):
-            raise RuntimeError("BlendEngine is not prepared: call prepare() first")
+        check_fitted(self, attribute="prepared_", message="BlendEngine is not prepared: call prepare() first")
 
 
     def _per_user(self, ranks: np.ndarray) -> dict[str, np.ndarray]:
@@ -356,7 +353,7 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
         if weights is not None:
             self.evaluate(weights)
         if self._last is None:
-            raise RuntimeError("no weights evaluated yet: pass weights")
+            raise NotFittedError("no weights evaluated yet: pass weights")
         order = [f"{m}@{k}" for m in self._metrics for k in self._ks]
         return pd.DataFrame({"user": self.users_, **{c: self._last[c] for c in order}})
 
@@ -407,7 +404,7 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
         if name not in self._sources:
             raise ConfigError(f"set_weight: {name!r} is not a source; sources are {self.names_}")
         if self.weights_ is None:
-            raise RuntimeError("set_weight needs starting weights: call evaluate(weights) first")
+            raise NotFittedError("set_weight needs starting weights: call evaluate(weights) first")
         if any(isinstance(w, np.ndarray) for w in self.weights_.values()):
             raise ConfigError("set_weight works on scalar weights; evaluate per-item weight vectors with evaluate()")
         new = dict(self.weights_)

@@ -32,12 +32,12 @@ from xrec import _torch_guard  # noqa: F401  (must precede any torchvision / tim
 import os
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from numbers import Real
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from xrec._validation import check_number
 from xrec.encoders._common import OnError, check_batching, check_on_error, file_sha256, torch_threads
 from xrec.encoders._efficientnet_keys import default_weights_path, timm_key
 from xrec.encoders._image_io import (
@@ -205,9 +205,7 @@ class EfficientNetLite0Encoder(Encoder):
         check_batching(self.batch_size, self.num_threads, who)
         if self.max_pixels is not None and (not isinstance(self.max_pixels, int) or self.max_pixels < 1):
             raise ConfigError(f"{who}: max_pixels must be a positive int or None, got {self.max_pixels!r}")
-        crop = self.crop
-        if isinstance(crop, bool) or not isinstance(crop, Real) or not 0.0 < float(crop) <= 1.0:
-            raise ConfigError(f"{who}: crop must be a number in (0, 1], got {crop!r}")
+        check_number(self.crop, f"{who}: crop", low=0.0, low_open=True, high=1.0, expected="a number in (0, 1]")
 
     def load(self) -> EfficientNetLite0Encoder:
         """Build the model and load the weights now (otherwise the first encode does).

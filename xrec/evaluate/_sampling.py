@@ -13,7 +13,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from xrec.errors import ConfigError, DataError
+from xrec._validation import check_int
+from xrec.errors import DataError
 from xrec.fold import Fold
 
 __all__ = ["UserSample", "sample_users"]
@@ -99,10 +100,8 @@ def sample_users(fold: Fold, n: int = 1000, *, n_strata: int = 4, seed: int = 0)
     seed
         Seed of the draw.
     """
-    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
-        raise ConfigError(f"n must be a positive integer, got {n!r}")
-    if isinstance(n_strata, bool) or not isinstance(n_strata, (int, np.integer)) or n_strata < 1:
-        raise ConfigError(f"n_strata must be a positive integer, got {n_strata!r}")
+    check_int(n, "n", low=1)
+    check_int(n_strata, "n_strata", low=1)
     users = fold.eval_users
     if len(users) == 0:
         raise DataError("the fold has no evaluation users (no held-out interactions)")

@@ -10,6 +10,7 @@ import numpy as np
 import scipy.sparse as sp
 from tqdm.auto import tqdm
 
+from xrec._validation import is_int
 from xrec.errors import ConfigError, DataError
 from xrec.evaluate._metrics import ALL_METRICS, LIST_METRICS, RANK_METRICS, metric_column, metrics_from_ranks, popularity_of_lists
 from xrec.evaluate._ranking import canonical_rows, rank_heldout, top_k_items
@@ -70,7 +71,7 @@ def _check_ks(ks: Sequence[int] | int) -> tuple[int, ...]:
     if isinstance(ks, (int, np.integer)):
         ks = (ks,)
     ks = tuple(ks)
-    bad = [k for k in ks if not isinstance(k, (int, np.integer)) or isinstance(k, bool) or k <= 0]
+    bad = [k for k in ks if not is_int(k) or k <= 0]
     if not ks or bad:
         raise ConfigError(f"ks must be positive integers, got bad value(s) {bad or list(ks)}")
     return tuple(sorted({int(k) for k in ks}))

@@ -9,6 +9,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from xrec._validation import parse_metric_column
 from xrec.errors import ConfigError
 from xrec.evaluate._stats import bootstrap_means, percentile_interval
 
@@ -30,11 +31,6 @@ def plain(value: Any) -> Any:
     if isinstance(value, str):
         return value
     return str(value)
-
-
-def _split_column(col: str) -> tuple[str, int]:
-    metric, _, k = col.rpartition("@")
-    return metric, int(k)
 
 
 @dataclass
@@ -143,7 +139,7 @@ class Scorecard:
             means.setdefault(c, v)
         rows: dict[str, dict[str, float]] = {}
         for col, v in means.items():
-            metric, k = _split_column(col)
+            metric, k = parse_metric_column(col)
             rows.setdefault(metric, {})[f"@{k}"] = v
         return pd.DataFrame(rows).T
 

@@ -14,6 +14,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from xrec._validation import parse_metric_column
+
 __all__ = [
     "OFFLINE_RENDERER",
     "comparison_html",
@@ -55,7 +57,7 @@ def scorecard_html(card: Any, *, confidence: float = 0.95, n_resamples: int = 20
     cells: dict[str, dict[str, str]] = {}
     ks: list[str] = []
     for metric, row in summary.iterrows():
-        name, _, k = str(metric).rpartition("@")
+        name, k = parse_metric_column(metric)
         col = f"@{k}"
         if col not in ks:
             ks.append(col)

@@ -7,14 +7,13 @@ and the item's vector. :class:`ProfileSource` is the base of every content sourc
 
 from __future__ import annotations
 
-from numbers import Real
 from typing import Any, Self
 
 import numpy as np
 import scipy.sparse as sp
 
+from xrec._validation import check_number
 from xrec.data.catalog import Catalog
-from xrec.errors import ConfigError
 from xrec.fold import Fold
 from xrec.sources.base import LowRankSource
 
@@ -45,10 +44,7 @@ def center_vectors(rows: np.ndarray) -> np.ndarray:
 
 
 def check_half_life(kind: str, value: Any) -> None:
-    if value is None:
-        return
-    if isinstance(value, bool) or not isinstance(value, Real) or not (np.isfinite(value) and value > 0):
-        raise ConfigError(f"{kind} setting 'half_life_days' must be a positive number or None, got {value!r}")
+    check_number(value, f"{kind} setting 'half_life_days'", low=0, low_open=True, allow_none=True, expected="a positive number")
 
 
 def history_weights(fold: Fold, half_life_days: float | None) -> sp.csr_matrix:
