@@ -32,7 +32,6 @@ interval, for interactive use.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Iterable, Mapping, Sequence
 from typing import Any, Self
 
@@ -51,6 +50,7 @@ from xrec.errors import ConfigError, DataError, NotFittedError
 from xrec.evaluate._metrics import RANK_METRICS, metrics_from_ranks
 from xrec.evaluate._ranking import BlockRanks, _seen_flags
 from xrec.evaluate._sampling import UserSample, sample_users
+from xrec.evaluate._stats import normal_interval
 from xrec.fold import Fold
 
 __all__ = ["BlendEngine", "UserSample", "sample_users"]
@@ -379,11 +379,7 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
         values = frame[col].to_numpy()
         if isinstance(self.users, UserSample):
             return self.users.estimate(values, level)
-        from scipy.stats import norm
-
-        mean = float(values.mean())
-        half = float(norm.ppf(0.5 + level / 2.0)) * float(values.std(ddof=1)) / math.sqrt(len(values)) if len(values) > 1 else 0.0
-        return mean, mean - half, mean + half
+        return normal_interval(values, level)
 
     def set_weight(self, name: str, weight: float) -> dict[str, float]:
         """Change one source's weight and re-rank by adding ``Δw × block`` to the kept sum.
