@@ -47,8 +47,8 @@ from xrec.blend._weighted_sum import WeightedSumKernels
 from xrec.blend.blend import check_normalizers
 from xrec.blend.normalize import normalize
 from xrec.errors import ConfigError, DataError, NotFittedError
-from xrec.evaluate._metrics import RANK_METRICS, metrics_from_ranks
-from xrec.evaluate._ranking import BlockRanks, _seen_flags
+from xrec.evaluate._metrics import RANK_METRICS, check_ks, check_metrics, metrics_from_ranks
+from xrec.evaluate._ranking import BlockRanks, seen_flags
 from xrec.evaluate._sampling import UserSample, sample_users
 from xrec.evaluate._stats import normal_interval
 from xrec.fold import Fold
@@ -161,14 +161,13 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
     # ------------------------------------------------------------------ preparation
     def _check_settings(self) -> None:
         from xrec.blend._base import check_sources
-        from xrec.evaluate.evaluator import _check_ks, _check_metrics
 
         if not isinstance(self.fold, Fold):
             raise ConfigError(f"fold must be an xrec Fold, got {type(self.fold).__name__}")
         self._sources = check_sources(self.sources)
         self._normalizers = check_normalizers(self.normalizers, self._sources)
-        self._ks = _check_ks(self.ks)
-        metrics = _check_metrics(self.metrics)
+        self._ks = check_ks(self.ks)
+        metrics = check_metrics(self.metrics)
         bad = [m for m in metrics if m not in RANK_METRICS]
         if bad:
             raise ConfigError(f"metrics: the engine computes rank metrics {list(RANK_METRICS)} only, got {bad}")
@@ -272,7 +271,7 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
         seen_flag = np.zeros(n_rows, dtype=bool)
         rows_single = np.flatnonzero(single)
         if len(rows_single):
-            seen_flag[rows_single] = _seen_flags(seen, rows_single, target[rows_single], n_items)
+            seen_flag[rows_single] = seen_flags(seen, rows_single, target[rows_single], n_items)
         self.names_ = list(self._sources)
         self.users_ = users
         self.blocks_ = blocks
@@ -313,6 +312,16 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
         return {col: float(np.mean(v)) for col, v in per_user.items()}
 
     # ------------------------------------------------------------------ public
+    @property
+    def seen_(self) -> Any:
+        """Training rows of the engine's users (CSR; row ``r`` is user ``users_[r]``): what each has seen."""
+        return self._seen
+
+    @property
+    def truth_(self) -> Any:
+        """Held-out rows of the engine's users (CSR with sorted indices, aligned with ``users_``)."""
+        return self._truth
+
     def evaluate(self, weights: Mapping[str, Any] | Sequence[float]) -> dict[str, float]:
         """Mean of every metric over the engine's users for ``weights`` (full recomputation).
 

@@ -95,7 +95,7 @@ def tpe_search(engine: BlendEngine, *, n_trials: int = 100, seed: int = 0, progr
 
 def _pairs(engine: BlendEngine, n_negatives: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
     """(positive, negative) per-source score rows: each reachable held-out item vs sampled candidates."""
-    seen, truth, n_items = engine._seen, engine._truth, engine._n_items
+    seen, truth, n_items = engine.seen_, engine.truth_, engine.fold.n_items
     pos_rows, pos_items, neg_items = [], [], []
     for r in range(len(engine.users_)):
         rel = truth.indices[truth.indptr[r] : truth.indptr[r + 1]]
@@ -230,8 +230,8 @@ def learn_weights(
         engine = sources
         if not getattr(engine, "prepared_", False):
             engine.prepare(progress=progress)
-        src_map, normalizers = engine._sources, engine._normalizers
-        ks_used = engine._ks
+        src_map, normalizers = engine.sources, engine.normalizers
+        ks_used = engine.ks
         metric = engine.metric
     else:
         if valid_fold is None:

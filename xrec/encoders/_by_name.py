@@ -74,6 +74,6 @@ def make_image_encoder(name: str = "efficientnet_lite0", *, on_error: str = "ski
         from xrec.encoders.image import EfficientNetLite0Encoder
 
         encoder = EfficientNetLite0Encoder(on_error=on_error, crop=crop)  # type: ignore[arg-type]
-        encoder._check_settings()  # a bad crop fails here, before the encoder is shared
+        encoder.check_settings()  # a bad crop fails here, before the encoder is shared
         return _SHARED.setdefault(key, encoder)
     raise ConfigError(f"image encoder {name!r} is unknown; known: {list(IMAGE_ENCODERS)}")

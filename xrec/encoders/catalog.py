@@ -9,19 +9,17 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from xrec.encoders._fill import encode_through_cache
+from xrec.encoders._store import EmbeddingCache
 from xrec.encoders.base import Encoder
 from xrec.errors import ConfigError
 
 if TYPE_CHECKING:
     from xrec.data.catalog import Catalog
-    from xrec.encoders.cache import EmbeddingCache
 
 __all__ = ["catalog_texts", "encode_catalog_images", "encode_catalog_text"]
 
 
 def _resolve_cache(cache: EmbeddingCache | str | os.PathLike | bool | None) -> EmbeddingCache | None:
-    from xrec.encoders.cache import EmbeddingCache  # the cache module re-exports this one
-
     if cache is True:
         return EmbeddingCache()
     if cache is False or cache is None:

@@ -199,7 +199,8 @@ class EfficientNetLite0Encoder(Encoder):
 
     # -- loading --------------------------------------------------------------------------
 
-    def _check_settings(self) -> None:
+    def check_settings(self) -> None:
+        """Raise :class:`~xrec.errors.ConfigError` for a bad setting (before any model is loaded)."""
         who = "image encoder"
         check_on_error(self.on_error, who)
         check_batching(self.batch_size, self.num_threads, who)
@@ -220,7 +221,7 @@ class EfficientNetLite0Encoder(Encoder):
         ConfigError
             When the weights file is missing or does not fit the architecture.
         """
-        self._check_settings()
+        self.check_settings()
         if hasattr(self, "model_"):
             return self
         import timm
@@ -258,7 +259,7 @@ class EfficientNetLite0Encoder(Encoder):
 
         Only headers are read; a file truncated after its header is caught at encoding.
         """
-        self._check_settings()
+        self.check_settings()
         return image_problems(check_contents(contents, "image encoder"), max_pixels=self.max_pixels)
 
     def encode_with_probs(

@@ -6,6 +6,8 @@ from collections.abc import Sequence
 
 import numpy as np
 
+from xrec._validation import is_int
+from xrec.errors import ConfigError
 from xrec.evaluate._ranking import BlockRanks
 
 #: Metrics computed from held-out ranks (one value per user).
@@ -13,6 +15,29 @@ RANK_METRICS = ("hit_rate", "ndcg", "recall", "mrr")
 #: Metrics computed from each user's top-K list.
 LIST_METRICS = ("coverage", "popularity")
 ALL_METRICS = RANK_METRICS + LIST_METRICS
+
+
+def check_ks(ks: Sequence[int] | int) -> tuple[int, ...]:
+    """Cut-offs as a sorted tuple of distinct positive ints; ``ConfigError`` otherwise."""
+    if isinstance(ks, (int, np.integer)):
+        ks = (ks,)
+    ks = tuple(ks)
+    bad = [k for k in ks if not is_int(k) or k <= 0]
+    if not ks or bad:
+        raise ConfigError(f"ks must be positive integers, got bad value(s) {bad or list(ks)}")
+    return tuple(sorted({int(k) for k in ks}))
+
+
+def check_metrics(metrics: Sequence[str] | str) -> tuple[str, ...]:
+    """Known metric names, deduplicated in order; ``ConfigError`` for unknown names or none."""
+    if isinstance(metrics, str):
+        metrics = (metrics,)
+    unknown = [m for m in metrics if m not in ALL_METRICS]
+    if unknown:
+        raise ConfigError(f"unknown metric name(s) {unknown}; known: {list(ALL_METRICS)}")
+    if not metrics:
+        raise ConfigError("metrics is empty; pick from " + str(list(ALL_METRICS)))
+    return tuple(dict.fromkeys(metrics))
 
 
 def metric_column(metric: str, k: int) -> str:

@@ -60,18 +60,19 @@ class Comparison:
             "rows": [plain(r) for r in self.table.to_dict(orient="records")],
         }
 
-    def _title(self) -> str:
+    def title(self) -> str:
+        """One line saying what was compared, on how many users, with which interval and test."""
         return (
             f"Comparison vs {self.baseline!r} on {self.settings.get('n_users')} users "
             f"({self.settings.get('confidence', 0.95):.0%} paired-bootstrap CI, sign-flip p)"
         )
 
     def __repr__(self) -> str:
-        return self._title() + "\n" + self.table.to_string(index=False, float_format=lambda v: f"{v:.4g}")
+        return self.title() + "\n" + self.table.to_string(index=False, float_format=lambda v: f"{v:.4g}")
 
     def _repr_html_(self) -> str:
         body = self.table.to_html(index=False, float_format=lambda v: f"{v:.4g}")
-        return f"<div><b>{html.escape(self._title())}</b>{body}</div>"
+        return f"<div><b>{html.escape(self.title())}</b>{body}</div>"
 
 
 def _unique_names(cards: Sequence[Scorecard]) -> list[str]:

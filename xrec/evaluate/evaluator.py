@@ -10,9 +10,8 @@ import numpy as np
 import scipy.sparse as sp
 from tqdm.auto import tqdm
 
-from xrec._validation import is_int
 from xrec.errors import ConfigError, DataError
-from xrec.evaluate._metrics import ALL_METRICS, LIST_METRICS, RANK_METRICS, metric_column, metrics_from_ranks, popularity_of_lists
+from xrec.evaluate._metrics import LIST_METRICS, RANK_METRICS, check_ks, check_metrics, metric_column, metrics_from_ranks, popularity_of_lists
 from xrec.evaluate._ranking import canonical_rows, rank_heldout, top_k_items
 from xrec.evaluate.protocols import SAMPLED_WARNING, FullRanking, SampledNegatives
 from xrec.evaluate.scorecard import Scorecard
@@ -65,27 +64,6 @@ def _row_run(m: sp.csr_matrix, start: int, stop: int) -> sp.csr_matrix:
     )
     out.has_canonical_format = True
     return out
-
-
-def _check_ks(ks: Sequence[int] | int) -> tuple[int, ...]:
-    if isinstance(ks, (int, np.integer)):
-        ks = (ks,)
-    ks = tuple(ks)
-    bad = [k for k in ks if not is_int(k) or k <= 0]
-    if not ks or bad:
-        raise ConfigError(f"ks must be positive integers, got bad value(s) {bad or list(ks)}")
-    return tuple(sorted({int(k) for k in ks}))
-
-
-def _check_metrics(metrics: Sequence[str] | str) -> tuple[str, ...]:
-    if isinstance(metrics, str):
-        metrics = (metrics,)
-    unknown = [m for m in metrics if m not in ALL_METRICS]
-    if unknown:
-        raise ConfigError(f"unknown metric name(s) {unknown}; known: {list(ALL_METRICS)}")
-    if not metrics:
-        raise ConfigError("metrics is empty; pick from " + str(list(ALL_METRICS)))
-    return tuple(dict.fromkeys(metrics))
 
 
 def evaluate_blocks(
@@ -144,8 +122,8 @@ def evaluate_blocks(
     DataError
         Shape mismatches, users out of range, repeated, or without held-out items.
     """
-    ks = _check_ks(ks)
-    metrics = _check_metrics(metrics)
+    ks = check_ks(ks)
+    metrics = check_metrics(metrics)
     if not isinstance(chunk_size, (int, np.integer)) or chunk_size <= 0:
         raise ConfigError(f"chunk_size must be a positive int, got {chunk_size!r}")
     protocol = FullRanking() if protocol is None else protocol

@@ -143,7 +143,8 @@ class Scorecard:
             rows.setdefault(metric, {})[f"@{k}"] = v
         return pd.DataFrame(rows).T
 
-    def _title(self) -> str:
+    def title(self) -> str:
+        """One line naming the scorer, the protocol and the fold."""
         kind = self.protocol.get("kind", "?")
         if kind == "sampled_negatives":
             kind = f"sampled negatives (n={self.protocol.get('n_negatives')}, seed={self.protocol.get('seed')})"
@@ -152,11 +153,11 @@ class Scorecard:
         return f"Scorecard {self.name!r}: {self.n_users} users, {self.n_items} items, {kind}"
 
     def __repr__(self) -> str:
-        return self._title() + "\n" + self.table().to_string(float_format=lambda v: f"{v:.4f}")
+        return self.title() + "\n" + self.table().to_string(float_format=lambda v: f"{v:.4f}")
 
     def _repr_html_(self) -> str:
         body = self.table().to_html(float_format=lambda v: f"{v:.4f}")
-        return f"<div><b>{html.escape(self._title())}</b>{body}</div>"
+        return f"<div><b>{html.escape(self.title())}</b>{body}</div>"
 
     def to_dict(self) -> dict:
         """Plain form (str/int/float/list/dict only; no None) for JSON or TOML files.

@@ -139,7 +139,7 @@ class WeightMixer:
         from xrec.blend._base import check_sources
         from xrec.blend.normalize import NORMALIZERS, check_normalizer
         from xrec.evaluate._metrics import RANK_METRICS
-        from xrec.evaluate.evaluator import _check_ks
+        from xrec.evaluate._metrics import check_ks
 
         if not isinstance(fold, Fold):
             raise ConfigError(f"fold must be an xrec Fold, got {type(fold).__name__}")
@@ -148,7 +148,7 @@ class WeightMixer:
         if unfitted:
             raise ConfigError(f"sources {unfitted} are not fitted: fit them on the fold's training rows first")
         self.fold = fold
-        self.ks = _check_ks(ks)
+        self.ks = check_ks(ks)
         metrics = [metrics] if isinstance(metrics, str) else list(metrics)
         bad = [m for m in metrics if m not in RANK_METRICS]
         if bad or not metrics:
