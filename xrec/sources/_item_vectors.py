@@ -9,6 +9,7 @@ from typing import Any
 import numpy as np
 
 from xrec.data.catalog import Catalog
+from xrec.encoders.catalog import joined_rows
 from xrec.errors import ConfigError
 
 __all__ = ["check_images", "clip_vectors", "image_features_and_probs", "image_vectors", "item_labels", "item_texts", "text_vectors"]
@@ -29,7 +30,7 @@ def _format_value(value: Any) -> str:
 def item_texts(catalog: Catalog, columns: Sequence[str] | None = None, *, sep: str = "\n") -> list[str]:
     """One text per item: the non-blank values of ``columns`` joined by ``sep``.
 
-    Unlike :func:`xrec.encoders.cache.catalog_texts`, label columns (tuples, e.g. genres)
+    Unlike :func:`xrec.encoders.cache.catalog_texts` (which shares its joining), label columns (tuples, e.g. genres)
     are written as ``"a, b"`` and numbers as text, so ``columns=["title", "genres"]``
     works. With text columns only, the texts are the same (so are their cache entries).
 
@@ -44,12 +45,7 @@ def item_texts(catalog: Catalog, columns: Sequence[str] | None = None, *, sep: s
     unknown = [c for c in cols if c not in catalog.items.columns]
     if unknown:
         raise ConfigError(f"text source setting 'columns': {unknown} are not catalog columns; it has {list(catalog.items.columns)}")
-    frame = catalog.items[cols]
-    out = []
-    for row in frame.itertuples(index=False, name=None):
-        parts = [_format_value(v) for v in row]
-        out.append(sep.join(p for p in parts if p))
-    return out
+    return joined_rows(catalog, cols, sep, _format_value)
 
 
 def item_labels(catalog: Catalog) -> list[str]:

@@ -23,6 +23,7 @@ _DAY = 86400.0
 
 
 def l2_normalize(rows: np.ndarray) -> np.ndarray:
+    """Rows scaled to unit length (float32); zero rows stay zero."""
     norms = np.linalg.norm(rows.astype(np.float64), axis=1, keepdims=True)
     return np.divide(rows, norms, out=np.zeros_like(rows, dtype=np.float64), where=norms > 0).astype(np.float32)
 
@@ -44,6 +45,7 @@ def center_vectors(rows: np.ndarray) -> np.ndarray:
 
 
 def check_half_life(kind: str, value: Any) -> None:
+    """``ConfigError`` unless ``value`` (a kind's ``half_life_days`` setting) is ``None`` or a positive number."""
     check_number(value, f"{kind} setting 'half_life_days'", low=0, low_open=True, allow_none=True, expected="a positive number")
 
 
