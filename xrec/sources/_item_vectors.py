@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import os
 from collections.abc import Sequence
 from typing import Any
 
@@ -126,9 +125,6 @@ def check_images(catalog: Catalog) -> None:
         raise ConfigError("image source: the catalog declares no image column; declare image=... when building it")
 
 
-_CLIP: dict[tuple[str, str, int, int], Any] = {}
-
-
 def clip_vectors(
     catalog: Catalog,
     modality: str,
@@ -146,16 +142,9 @@ def clip_vectors(
             "cross_modal bridge 'clip' needs the setting 'clip_weights': the path of an open_clip weights "
             "file for clip_model (no CLIP weights ship with xrec)"
         )
-    try:
-        stat = os.stat(weights)
-        key = (str(model), str(weights), stat.st_mtime_ns, stat.st_size)
-    except OSError:
-        key = (str(model), str(weights), 0, 0)  # ClipEncoders names the missing file
-    if key not in _CLIP:  # one loaded model per process (and file version), as for the other encoders
-        from xrec.encoders.clip import ClipEncoders
+    from xrec.encoders._by_name import make_clip_encoders
 
-        _CLIP[key] = ClipEncoders(model, weights=weights, on_error="skip")
-    clip = _CLIP[key]
+    clip = make_clip_encoders(model, weights)
     cache = EmbeddingCache(cache_dir)
     if modality == "image":
         check_images(catalog)
