@@ -93,3 +93,18 @@ def test_not_fitted_error_is_in_xrecs_family_and_still_a_runtime_error():
     check_fitted(thing)
     with pytest.raises(NotFittedError, match="not prepared"):
         check_fitted(thing, attribute="prepared_", message="Thing is not prepared")
+
+
+def test_settings_that_take_integers_refuse_bools():
+    # The shared check reaches the settings that used to accept True as 1.
+    from xrec.encoders.cache import EmbeddingCache
+    from xrec.evaluate import SampledNegatives
+    from xrec.sources import make_source
+
+    with pytest.raises(ConfigError, match=r"SampledNegatives\.n_negatives must be a positive int, got True"):
+        SampledNegatives(n_negatives=True)
+    with pytest.raises(ConfigError, match="batch_size must be a positive int"):
+        EmbeddingCache(batch_size=True)
+    assert EmbeddingCache(batch_size=np.int64(8)).batch_size == 8
+    with pytest.raises(ConfigError, match="'alpha' must be a positive number, got True"):
+        make_source("als", alpha=True).fit(None)  # settings are checked before the fold is read

@@ -18,6 +18,7 @@ import numpy as np
 from tqdm.auto import tqdm
 
 from xrec._files import write_bytes_atomic
+from xrec._validation import is_int
 from xrec.encoders._entry_file import content_hash, entry_file, pack_entry, unpack_entry
 from xrec.encoders.base import Encoder
 from xrec.errors import ConfigError, DataError
@@ -230,7 +231,7 @@ def encode_through_cache(
         if folder is not None:
             cache.write_meta(folder, encoder, dim)  # type: ignore[union-attr]
         step = (cache.batch_size if cache is not None else None) or getattr(encoder, "batch_size", None)
-        if not isinstance(step, int) or step < 1:
+        if not is_int(step) or step < 1:
             step = 256
         bar = tqdm(total=len(todo), disable=not progress, unit="item", desc=f"encoding ({encoder.cache_key})")
         try:

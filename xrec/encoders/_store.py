@@ -14,6 +14,7 @@ from typing import Any
 import numpy as np
 
 from xrec._files import write_bytes_atomic
+from xrec._validation import check_int
 from xrec.encoders._entry_file import content_hash, entry_file
 from xrec.encoders._fill import CacheStats, encode_through_cache
 from xrec.encoders.base import Encoder
@@ -45,8 +46,7 @@ class EmbeddingCache:
     """
 
     def __init__(self, root: str | os.PathLike | None = None, *, batch_size: int | None = None) -> None:
-        if batch_size is not None and (not isinstance(batch_size, int) or batch_size < 1):
-            raise ConfigError(f"cache: batch_size must be a positive int, got {batch_size!r}")
+        batch_size = check_int(batch_size, "cache: batch_size", low=1, allow_none=True, expected="a positive int")
         self.root = Path(root if root is not None else os.environ.get(ENV_VAR) or DEFAULT_DIR)
         self.batch_size = batch_size
         self.last_stats = CacheStats()

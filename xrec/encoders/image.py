@@ -37,7 +37,7 @@ from typing import Any
 
 import numpy as np
 
-from xrec._validation import check_number
+from xrec._validation import check_int, check_number
 from xrec.encoders._common import OnError, check_batching, check_on_error, file_sha256, torch_threads
 from xrec.encoders._efficientnet_keys import default_weights_path, timm_key
 from xrec.encoders._image_io import (
@@ -204,8 +204,7 @@ class EfficientNetLite0Encoder(Encoder):
         who = "image encoder"
         check_on_error(self.on_error, who)
         check_batching(self.batch_size, self.num_threads, who)
-        if self.max_pixels is not None and (not isinstance(self.max_pixels, int) or self.max_pixels < 1):
-            raise ConfigError(f"{who}: max_pixels must be a positive int or None, got {self.max_pixels!r}")
+        check_int(self.max_pixels, f"{who}: max_pixels", low=1, allow_none=True, expected="a positive int")
         check_number(self.crop, f"{who}: crop", low=0.0, low_open=True, high=1.0, expected="a number in (0, 1]")
 
     def load(self) -> EfficientNetLite0Encoder:

@@ -9,6 +9,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from xrec._validation import check_int
 from xrec.errors import ConfigError, DataError
 from xrec.evaluate._stats import bootstrap_means, holm, percentile_interval, sign_flip_pvalue
 from xrec.evaluate.scorecard import Scorecard, plain
@@ -141,8 +142,7 @@ def compare(
         raise ConfigError("compare takes Scorecard objects")
     if not 0 < confidence < 1:
         raise ConfigError(f"confidence must be in (0, 1), got {confidence!r}")
-    if not isinstance(n_resamples, (int, np.integer)) or n_resamples < 1:
-        raise ConfigError(f"n_resamples must be a positive int, got {n_resamples!r}")
+    check_int(n_resamples, "n_resamples", low=1, expected="a positive int")
     if baseline.protocol != candidates[0].protocol or any(c.protocol != baseline.protocol for c in candidates):
         raise ConfigError(f"scorecards were evaluated under different protocols: {[c.protocol for c in cards]}")
 

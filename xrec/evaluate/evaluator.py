@@ -10,6 +10,7 @@ import numpy as np
 import scipy.sparse as sp
 from tqdm.auto import tqdm
 
+from xrec._validation import check_int
 from xrec.errors import ConfigError, DataError
 from xrec.evaluate._metrics import LIST_METRICS, RANK_METRICS, check_ks, check_metrics, metric_column, metrics_from_ranks, popularity_of_lists
 from xrec.evaluate._ranking import canonical_rows, rank_heldout, top_k_items
@@ -124,8 +125,7 @@ def evaluate_blocks(
     """
     ks = check_ks(ks)
     metrics = check_metrics(metrics)
-    if not isinstance(chunk_size, (int, np.integer)) or chunk_size <= 0:
-        raise ConfigError(f"chunk_size must be a positive int, got {chunk_size!r}")
+    check_int(chunk_size, "chunk_size", low=1, expected="a positive int")
     protocol = FullRanking() if protocol is None else protocol
     if not isinstance(protocol, (FullRanking, SampledNegatives)):
         raise ConfigError(f"protocol must be FullRanking() or SampledNegatives(...), got {type(protocol).__name__}")
