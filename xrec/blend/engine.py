@@ -28,6 +28,11 @@ that work is repeated. :class:`BlendEngine` does it once for a fixed set of user
 Users can be all of a fold's evaluation users (final numbers) or a stratified sample
 (:func:`sample_users`, strata by training activity) whose metric comes with a confidence
 interval, for interactive use.
+
+Layout: this module holds preparation and the public methods; the weight checks and summing
+kernels are :class:`~xrec.blend._weighted_sum.WeightedSumKernels` and the dominance shortcut
+:class:`~xrec.blend._dominance.DominancePruning`, both mixed into :class:`BlendEngine`;
+user samples live in :mod:`xrec.evaluate._sampling`.
 """
 
 from __future__ import annotations
