@@ -20,8 +20,7 @@ import os
 from collections.abc import Iterator, Sequence
 from typing import TYPE_CHECKING, Any
 
-import numpy as np
-
+from xrec._validation import check_int
 from xrec.errors import ConfigError, XrecError
 
 if TYPE_CHECKING:
@@ -38,8 +37,8 @@ def check_cluster_options(scheduler: Any = None, workers: Any = None, *, where: 
     """
     if scheduler is not None and (not isinstance(scheduler, str) or not scheduler.strip()):
         raise ConfigError(f"{where}scheduler: give a scheduler address such as 'tcp://127.0.0.1:8786', got {scheduler!r}")
-    if workers is not None and (not isinstance(workers, int) or isinstance(workers, bool) or workers < 1):
-        raise ConfigError(f"{where}workers: must be an integer >= 1, got {workers!r}")
+    if workers is not None:
+        check_int(workers, f"{where}workers", low=1)
     if scheduler is not None and workers is not None:
         raise ConfigError(
             f"{where}workers: the number of workers is set only for a local cluster; "
@@ -49,10 +48,8 @@ def check_cluster_options(scheduler: Any = None, workers: Any = None, *, where: 
 
 def check_shard_size(shard_size: Any) -> None:
     """Raise :class:`ConfigError` unless ``shard_size`` is ``None`` or an int >= 1."""
-    if shard_size is not None and (
-        not isinstance(shard_size, (int, np.integer)) or isinstance(shard_size, bool) or shard_size < 1
-    ):
-        raise ConfigError(f"shard_size must be a positive int, got {shard_size!r}")
+    if shard_size is not None:
+        check_int(shard_size, "shard_size", low=1)
 
 
 def blas_threads_here() -> int | None:
@@ -75,9 +72,7 @@ def resolve_blas_threads(blas_threads: Any) -> int | None:
         return None
     if blas_threads == "same":
         return blas_threads_here()
-    if not isinstance(blas_threads, int) or isinstance(blas_threads, bool) or blas_threads < 1:
-        raise ConfigError(f"blas_threads must be 'same', None or an integer >= 1, got {blas_threads!r}")
-    return blas_threads
+    return check_int(blas_threads, "blas_threads", low=1, expected="'same', None or an integer >= 1")
 
 
 def default_workers() -> int:

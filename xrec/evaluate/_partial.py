@@ -22,37 +22,23 @@ import pandas as pd
 import scipy.sparse as sp
 from tqdm.auto import tqdm
 
+from xrec._validation import check_int
 from xrec.errors import ConfigError, DataError
-from xrec.evaluate._metrics import ALL_METRICS, LIST_METRICS, RANK_METRICS, metric_column, metrics_from_ranks, popularity_of_lists
+from xrec.evaluate._metrics import (
+    LIST_METRICS,
+    RANK_METRICS,
+    check_ks,
+    check_metrics,
+    metric_column,
+    metrics_from_ranks,
+    popularity_of_lists,
+)
 from xrec.evaluate._ranking import canonical_rows, check_users, rank_heldout, top_k_items
 from xrec.evaluate.protocols import FullRanking, SampledNegatives
 from xrec.evaluate.scorecard import Scorecard
 from xrec.fold import Fold
 
 ScoreFn = Callable[[np.ndarray], np.ndarray]
-
-
-def check_ks(ks: Sequence[int] | int) -> tuple[int, ...]:
-    """Cut-offs as a sorted tuple of unique positive ints, else :class:`ConfigError`."""
-    if isinstance(ks, (int, np.integer)):
-        ks = (ks,)
-    ks = tuple(ks)
-    bad = [k for k in ks if not isinstance(k, (int, np.integer)) or isinstance(k, bool) or k <= 0]
-    if not ks or bad:
-        raise ConfigError(f"ks must be positive integers, got bad value(s) {bad or list(ks)}")
-    return tuple(sorted({int(k) for k in ks}))
-
-
-def check_metrics(metrics: Sequence[str] | str) -> tuple[str, ...]:
-    """Metric names without repeats, in the given order, else :class:`ConfigError`."""
-    if isinstance(metrics, str):
-        metrics = (metrics,)
-    unknown = [m for m in metrics if m not in ALL_METRICS]
-    if unknown:
-        raise ConfigError(f"unknown metric name(s) {unknown}; known: {list(ALL_METRICS)}")
-    if not metrics:
-        raise ConfigError("metrics is empty; pick from " + str(list(ALL_METRICS)))
-    return tuple(dict.fromkeys(metrics))
 
 
 @dataclass(frozen=True)
@@ -111,8 +97,7 @@ def check_inputs(
     """Validate everything :func:`evaluate_rows` needs; errors as :func:`~xrec.evaluate.evaluate_blocks` documents."""
     ks = check_ks(ks)
     metrics = check_metrics(metrics)
-    if not isinstance(chunk_size, (int, np.integer)) or isinstance(chunk_size, bool) or chunk_size <= 0:
-        raise ConfigError(f"chunk_size must be a positive int, got {chunk_size!r}")
+    chunk_size = check_int(chunk_size, "chunk_size", low=1, expected="a positive int")
     protocol = FullRanking() if protocol is None else protocol
     if not isinstance(protocol, (FullRanking, SampledNegatives)):
         raise ConfigError(f"protocol must be FullRanking() or SampledNegatives(...), got {type(protocol).__name__}")

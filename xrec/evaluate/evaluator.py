@@ -10,7 +10,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from xrec.errors import ConfigError, DataError
-from xrec.evaluate._partial import check_inputs, check_ks, check_metrics, evaluate_rows, fold_arguments, merge_partials
+from xrec.evaluate._partial import check_inputs, evaluate_rows, fold_arguments, merge_partials
 from xrec.evaluate.protocols import SAMPLED_WARNING, FullRanking, SampledNegatives
 from xrec.evaluate.scorecard import Scorecard
 from xrec.fold import Fold
@@ -52,11 +52,6 @@ def as_score_fn(scorer: Any, n_users: int | None = None, n_items: int | None = N
     raise ConfigError(
         f"scorer must be a 2-D array, an object with .score(users), or a callable f(users); got {type(scorer).__name__}"
     )
-
-
-# Kept under their old names: other modules import them from here.
-_check_ks = check_ks
-_check_metrics = check_metrics
 
 
 def evaluate_blocks(

@@ -28,8 +28,8 @@ import numpy as np
 import scipy.sparse as sp
 from threadpoolctl import threadpool_limits
 
+from xrec._validation import check_int
 from xrec.cluster import check_shard_size, open_client, resolve_blas_threads, run_shards, worker_count
-from xrec.errors import ConfigError
 from xrec.evaluate._chunked import DEFAULT_BLOCK_BYTES, check_problem, check_run_settings, evaluate_blend_chunked
 from xrec.evaluate._partial import EvalInputs, EvalOptions, PartialResult, check_inputs, evaluate_rows, fold_arguments, merge_partials
 from xrec.evaluate._metrics import RANK_METRICS
@@ -242,8 +242,7 @@ def evaluate_blend_sharded(
     n_items = truth.shape[1]
     if chunk_size is None:
         chunk_size = max(1, min(4096, DEFAULT_BLOCK_BYTES // (4 * n_items)))
-    if isinstance(chunk_size, bool) or not isinstance(chunk_size, (int, np.integer)) or chunk_size < 1:
-        raise ConfigError(f"chunk_size must be a positive int or None, got {chunk_size!r}")
+    chunk_size = check_int(chunk_size, "chunk_size", low=1, expected="a positive int or None")
     options = {"ks": ks, "metrics": metrics, "chunk_size": int(chunk_size)}
     with open_client(scheduler, workers, client=client) as active:
         bounds = shard_bounds(len(users), int(chunk_size), shard_size, worker_count(active))
