@@ -83,7 +83,7 @@ def _fit_sources(fold, cache_dir: str | None, progress: bool) -> dict[str, Any]:
 
 def _taste_hit_rates(cards: dict[str, Any], fold, truth: dict, k: int = 10) -> pd.DataFrame:
     """Hit rate@k per planted taste kind: each test user's held-out purchase has a known reason."""
-    from xrec.notebook.charts import wilson_interval
+    from xrec.evaluate._stats import wilson_interval
 
     held = fold.heldout[["user_idx", "item_idx"]].copy()
     held["user"] = fold.user_ids[held["user_idx"].to_numpy()]
@@ -179,9 +179,9 @@ def run_demo(
         valid_engine = BlendEngine(valid_sources, split.validation, "zscore", ks=(10,), metric=METRIC).prepare()
         test_engine = BlendEngine(test_sources, split.test, "zscore", ks=(10,), metric=METRIC).prepare()
         options = {"n_restarts": 1, "max_sweeps": 3} if quick else {"n_restarts": 4}
-        learned = learn_weights(valid_engine, method="coordinate_ascent", seed=seed, test_fold=split.test,
+        learned = learn_weights(valid_engine, method="coordinate_ascent", seed=seed, test_fold=split.test, progress=progress,
                                 test_sources=test_sources, **options)
-        gated = learn_gated_weights(valid_engine, start=learned.weights, seed=seed, test_engine=test_engine,
+        gated = learn_gated_weights(valid_engine, start=learned.weights, seed=seed, test_engine=test_engine, progress=progress,
                                     **({"n_restarts": 0, "max_sweeps": 2} if quick else {}))
 
     with clock.step("evaluating on the test split (full ranking)"):

@@ -131,6 +131,38 @@ def evaluation_options(spec: ExperimentSpec) -> dict[str, Any]:
     return opts
 
 
+def cluster_options(spec: ExperimentSpec) -> dict[str, Any] | None:
+    """``scheduler`` / ``workers`` of the spec's ``[evaluate]`` table, or ``None`` to evaluate in this process."""
+    ev = spec.evaluate
+    if ev.get("scheduler") is None and ev.get("workers") is None:
+        return None
+    return {"scheduler": ev.get("scheduler"), "workers": ev.get("workers")}
+
+
+def evaluate_scorers(spec: ExperimentSpec, scorers: dict[str, Any], fold: Any, *, progress: bool = False) -> dict[str, Any]:
+    """Scorecards of ``scorers`` on ``fold`` with the spec's ``[evaluate]`` options.
+
+    With ``scheduler`` or ``workers`` in ``[evaluate]`` the users are sharded over one Dask
+    cluster shared by every scorer (:func:`xrec.evaluate.evaluate_sharded`); the scorecards
+    are the same as in one process.
+    """
+    from xrec.evaluate import evaluate, evaluate_sharded
+
+    opts = evaluation_options(spec)
+    cluster = cluster_options(spec)
+    items = _progress(scorers.items(), progress, "evaluating")
+    if cluster is None:
+        return {name: evaluate(scorer, fold, name=name, **opts) for name, scorer in items}
+    from xrec.cluster import open_client
+
+    shard_size = spec.evaluate.get("shard_size")
+    with open_client(**cluster) as client:
+        return {
+            name: evaluate_sharded(scorer, fold, name=name, shard_size=shard_size, client=client, progress=progress, **opts)
+            for name, scorer in items
+        }
+
+
 def run_experiment(
     spec: ExperimentSpec, *, progress: bool = False, dataset: Dataset | None = None, only: str | None = None
 ) -> ExperimentResult:
@@ -139,7 +171,7 @@ def run_experiment(
     With ``only`` (a source or blend name) just that scorer and the sources it needs are
     fitted and evaluated, and there is no comparison.
     """
-    from xrec.evaluate import compare, evaluate
+    from xrec.evaluate import compare
     from xrec.split import split_dataset
 
     dataset = dataset or load_spec_dataset(spec, progress=progress)
@@ -159,17 +191,13 @@ def run_experiment(
         source.fit(fold)
     scorers: dict[str, Any] = dict(sources) if only is None or only in sources else {}
     learned: dict[str, Any] = {}
-    valid_sources: dict[str, Source] = {}
+    valid_sources: dict[Any, Any] = {}  # sources fitted on the validation split, and searches done on them
     for name, table in blends.items():
         try:
             scorers[name] = _build_blend(spec, table, sources, split, valid_sources, learned, name, progress)
         except ConfigError as exc:
             raise ConfigError(f"blends.{name}: {exc}") from exc
-    opts = evaluation_options(spec)
-    scorecards = {
-        name: evaluate(scorer, fold, name=name, **opts)
-        for name, scorer in _progress(scorers.items(), progress, "evaluating")
-    }
+    scorecards = evaluate_scorers(spec, scorers, fold, progress=progress)
     comparison = None
     baseline = spec.baseline
     if only is None and baseline is not None and len(scorecards) > 1:
@@ -202,6 +230,7 @@ def _build_blend(spec, table, sources, split, valid_sources, learned, name, prog
     if table["weights"] != "learn":
         return Blend(chosen, weights=table["weights"], normalizers=normalizer).fit(fold)
 
+    from xrec._validation import parse_metric_column
     from xrec.blend.engine import BlendEngine
     from xrec.blend.gating import GatedBlend, learn_gated_weights
     from xrec.blend.learn import learn_weights
@@ -214,14 +243,17 @@ def _build_blend(spec, table, sources, split, valid_sources, learned, name, prog
         if n not in valid_sources:
             valid_sources[n] = built[n].fit(split.validation)
     metric = table.get("metric", "ndcg@10")
-    try:
-        k = int(metric.rpartition("@")[2])
-    except ValueError:
-        raise ConfigError(f"metric: expected '<name>@<k>', got {metric!r}") from None
+    k = parse_metric_column(metric)[1]
     seed = int(table.get("seed", 0))
-    engine = BlendEngine({n: valid_sources[n] for n in names}, split.validation, normalizer, ks=(k,), metric=metric)
-    engine.prepare(progress=progress)
-    result = learn_weights(engine, method=table.get("method", "coordinate_ascent"), seed=seed, progress=progress)
+    # Blends over the same sources, normalizers, metric, method and seed share the engine and
+    # the ungated search (a gated blend starts from it), so neither is paid for twice.
+    method = table.get("method", "coordinate_ascent")
+    key = ("search", tuple(names), repr(normalizer), metric, method, seed)
+    if key not in valid_sources:
+        engine = BlendEngine({n: valid_sources[n] for n in names}, split.validation, normalizer, ks=(k,), metric=metric)
+        engine.prepare(progress=progress)
+        valid_sources[key] = (engine, learn_weights(engine, method=method, seed=seed, progress=progress))
+    engine, result = valid_sources[key]
     record = {"method": result.method, "metric": result.metric, "weights": result.weights, "validation": result.valid_score,
               "best_single": result.best_single[0] if result.best_single else None,
               "best_single_validation": result.best_single[1] if result.best_single else None}

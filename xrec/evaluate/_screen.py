@@ -41,7 +41,7 @@ import numpy as np
 import scipy.sparse as sp
 from threadpoolctl import threadpool_limits
 
-from xrec.errors import ConfigError
+from xrec._validation import check_int
 from xrec.evaluate._chunked import DEFAULT_BLOCK_BYTES, check_problem, check_run_settings, rows_of, run_chunks
 from xrec.evaluate._factor_blend import FactorBlend, blend_product
 from xrec.evaluate._metrics import RANK_METRICS, metrics_from_ranks
@@ -54,12 +54,6 @@ _ASSIGN_STEP = 1 << 16
 _POINTS_PER_LIST = 64
 # Users sampled to set the typical per-source slope used to shape the clustering space.
 _SLOPE_SAMPLE = 2000
-
-
-def _positive_int(name: str, value: object) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
-        raise ConfigError(f"{name} must be a positive int, got {value!r}")
-    return int(value)
 
 
 class ItemLists:
@@ -246,9 +240,9 @@ def evaluate_screened(
         blend = FactorBlend(sources, weights, normalizers, allow_blocks=False)
     seen, truth, users = check_problem(seen, truth, users, blend.item_side.shape[0])
     n_items, dim = blend.item_side.shape
-    n_lists = _positive_int("n_lists", n_lists if n_lists is not None else max(1, round(np.sqrt(n_items) / 2)))
-    probes = min(_positive_int("probes", probes), n_lists, n_items)
-    chunk_size = _positive_int("chunk_size", chunk_size)
+    n_lists = check_int(n_lists if n_lists is not None else max(1, round(np.sqrt(n_items) / 2)), "n_lists", low=1)
+    probes = min(check_int(probes, "probes", low=1), n_lists, n_items)
+    chunk_size = check_int(chunk_size, "chunk_size", low=1)
     item_side = blend.item_side
     started = time.perf_counter()
     with threadpool_limits(1):
