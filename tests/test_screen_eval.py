@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from xrec.errors import ConfigError
-from xrec.evaluate import evaluate_blend_chunked, evaluate_screened
+from xrec.evaluate import UNRANKED, evaluate_blend_chunked, evaluate_screened
 from xrec.evaluate._factor_blend import FactorBlend
 from xrec.evaluate._screen import ItemLists
 from xrec.evaluate._synthetic_scale import make_scale_problem
@@ -117,3 +117,19 @@ def test_screen_refuses_inexact_normalizers_and_bad_settings(small):
         evaluate_screened(*args, n_lists=-3)
     with pytest.raises(ConfigError, match="chunk_size"):
         evaluate_screened(*args, chunk_size=True)
+
+
+def test_heldout_items_seen_in_training_and_a_user_subset(wide):
+    # The first 30 users also hold out one of their training items: never a candidate.
+    extra = wide.train[:30].tocoo()
+    first = np.r_[True, extra.row[1:] != extra.row[:-1]]
+    truth = wide.heldout.tolil()
+    for u, j in zip(extra.row[first], extra.col[first]):
+        truth[u, j] = 1.0
+    truth = truth.tocsr()
+    users = np.arange(0, wide.n_users, 2)
+    full = evaluate_blend_chunked(wide.sources, wide.weights, wide.train, truth, users=users, ks=KS)
+    res = evaluate_screened(wide.sources, wide.weights, wide.train, truth, users=users, ks=KS, n_lists=50, probes=3)
+    np.testing.assert_array_equal(res.per_user[full.per_user.columns].to_numpy(), full.per_user.to_numpy())
+    seen_rows = res.ranks[res.ranks["rank"] == UNRANKED]
+    assert len(seen_rows) == 15 and seen_rows["certified"].all()
