@@ -173,11 +173,14 @@ def witness_counts(
     flat_list, flat_entry = flat_list[by_list], flat_entry[by_list]
     bounds = np.searchsorted(flat_list, np.arange(lists.n_lists + 1))
     counts = np.zeros(len(entry_row), dtype=np.int64)
+    # float32 thresholds rounded up, so a float32 score above one is above ``threshold`` too.
+    thr32 = np.asarray(threshold).astype(np.float32)
+    thr32 = np.where(thr32 < threshold, np.nextafter(thr32, np.float32(np.inf)), thr32)
     for lst in np.flatnonzero(np.diff(bounds)):
         ents = flat_entry[bounds[lst] : bounds[lst + 1]]
         items = item_side[lists.items(lst)]
         scores = blend_product(queries[entry_row[ents]], items)
-        counts[ents] += np.count_nonzero(scores > threshold[ents, None].astype(np.float32), axis=1)
+        counts[ents] += np.count_nonzero(scores > thr32[ents, None], axis=1)
     return counts
 
 
