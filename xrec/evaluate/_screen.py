@@ -184,6 +184,47 @@ def witness_counts(
     return counts
 
 
+def _probe_rounds(probes: int, n_lists: int) -> list[int]:
+    """Probes per round: ``probes``, then four times more while at most a quarter of the lists."""
+    out = [probes]
+    while out[-1] * 4 <= n_lists // 4:
+        out.append(out[-1] * 4)
+    return out
+
+
+def _top_lists(cent: np.ndarray, p: int) -> np.ndarray:
+    """``(b, p)`` lists with the highest centroid scores per row."""
+    if p >= cent.shape[1]:
+        return np.tile(np.arange(cent.shape[1]), (len(cent), 1))
+    return np.argpartition(-cent, p - 1, axis=1)[:, :p]
+
+
+def _witnesses(
+    queries: np.ndarray,
+    item_side: np.ndarray,
+    lists: ItemLists,
+    top: np.ndarray,
+    entry_row: np.ndarray,
+    held: np.ndarray,
+    delta: np.ndarray,
+    seen: sp.csr_matrix,
+) -> np.ndarray:
+    """Witnesses of each entry: unseen items in its row's ``top`` lists scoring above ``held + 4δ``.
+
+    Seen items are no candidates: any that may have been counted (scored above ``held + 2δ``
+    in float64) is removed, so the count stays a lower bound.
+    """
+    count = witness_counts(queries, item_side, lists, top, entry_row, held + 4.0 * delta)
+    n_seen = np.diff(seen.indptr)
+    pair_e = np.repeat(np.arange(len(entry_row)), n_seen[entry_row])
+    s_item = seen.indices[_ragged_ranges(seen.indptr[entry_row], n_seen[entry_row])].astype(np.int64)
+    scanned = (top[entry_row[pair_e]] == lists.assign[s_item][:, None]).any(axis=1)
+    pair_e, s_item = pair_e[scanned], s_item[scanned]
+    s_score = np.einsum("ed,ed->e", queries[entry_row[pair_e]], item_side[s_item], dtype=np.float64)
+    drop = s_score > held[pair_e] + 2.0 * delta[pair_e]
+    return count - np.bincount(pair_e[drop], minlength=len(entry_row))
+
+
 def evaluate_screened(
     sources: Mapping[str, Any],
     weights: Mapping[str, float],
@@ -218,7 +259,9 @@ def evaluate_screened(
         2,000 items for 10^6 items: building them costs one product of the items with
         the centroids).
     probes
-        Lists scanned per user (the highest-scoring centroids).
+        Lists scanned per user in the first round (the highest-scoring centroids); users
+        still short of witnesses get rounds of four times more probes, up to a quarter of
+        the lists, before they are ranked in full.
     users, ks, metrics, threads, name, progress
         As in :func:`~xrec.evaluate.evaluate_blend_chunked`.
     chunk_size
@@ -265,20 +308,21 @@ def evaluate_screened(
         e_row = np.repeat(np.arange(len(chunk)), np.diff(truth_rows.indptr))
         e_item = truth_rows.indices.astype(np.int64)
         held = np.einsum("ed,ed->e", queries[e_row], item_side[e_item], dtype=np.float64)
-        # Probed lists: the highest-scoring centroids of each user.
-        cent = blend_product(queries, lists.centroids)
-        top = np.argpartition(-cent, probes - 1, axis=1)[:, :probes] if probes < lists.n_lists else np.tile(np.arange(probes), (len(chunk), 1))
-        count = witness_counts(queries, item_side, lists, top, e_row, held + 4.0 * delta[e_row])
-        # Seen items are no candidates: remove any that may have been counted (margin 2δ).
-        n_seen = np.diff(seen_rows.indptr)
-        pair_e = np.repeat(np.arange(len(e_row)), n_seen[e_row])
-        s_item = seen_rows.indices[_ragged_ranges(seen_rows.indptr[e_row], n_seen[e_row])].astype(np.int64)
-        scanned = (top[e_row[pair_e]] == lists.assign[s_item][:, None]).any(axis=1)
-        pair_e, s_item = pair_e[scanned], s_item[scanned]
-        s_score = np.einsum("ed,ed->e", queries[e_row[pair_e]], item_side[s_item], dtype=np.float64)
-        drop = s_score > held[pair_e] + 2.0 * delta[e_row[pair_e]]
-        count -= np.bincount(pair_e[drop], minlength=len(e_row))
         is_seen = np.asarray(seen_rows[e_row, e_item]).ravel() != 0
+        cent = blend_product(queries, lists.centroids)
+        count = np.zeros(len(e_row), dtype=np.int64)
+        scanned_items = np.zeros(len(chunk), dtype=np.int64)
+        # Rounds of more probes for the entries still short of witnesses.
+        todo = np.flatnonzero(~is_seen)
+        for p in _probe_rounds(probes, lists.n_lists):
+            if not len(todo):
+                break
+            rows = np.unique(e_row[todo])
+            top = _top_lists(cent[rows], p)
+            slot = np.searchsorted(rows, e_row[todo])
+            count[todo] = _witnesses(queries[rows], item_side, lists, top, slot, held[todo], delta[e_row[todo]], seen_rows[rows])
+            scanned_items[rows] = lists.starts[top + 1].sum(axis=1) - lists.starts[top].sum(axis=1)
+            todo = todo[count[todo] < need]
         settled_e = is_seen | (count >= need)
         ranks = np.where(is_seen, UNRANKED, count + 1).astype(np.int64)
         exact = is_seen.copy()
@@ -291,13 +335,13 @@ def evaluate_screened(
             ents = _ragged_ranges(truth_rows.indptr[rows], np.diff(truth_rows.indptr)[rows])
             ranks[ents] = part.ranks
             exact[ents] = True
-        block_ranks = BlockRanks(truth_rows.indptr.astype(np.int64), e_item, ranks, (n_items - n_seen).astype(np.int64))
+        block_ranks = BlockRanks(truth_rows.indptr.astype(np.int64), e_item, ranks, (n_items - np.diff(seen_rows.indptr)).astype(np.int64))
         out = metrics_from_ranks(block_ranks, ks, metrics)
         out["certified"] = np.bincount(e_row, weights=~exact, minlength=len(chunk)) == 0
         for k in ks:
             out[f"exact@{k}"] = np.ones(len(chunk), dtype=bool)
         out["_user"], out["_item"], out["_rank"], out["_cert"] = chunk[e_row], e_item, ranks, exact
-        scored = np.where(settled, lists.starts[top + 1].sum(axis=1) - lists.starts[top].sum(axis=1), n_items)
+        scored = np.where(settled, scanned_items, n_items)
         out["_size"] = scored[e_row]
         return out
 
