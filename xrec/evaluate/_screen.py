@@ -8,6 +8,8 @@ column of ``x_j``). The items are grouped once into lists by k-means (``faiss.Km
 seeded) on the blended item vectors. For each user, a few lists whose centroids score
 highest are scanned with one matrix product per list for all users probing it, and the
 unseen items scoring clearly above each held-out item are counted: the **witnesses**.
+Users still short of witnesses get rounds of four times more lists (up to a quarter of
+them) before they are ranked in full.
 
 Why this is exact. A witness ``j`` scores above the held-out item ``t`` in the full
 ranking too, whatever the rounding: every float32 dot product here (the scan's, the
