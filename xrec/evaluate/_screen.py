@@ -220,7 +220,9 @@ def _witnesses(
     n_seen = np.diff(seen.indptr)
     pair_e = np.repeat(np.arange(len(entry_row)), n_seen[entry_row])
     s_item = seen.indices[_ragged_ranges(seen.indptr[entry_row], n_seen[entry_row])].astype(np.int64)
-    scanned = (top[entry_row[pair_e]] == lists.assign[s_item][:, None]).any(axis=1)
+    probed = np.zeros((len(top), lists.n_lists), dtype=bool)
+    probed[np.arange(len(top))[:, None], top] = True
+    scanned = probed[entry_row[pair_e], lists.assign[s_item]]
     pair_e, s_item = pair_e[scanned], s_item[scanned]
     s_score = np.einsum("ed,ed->e", queries[entry_row[pair_e]], item_side[s_item], dtype=np.float64)
     drop = s_score > held[pair_e] + 2.0 * delta[pair_e]
