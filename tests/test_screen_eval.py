@@ -77,7 +77,10 @@ def test_settled_items_have_enough_higher_items_by_numpy(wide):
             assert at_least + 1 >= rank > max(KS)
 
 
-def test_several_heldout_items_threads_and_tiny_lists(small):
+def test_several_heldout_items_threads_and_tiny_lists(small, monkeypatch):
+    import xrec.evaluate._screen as screen
+
+    monkeypatch.setattr(screen, "_PAIR_STEP", 7)  # the seen-item correction in many steps
     full = evaluate_blend_chunked(small.sources, small.weights, small.train, small.heldout, ks=KS)
     res = evaluate_screened(small.sources, small.weights, small.train, small.heldout, ks=KS, n_lists=7, probes=1, chunk_size=37, threads=2)
     assert res.settings["settled_by_witnesses"] > 0

@@ -54,6 +54,8 @@ _UNIT = 2.0**-24  # float32 unit roundoff
 _ASSIGN_STEP = 1 << 16
 # Training points per list for k-means (faiss subsamples to this many).
 _POINTS_PER_LIST = 64
+# (entry, seen item) pairs scored together in the seen-item correction.
+_PAIR_STEP = 1 << 16
 # Users sampled to set the typical per-source slope used to shape the clustering space.
 _SLOPE_SAMPLE = 2000
 
@@ -224,7 +226,10 @@ def _witnesses(
     probed[np.arange(len(top))[:, None], top] = True
     scanned = probed[entry_row[pair_e], lists.assign[s_item]]
     pair_e, s_item = pair_e[scanned], s_item[scanned]
-    s_score = np.einsum("ed,ed->e", queries[entry_row[pair_e]], item_side[s_item], dtype=np.float64)
+    s_score = np.empty(len(pair_e))
+    for lo in range(0, len(pair_e), _PAIR_STEP):  # bounded scratch: a step of pairs × D
+        sel = slice(lo, lo + _PAIR_STEP)
+        s_score[sel] = np.einsum("ed,ed->e", queries[entry_row[pair_e[sel]]], item_side[s_item[sel]], dtype=np.float64)
     drop = s_score > held[pair_e] + 2.0 * delta[pair_e]
     return count - np.bincount(pair_e[drop], minlength=len(entry_row))
 
