@@ -1,10 +1,12 @@
-"""Sources: popularity, collaborative models, attribute and content similarity."""
+"""Sources: popularity, collaborative models, attribute and content similarity, your vectors and ranking."""
 
 from xrec.sources.base import LowRankSource, Source, make_source, source_kinds
 from xrec.sources.popularity import PopularitySource
 from xrec.sources.collaborative import ALSSource, BPRSource, ItemKNNSource
 from xrec.sources.attributes import AttributeSource
 from xrec.sources.content import CrossModalSource, EarlyFusionSource, ImageSource, TextSource
+from xrec.sources.ranking import RankingSource
+from xrec.sources.vectors import VectorSource
 
 __all__ = [
     "ALSSource",
@@ -16,7 +18,9 @@ __all__ = [
     "ItemKNNSource",
     "LowRankSource",
     "PopularitySource",
+    "RankingSource",
     "TextSource",
+    "VectorSource",
     "Source",
     "make_source",
     "source_kinds",

@@ -24,6 +24,8 @@ class Source(ABC):
     """
 
     kind: ClassVar[str] = ""
+    #: settings that hold file paths; a spec gives them relative to the spec file
+    path_settings: ClassVar[tuple[str, ...]] = ()
 
     def __init_subclass__(cls, **kwargs: Any) -> None:
         super().__init_subclass__(**kwargs)

@@ -1,0 +1,238 @@
+"""Your current ranking as a source: a production top-N list per user, read from a file.
+
+The ``"ranking"`` kind (:class:`RankingSource`) reads rows of (user, item, score) or
+(user, item, rank) from CSV or Parquet — what a live system logged for each user — and
+scores every catalog item, so xrec's evaluator can measure the live ranking, a blend can
+mix it with other sources, and every comparison can use it as its baseline.
+
+How every item gets a score (a rule that never favours the file):
+
+- A user's listed items are ordered by the file (higher score first, or lower rank
+  first). The item at position ``p`` of a list of ``L`` known items (``p = 1`` is the
+  best; items with equal values share the best position among them) scores
+  ``L + 1 - p``, so listed items score from ``L`` down to at least 1.
+- Every item outside a user's list scores 0: below all listed items, all tied. The
+  evaluator breaks ties against the scorer, so a held-out item the file did not list
+  gets the worst rank among the user's candidates, never a lucky one.
+- A user absent from the file gets 0 for every item: all tied, so the worst rank.
+- Items the user trained on may be listed; the evaluator leaves them out anyway.
+
+Rows naming users not in the fold or items not in the catalog are left out, counted in
+``skipped_`` and reported in a warning. With ``depth``, only each user's first ``depth``
+rows of the file (in the file's own order of score or rank) count, before unknown items
+are left out, so an unknown item never lets a lower one into the top-N.
+
+The file must come from a system that did not see the held-out interactions (for
+instance a ranking logged before the test period); xrec cannot check that.
+
+Example spec table (paths are relative to the spec file)::
+
+    [sources.current]
+    kind = "ranking"
+    path = "current.csv"      # columns user, item and score (or rank)
+"""
+
+from __future__ import annotations
+
+import warnings
+from pathlib import Path
+from typing import ClassVar, Self
+
+import numpy as np
+import pandas as pd
+import scipy.sparse as sp
+
+from xrec.errors import ConfigError, DataError
+from xrec.fold import Fold
+from xrec.sources.base import Source
+
+_SHOW = 5
+
+
+def _rows_message(frame: pd.DataFrame, mask: np.ndarray, what: str, label: str) -> str:
+    bad = frame.loc[mask]
+    shown = "; ".join(
+        f"row {i}: " + ", ".join(f"{c}={v!r}" for c, v in row.items()) for i, row in bad.head(_SHOW).iterrows()
+    )
+    more = f" (and {len(bad) - _SHOW} more)" if len(bad) > _SHOW else ""
+    return f"{label}: {len(bad)} row(s) {what} (rows counted from 0 after the header): {shown}{more}"
+
+
+def read_ranking_file(
+    path: str | Path,
+    *,
+    user_col: str = "user",
+    item_col: str = "item",
+    score_col: str | None = None,
+    rank_col: str | None = None,
+) -> tuple[pd.DataFrame, str]:
+    """Read and check a ranking file; returns ``(frame, by)``.
+
+    ``frame`` has columns ``user``, ``item`` (text) and ``value`` (float64); ``by`` is
+    ``"score"`` (higher is better) or ``"rank"`` (lower is better). Without ``score_col``
+    and ``rank_col`` the file must have exactly one of the columns ``score`` and ``rank``.
+
+    Raises
+    ------
+    ConfigError
+        A missing file, an unknown extension, both ``score_col`` and ``rank_col`` given.
+    DataError
+        Naming the rows: an unreadable or empty file, missing columns, both a ``score``
+        and a ``rank`` column (and neither named), empty users or items, non-numeric, NaN
+        or infinite values, a repeated (user, item) pair.
+    """
+    path = Path(path)
+    label = str(path)
+    if score_col is not None and rank_col is not None:
+        raise ConfigError("ranking settings 'score_col' and 'rank_col': give one, not both")
+    if not path.is_file():
+        raise ConfigError(f"ranking setting 'path': file not found: {path}")
+    suffix = path.suffix.lower()
+    if suffix == ".csv":
+        try:
+            frame = pd.read_csv(path, dtype={user_col: str, item_col: str})
+        except (pd.errors.EmptyDataError, pd.errors.ParserError, UnicodeDecodeError) as exc:
+            raise DataError(f"{label}: cannot read as CSV: {exc}") from exc
+    elif suffix in (".parquet", ".pq"):
+        import pyarrow as pa
+
+        try:
+            frame = pd.read_parquet(path)
+        except (pa.ArrowInvalid, OSError) as exc:
+            raise DataError(f"{label}: not a readable Parquet file ({exc})") from exc
+    else:
+        raise ConfigError(f"ranking setting 'path': {path.name!r} must end in .csv, .parquet or .pq")
+    columns = list(frame.columns)
+    if score_col is None and rank_col is None:
+        present = [c for c in ("score", "rank") if c in columns]
+        if len(present) == 2:
+            raise DataError(f"{label}: has both a 'score' and a 'rank' column; say which orders the list with the setting 'score_col' or 'rank_col'")
+        if not present:
+            raise DataError(f"{label}: no 'score' or 'rank' column (or set 'score_col' / 'rank_col'); columns: {columns}")
+        by, value_col = present[0], present[0]
+    else:
+        by, value_col = ("score", score_col) if score_col is not None else ("rank", rank_col)
+    missing = [c for c in (user_col, item_col, value_col) if c not in columns]
+    if missing:
+        raise DataError(f"{label}: lacks column(s) {missing}; columns: {columns}")
+    if frame.empty:
+        raise DataError(f"{label}: holds no rows")
+    frame = frame[[user_col, item_col, value_col]].rename(columns={user_col: "user", item_col: "item", value_col: by})
+    for col in ("user", "item"):
+        empty = frame[col].isna().to_numpy()
+        if empty.any():
+            raise DataError(_rows_message(frame, empty, f"have no {col}", label))
+        frame[col] = frame[col].astype(str)
+    values = pd.to_numeric(frame[by], errors="coerce")
+    non_numeric = (values.isna() & frame[by].notna()).to_numpy()
+    if non_numeric.any():
+        raise DataError(_rows_message(frame, non_numeric, f"have a non-numeric {by}", label))
+    values = values.to_numpy(dtype=np.float64)
+    if not np.isfinite(values).all():
+        raise DataError(_rows_message(frame, ~np.isfinite(values), f"have a missing (NaN) or infinite {by}", label))
+    dup = frame.duplicated(["user", "item"], keep=False).to_numpy()
+    if dup.any():
+        raise DataError(_rows_message(frame, dup, "repeat a (user, item) pair", label))
+    return pd.DataFrame({"user": frame["user"].to_numpy(), "item": frame["item"].to_numpy(), "value": values}), by
+
+
+class RankingSource(Source):
+    """A production ranking (top-N items per user) read from a file, scoring every item.
+
+    See the module docstring for the scoring rule: listed items score ``L + 1 - p`` by
+    their position ``p`` in the user's list of ``L``, everything else 0 (tied, so the
+    evaluator ranks an unlisted held-out item last among the user's candidates).
+
+    Parameters
+    ----------
+    path
+        CSV (``.csv``) or Parquet (``.parquet`` / ``.pq``) file with one row per (user,
+        item). In a spec, relative to the spec file.
+    user_col, item_col
+        Columns of user and item ids (read as text).
+    score_col
+        Column of scores, higher is better.
+    rank_col
+        Column of ranks, lower is better. With neither ``score_col`` nor ``rank_col``, the
+        file's ``score`` or ``rank`` column (exactly one of them must be there).
+    depth
+        Keep only each user's first ``depth`` rows in the file's order (its top-N);
+        ``None`` keeps every row.
+
+    Attributes
+    ----------
+    list_scores_
+        Users × items CSR matrix of the listed items' scores (``L + 1 - p``).
+    list_lengths_
+        ``(n_users,)`` int64, known items listed per user (0: not in the file).
+    skipped_
+        ``{"unknown_user": rows, "unknown_item": rows}``: rows left out because their user
+        is not in the fold or their item is not in the catalog (a row with both counts in both).
+    by_
+        ``"score"`` or ``"rank"``: which column ordered the lists.
+    """
+
+    kind = "ranking"
+    path_settings: ClassVar[tuple[str, ...]] = ("path",)
+
+    def __init__(
+        self,
+        path: str,
+        user_col: str = "user",
+        item_col: str = "item",
+        score_col: str | None = None,
+        rank_col: str | None = None,
+        depth: int | None = None,
+    ) -> None:
+        self.path = path
+        self.user_col = user_col
+        self.item_col = item_col
+        self.score_col = score_col
+        self.rank_col = rank_col
+        self.depth = depth
+
+    def fit(self, fold: Fold) -> Self:
+        """Read the file and place each user's list on the fold's user and item index; returns ``self``."""
+        depth = self.depth
+        if depth is not None and (isinstance(depth, bool) or not isinstance(depth, int) or depth < 1):
+            raise ConfigError(f"ranking setting 'depth' must be a positive integer or None, got {depth!r}")
+        frame, self.by_ = read_ranking_file(
+            self.path, user_col=self.user_col, item_col=self.item_col, score_col=self.score_col, rank_col=self.rank_col
+        )
+        # best first within each user; equal values keep the file's order here (their scores tie below)
+        key = -frame["value"] if self.by_ == "score" else frame["value"]
+        frame = frame.assign(key=key.to_numpy()).sort_values(["user", "key"], kind="stable")
+        if depth is not None:
+            frame = frame[frame.groupby("user", sort=False).cumcount().to_numpy() < depth]
+        user_pos = {u: i for i, u in enumerate(np.asarray(fold.user_ids).astype(str))}
+        item_pos = {it: i for i, it in enumerate(fold.catalog.item_ids.astype(str))}
+        users = frame["user"].map(user_pos)
+        items = frame["item"].map(item_pos)
+        unknown_user, unknown_item = users.isna().to_numpy(), items.isna().to_numpy()
+        self.skipped_ = {"unknown_user": int(unknown_user.sum()), "unknown_item": int(unknown_item.sum())}
+        if unknown_user.any() or unknown_item.any():
+            warnings.warn(
+                f"{self.path}: left out {int((unknown_user | unknown_item).sum())} of {len(frame)} rows: "
+                f"{self.skipped_['unknown_user']} name a user not in the data, "
+                f"{self.skipped_['unknown_item']} an item not in the catalog",
+                stacklevel=2,
+            )
+        keep = ~(unknown_user | unknown_item)
+        kept = pd.DataFrame(
+            {"u": users.to_numpy()[keep].astype(np.int64), "i": items.to_numpy()[keep].astype(np.int64), "key": frame["key"].to_numpy()[keep]}
+        )
+        # position = 1 + number of the user's items strictly better ("min" ranking: ties share the best)
+        position = kept.groupby("u", sort=False)["key"].rank(method="min").to_numpy()
+        lengths = np.bincount(kept["u"].to_numpy(), minlength=fold.n_users).astype(np.int64)
+        values = (lengths[kept["u"].to_numpy()] + 1 - position).astype(np.float32)
+        matrix = sp.csr_matrix((values, (kept["u"].to_numpy(), kept["i"].to_numpy())), shape=(fold.n_users, fold.n_items), dtype=np.float32)
+        matrix.sort_indices()
+        self.list_scores_ = matrix
+        self.list_lengths_ = lengths
+        self.fitted_ = True
+        return self
+
+    def score(self, users: np.ndarray) -> np.ndarray:
+        """Scores of shape ``(len(users), n_items)``, float32: ``L + 1 - p`` for listed items, 0 elsewhere."""
+        self._check_fitted()
+        return self.list_scores_[np.asarray(users)].toarray().astype(np.float32, copy=False)
