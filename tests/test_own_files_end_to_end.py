@@ -166,3 +166,26 @@ def test_vector_scores_are_cosines_and_ranking_metrics_match_pytrec_eval(shop):
     for name in ("mix_z", "mix_rank", "mix_minmax"):
         block = result.scorers[name].score(users)
         assert np.isfinite(block).all() and block.shape == (len(users), fold.n_items)
+
+
+def test_ranking_spec_as_baseline_of_xrec_compare_and_export_round_trip(shop, tmp_path, capsys):
+    from xrec.cli import main
+
+    text = shop.read_text(encoding="utf-8")
+    base = shop.parent / "current_only.toml"
+    base.write_text(text.replace('name = "own files"', 'name = "live"').replace('baseline = "current"', 'primary = "current"'), encoding="utf-8")
+    cand = shop.parent / "blend_only.toml"
+    cand.write_text(text.replace('name = "own files"', 'name = "blend"').replace('baseline = "current"', 'primary = "mix_rank"'), encoding="utf-8")
+    with pytest.warns(UserWarning, match="left out 2 of"):
+        assert main(["compare", str(base), str(cand), "--json", "-q"]) == 0
+    comparison = json.loads(capsys.readouterr().out)
+    assert comparison["baseline"] == "current" and comparison["candidates"] == ["mix_rank"]
+    # the exported blend file records absolute paths, so it loads from any folder and gives the same lists
+    out = tmp_path / "blend.toml"
+    with pytest.warns(UserWarning, match="left out 2 of"):
+        assert main(["export", str(shop), "--scorer", "mix_rank", "-o", str(out), "-q"]) == 0
+    capsys.readouterr()
+    assert str((shop.parent / "current.csv").resolve()) in out.read_text(encoding="utf-8")
+    with pytest.warns(UserWarning, match="left out 2 of"):
+        assert main(["recommend", str(out), "--user", "c1", "-k", "3", "--json", "-q"]) == 0
+    assert len(json.loads(capsys.readouterr().out)["c1"]) == 3
