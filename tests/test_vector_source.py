@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import warnings
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -242,3 +243,33 @@ def test_all_zero_vector_counts_as_no_content(tmp_path) -> None:
         warnings.simplefilter("error")  # a zero row is not a missing item: no warning
         _, has = read_item_vectors(_fold().catalog, **_npy(tmp_path, vec, _ids()))
     assert has.tolist() == [j != 2 for j in range(N_ITEMS)]
+
+
+def test_vectors_from_a_setting_path_or_table(files) -> None:
+    from xrec.sources.vectors import vectors_from_setting
+
+    cat = _fold().catalog
+    a, _ = vectors_from_setting(cat, files["parquet_fixed"]["path"], "text_vectors")
+    b, _ = vectors_from_setting(cat, files["npy"], "text_vectors")
+    np.testing.assert_array_equal(a, b)
+    with pytest.raises(ConfigError, match="setting 'text_vectors': unknown key"):
+        vectors_from_setting(cat, {**files["npy"], "center": True}, "text_vectors")
+    with pytest.raises(ConfigError, match="setting 'image_vectors': a vector file path"):
+        vectors_from_setting(cat, 3, "image_vectors")
+
+
+def test_spec_paths_resolve_against_the_spec_folder(tmp_path) -> None:
+    from xrec.sources.ranking import RankingSource
+
+    resolve = lambda p: tmp_path / p  # noqa: E731
+    got = VectorSource.resolve_paths({"path": "v.npy", "ids": "ids.txt", "dim": 3}, resolve)
+    assert got == {"path": str(tmp_path / "v.npy"), "ids": str(tmp_path / "ids.txt"), "dim": 3}
+    assert RankingSource.resolve_paths({"path": "/abs/r.csv"}, lambda p: Path("/abs") / p)["path"] == "/abs/r.csv"
+
+    class Tables(VectorSource):
+        kind = ""  # not registered
+        path_settings = ("one", "many")
+
+    got = Tables.resolve_paths({"one": {"path": "a.npy", "ids": "a.txt", "id_col": "x"}, "many": {"m": {"path": "b.pq"}}}, resolve)
+    assert got["one"] == {"path": str(tmp_path / "a.npy"), "ids": str(tmp_path / "a.txt"), "id_col": "x"}
+    assert got["many"] == {"m": {"path": str(tmp_path / "b.pq")}}

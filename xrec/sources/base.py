@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import inspect
+from collections.abc import Callable, Mapping
 from abc import ABC, abstractmethod
 from typing import Any, ClassVar, Self
 
@@ -24,7 +25,8 @@ class Source(ABC):
     """
 
     kind: ClassVar[str] = ""
-    #: settings that hold file paths; a spec gives them relative to the spec file
+    #: settings that hold file paths (a path, a table with "path" / "ids" keys, or a table
+    #: of such tables); a spec gives them relative to the spec file
     path_settings: ClassVar[tuple[str, ...]] = ()
 
     def __init_subclass__(cls, **kwargs: Any) -> None:
@@ -33,6 +35,28 @@ class Source(ABC):
             if cls.kind in _REGISTRY and _REGISTRY[cls.kind] is not cls:
                 raise TypeError(f"source kind {cls.kind!r} registered twice")
             _REGISTRY[cls.kind] = cls
+
+    @classmethod
+    def resolve_paths(cls, settings: dict[str, Any], resolve: Callable[[str], Any]) -> dict[str, Any]:
+        """``settings`` with the file paths of :attr:`path_settings` passed through ``resolve``.
+
+        A setting may be a path, a table whose ``"path"`` and ``"ids"`` entries are paths, or
+        a table of such tables; anything else is left as it is (and checked when fitting).
+        """
+
+        def file_table(value: Any) -> Any:
+            if isinstance(value, Mapping) and "path" in value:
+                return {k: str(resolve(v)) if k in ("path", "ids") and isinstance(v, str) else v for k, v in value.items()}
+            return value
+
+        out = dict(settings)
+        for key in cls.path_settings:
+            value = out.get(key)
+            if isinstance(value, str):
+                out[key] = str(resolve(value))
+            elif isinstance(value, Mapping):
+                out[key] = file_table(value) if "path" in value else {k: file_table(v) for k, v in value.items()}
+        return out
 
     @abstractmethod
     def fit(self, fold: Fold) -> Self:

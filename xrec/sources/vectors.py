@@ -26,6 +26,7 @@ Example spec table (paths are relative to the spec file)::
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from numbers import Real
 from pathlib import Path
 from typing import Any, ClassVar, Self
@@ -125,6 +126,32 @@ def read_item_vectors(
     if not has.all():
         warnings.warn(f"{table.label}: {int((~has).sum())} catalog item(s) have no vector and get a zero row", stacklevel=2)
     return vectors, has & np.any(vectors != 0, axis=1)
+
+
+FILE_KEYS = ("path", "ids", "id_col", "vector_col", "tensor", "dim", "on_missing", "on_extra")
+
+
+def vectors_from_setting(catalog: Catalog, setting: Any, field: str, *, progress: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """Item vectors named by a source setting: a path, or a table of :func:`read_item_vectors` options.
+
+    How other sources take your vectors in place of an encoder's (e.g. the ``cross_modal``
+    source's ``text_vectors``): ``"items.parquet"``, or ``{ path = "v.npy", ids = "ids.txt" }``
+    with any of the keys in :data:`FILE_KEYS`.
+
+    Raises
+    ------
+    ConfigError
+        Naming ``field`` when the setting is neither a path nor such a table.
+    """
+    if isinstance(setting, (str, Path)):
+        setting = {"path": str(setting)}
+    if not isinstance(setting, Mapping) or not isinstance(setting.get("path"), (str, Path)):
+        raise ConfigError(f"setting {field!r}: a vector file path, or a table with 'path' (and {list(FILE_KEYS[1:])}), got {setting!r}")
+    unknown = sorted(set(setting) - set(FILE_KEYS))
+    if unknown:
+        raise ConfigError(f"setting {field!r}: unknown key(s) {unknown}; allowed: {list(FILE_KEYS)}")
+    options = dict(setting)
+    return read_item_vectors(catalog, options.pop("path"), progress=progress, **options)
 
 
 class VectorSource(LowRankSource):
