@@ -2,9 +2,13 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy.stats import rankdata
 
 from xrec.blend import normalize
@@ -134,3 +138,23 @@ def test_heldout_rows_never_change_scores(tmp_path) -> None:
     a = RankingSource(path).fit(_fold(heldout=[(0, 2)])).score(np.arange(N_USERS))
     b = RankingSource(path).fit(_fold(heldout=[(0, 1), (1, 3), (2, 4)])).score(np.arange(N_USERS))
     np.testing.assert_array_equal(a, b)
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.data())
+def test_any_file_order_is_kept_and_unlisted_items_stay_below(data) -> None:
+    import tempfile
+
+    n_listed = data.draw(st.integers(1, N_ITEMS), label="listed")
+    items = data.draw(st.permutations(range(N_ITEMS)), label="items")[:n_listed]
+    values = data.draw(st.lists(st.integers(-3, 3), min_size=n_listed, max_size=n_listed), label="scores")
+    with tempfile.TemporaryDirectory() as folder:
+        path = _write(Path(folder), [("u1", f"i{j}", float(v)) for j, v in zip(items, values)])
+        s = RankingSource(path).fit(_fold()).score(np.array([1]))[0]
+    listed = np.array(items)
+    rest = np.setdiff1d(np.arange(N_ITEMS), listed)
+    # the pairwise order of the file's scores is the source's order, ties included
+    # (a comparison of every pair, common practice, no source)
+    v = np.array(values, dtype=float)
+    np.testing.assert_array_equal(np.sign(v[:, None] - v[None, :]), np.sign(s[listed][:, None] - s[listed][None, :]))
+    assert s[listed].min() >= 1 and not s[rest].any()

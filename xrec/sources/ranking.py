@@ -88,21 +88,9 @@ def read_ranking_file(
     if not path.is_file():
         raise ConfigError(f"ranking setting 'path': file not found: {path}")
     suffix = path.suffix.lower()
-    if suffix == ".csv":
-        try:
-            frame = pd.read_csv(path, dtype={user_col: str, item_col: str})
-        except (pd.errors.EmptyDataError, pd.errors.ParserError, UnicodeDecodeError) as exc:
-            raise DataError(f"{label}: cannot read as CSV: {exc}") from exc
-    elif suffix in (".parquet", ".pq"):
-        import pyarrow as pa
-
-        try:
-            frame = pd.read_parquet(path)
-        except (pa.ArrowInvalid, OSError) as exc:
-            raise DataError(f"{label}: not a readable Parquet file ({exc})") from exc
-    else:
+    if suffix not in (".csv", ".parquet", ".pq"):
         raise ConfigError(f"ranking setting 'path': {path.name!r} must end in .csv, .parquet or .pq")
-    columns = list(frame.columns)
+    columns = _file_columns(path, suffix == ".csv")
     if score_col is None and rank_col is None:
         present = [c for c in ("score", "rank") if c in columns]
         if len(present) == 2:
@@ -115,6 +103,14 @@ def read_ranking_file(
     missing = [c for c in (user_col, item_col, value_col) if c not in columns]
     if missing:
         raise DataError(f"{label}: lacks column(s) {missing}; columns: {columns}")
+    wanted = [user_col, item_col, value_col]
+    if suffix == ".csv":
+        try:  # only the three columns are read; ids as text, so "007" stays "007"
+            frame = pd.read_csv(path, usecols=wanted, dtype={user_col: str, item_col: str})
+        except (pd.errors.ParserError, UnicodeDecodeError) as exc:
+            raise DataError(f"{label}: cannot read as CSV: {exc}") from exc
+    else:
+        frame = pd.read_parquet(path, columns=wanted)
     if frame.empty:
         raise DataError(f"{label}: holds no rows")
     frame = frame[[user_col, item_col, value_col]].rename(columns={user_col: "user", item_col: "item", value_col: by})
@@ -134,6 +130,22 @@ def read_ranking_file(
     if dup.any():
         raise DataError(_rows_message(frame, dup, "repeat a (user, item) pair", label))
     return pd.DataFrame({"user": frame["user"].to_numpy(), "item": frame["item"].to_numpy(), "value": values}), by
+
+
+def _file_columns(path: Path, csv: bool) -> list[str]:
+    """Column names of a CSV (its header) or Parquet file (its schema), read without the rows."""
+    if csv:
+        try:
+            return [str(c) for c in pd.read_csv(path, nrows=0).columns]
+        except (pd.errors.EmptyDataError, pd.errors.ParserError, UnicodeDecodeError) as exc:
+            raise DataError(f"{path}: cannot read as CSV: {exc}") from exc
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    try:
+        return list(pq.read_schema(path).names)
+    except (pa.ArrowInvalid, OSError) as exc:
+        raise DataError(f"{path}: not a readable Parquet file ({exc})") from exc
 
 
 class RankingSource(Source):
