@@ -26,6 +26,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pandas as pd
 
 from xrec.errors import ConfigError, DataError
 
@@ -265,12 +266,12 @@ def align_vectors(
     if dim is not None and table.dim != dim:
         raise DataError(f"{label}: vectors have {table.dim} dimensions, the setting 'dim' expects {dim}")
     ids = table.ids
-    uniq, counts = np.unique(ids.astype(str), return_counts=True)
-    if (counts > 1).any():
-        dupes = uniq[counts > 1]
+    file_ids = pd.Index(ids.astype(str))
+    repeated = file_ids.duplicated(keep="first")
+    if repeated.any():
+        dupes = file_ids[repeated].unique()
         raise DataError(f"{label}: {len(dupes)} id(s) appear more than once: {_first(dupes)}")
-    positions = {item: i for i, item in enumerate(np.asarray(catalog_ids).astype(str))}
-    target = np.fromiter((positions.get(i, -1) for i in ids.astype(str)), dtype=np.int64, count=len(ids))
+    target = pd.Index(np.asarray(catalog_ids).astype(str)).get_indexer(file_ids).astype(np.int64)
     extra = target < 0
     if extra.any() and on_extra == "error":
         raise DataError(
