@@ -270,6 +270,7 @@ def test_spec_paths_resolve_against_the_spec_folder(tmp_path) -> None:
         kind = ""  # not registered
         path_settings = ("one", "many")
 
-    got = Tables.resolve_paths({"one": {"path": "a.npy", "ids": "a.txt", "id_col": "x"}, "many": {"m": {"path": "b.pq"}}}, resolve)
+    got = Tables.resolve_paths({"one": {"path": "a.npy", "ids": "a.txt", "id_col": "x"}, "many": {"m": {"path": "b.pq"}, "n": "c.pq"}}, resolve)
     assert got["one"] == {"path": str(tmp_path / "a.npy"), "ids": str(tmp_path / "a.txt"), "id_col": "x"}
-    assert got["many"] == {"m": {"path": str(tmp_path / "b.pq")}}
+    assert got["many"] == {"m": {"path": str(tmp_path / "b.pq")}, "n": str(tmp_path / "c.pq")}
+    assert Tables.resolve_paths({"one": None}, resolve) == {"one": None} and Tables.resolve_paths({}, resolve) == {}

@@ -41,21 +41,26 @@ class Source(ABC):
         """``settings`` with the file paths of :attr:`path_settings` passed through ``resolve``.
 
         A setting may be a path, a table whose ``"path"`` and ``"ids"`` entries are paths, or
-        a table of such tables; anything else is left as it is (and checked when fitting).
+        a table of paths or of such tables; anything else is left as it is (and checked when
+        fitting).
         """
 
-        def file_table(value: Any) -> Any:
+        def one_file(value: Any) -> Any:
+            if isinstance(value, str):
+                return str(resolve(value))
             if isinstance(value, Mapping) and "path" in value:
                 return {k: str(resolve(v)) if k in ("path", "ids") and isinstance(v, str) else v for k, v in value.items()}
             return value
 
         out = dict(settings)
         for key in cls.path_settings:
-            value = out.get(key)
-            if isinstance(value, str):
-                out[key] = str(resolve(value))
-            elif isinstance(value, Mapping):
-                out[key] = file_table(value) if "path" in value else {k: file_table(v) for k, v in value.items()}
+            if key not in out:
+                continue
+            value = out[key]
+            if isinstance(value, Mapping) and "path" not in value:
+                out[key] = {k: one_file(v) for k, v in value.items()}
+            else:
+                out[key] = one_file(value)
         return out
 
     @abstractmethod
