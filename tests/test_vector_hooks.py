@@ -32,7 +32,7 @@ def pair_files(tmp_path):
     """"Image" vectors (.npy) and "text" vectors (Parquet) of the same items, linearly related."""
     rng = np.random.default_rng(8)
     image = rng.normal(size=(N_ITEMS, 10)).astype(np.float32)
-    text = (image @ rng.normal(size=(10, 7)) + rng.normal(scale=0.1, size=(N_ITEMS, 7))).astype(np.float32)
+    text = (image @ rng.normal(size=(10, 7)) + rng.normal(scale=0.5, size=(N_ITEMS, 7))).astype(np.float32)
     ids = [f"i{j}" for j in range(N_ITEMS)]
     np.save(tmp_path / "image.npy", image)
     (tmp_path / "ids.txt").write_text("\n".join(ids), encoding="utf-8")
@@ -40,7 +40,7 @@ def pair_files(tmp_path):
     return {"image": {"path": str(tmp_path / "image.npy"), "ids": str(tmp_path / "ids.txt")}, "text": str(tmp_path / "text.parquet")}, image, text
 
 
-@pytest.mark.parametrize(("bridge", "settings"), [("ridge", {"alpha": 1.0}), ("cca", {"n_components": 4, "pca_components": None})])
+@pytest.mark.parametrize(("bridge", "settings"), [("ridge", {"alpha": 1.0}), ("cca", {"n_components": 2, "pca_components": None})])
 def test_cross_modal_takes_file_vectors_for_both_sides(pair_files, bridge, settings) -> None:
     files, image, text = pair_files
     fold = _fold()

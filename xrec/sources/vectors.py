@@ -27,26 +27,18 @@ Example spec table (paths are relative to the spec file)::
 from __future__ import annotations
 
 from collections.abc import Mapping
-from numbers import Real
 from pathlib import Path
-from typing import Any, ClassVar, Self
+from typing import Any, ClassVar
 
 import numpy as np
 
 from xrec.data.catalog import Catalog
 from xrec.errors import ConfigError
-from xrec.fold import Fold
 from xrec.sources._vector_files import align_vectors, open_vector_file
-from xrec.sources.base import LowRankSource
-from xrec.sources.content import center_vectors, user_profiles
+from xrec.sources._profiles import ProfileSource
 
 ON_MISSING = ("error", "skip")
 ON_EXTRA = ("error", "ignore")
-
-
-def _unit_rows(rows: np.ndarray) -> np.ndarray:
-    norms = np.linalg.norm(rows.astype(np.float64), axis=1, keepdims=True)
-    return np.divide(rows, norms, out=np.zeros(rows.shape, dtype=np.float64), where=norms > 0).astype(np.float32)
 
 
 def _check_choice(value: Any, choices: tuple[str, ...], field: str) -> None:
@@ -154,7 +146,7 @@ def vectors_from_setting(catalog: Catalog, setting: Any, field: str, *, progress
     return read_item_vectors(catalog, options.pop("path"), progress=progress, **options)
 
 
-class VectorSource(LowRankSource):
+class VectorSource(ProfileSource):
     """Cosine between a user's profile and each item's vector, vectors read from your file.
 
     Parameters
@@ -168,7 +160,8 @@ class VectorSource(LowRankSource):
         See :func:`read_item_vectors`.
     center
         Subtract the mean of the catalog's normalized vectors before building profiles and
-        scoring (see :func:`~xrec.sources.content.center_vectors`).
+        scoring (see :func:`~xrec.sources.content.center_vectors`). Fitting reads the file,
+        then builds profiles as the ``text`` and ``image`` sources do.
     half_life_days
         A training interaction's weight in the profile halves every ``half_life_days``
         days before the user's latest one; ``None`` weighs all equally.
@@ -229,17 +222,6 @@ class VectorSource(LowRankSource):
             progress=self.progress,
         )
 
-    def fit(self, fold: Fold) -> Self:
-        """Read the vectors and build profiles from ``fold.train``; returns ``self``."""
-        hl = self.half_life_days
-        if hl is not None and (isinstance(hl, bool) or not isinstance(hl, Real) or not (np.isfinite(hl) and hl > 0)):
-            raise ConfigError(f"vectors setting 'half_life_days' must be a positive number or None, got {hl!r}")
-        vectors, self.has_content_ = self.read(fold.catalog)
-        # each history item counts as a direction, whatever its vector's length
-        vectors = _unit_rows(vectors)
-        if self.center:
-            vectors = center_vectors(vectors)
-        self.item_factors_ = _unit_rows(vectors)
-        self.user_factors_ = user_profiles(fold, vectors, hl)
-        self.fitted_ = True
-        return self
+    def _vectors(self, catalog: Catalog) -> tuple[np.ndarray, np.ndarray]:
+        vectors, self.has_content_ = self.read(catalog)
+        return vectors, vectors
