@@ -83,6 +83,17 @@ kind = "vectors"
 path = "vectors/items.parquet"
 [sources.popularity]
 kind = "popularity"
+[sources.bridged]
+kind = "cross_modal"
+bridge = "ridge"
+profile = "image"
+items = "text"
+image_vectors = { path = "vectors/items.npy", ids = "vectors/ids.txt" }
+text_vectors = "vectors/items.parquet"
+[sources.fused]
+kind = "early_fusion"
+modalities = ["attributes", "mine"]
+vectors = { mine = "vectors/items.parquet" }
 [blends.mix_z]
 normalizer = "zscore"
 weights = { current = 1.0, vec_parquet = 0.5 }
@@ -112,7 +123,7 @@ def test_cli_runs_the_spec_with_the_ranking_as_baseline(shop, tmp_path):
     assert done.returncode == 0, done.stderr
     payload = json.loads(done.stdout)
     cards = payload["scorecards"]
-    assert set(cards) == {"current", "vec_npy", "vec_parquet", "popularity", "mix_z", "mix_rank", "mix_minmax"}
+    assert set(cards) == {"current", "vec_npy", "vec_parquet", "popularity", "bridged", "fused", "mix_z", "mix_rank", "mix_minmax"}
     assert payload["comparison"]["baseline"] == "current"
     assert set(payload["comparison"]["candidates"]) == set(cards) - {"current"}
     # the same vectors from .npy and Parquet give the same ranking
