@@ -230,14 +230,13 @@ class RankingSource(Source):
                 stacklevel=2,
             )
         keep = ~(unknown_user | unknown_item)
-        kept = pd.DataFrame(
-            {"u": users.to_numpy()[keep].astype(np.int64), "i": items.to_numpy()[keep].astype(np.int64), "key": frame["key"].to_numpy()[keep]}
-        )
+        u = users.to_numpy()[keep].astype(np.int64)
+        i = items.to_numpy()[keep].astype(np.int64)
         # position = 1 + number of the user's items strictly better ("min" ranking: ties share the best)
-        position = kept.groupby("u", sort=False)["key"].rank(method="min").to_numpy()
-        lengths = np.bincount(kept["u"].to_numpy(), minlength=fold.n_users).astype(np.int64)
-        values = (lengths[kept["u"].to_numpy()] + 1 - position).astype(np.float32)
-        matrix = sp.csr_matrix((values, (kept["u"].to_numpy(), kept["i"].to_numpy())), shape=(fold.n_users, fold.n_items), dtype=np.float32)
+        position = pd.Series(frame["key"].to_numpy()[keep]).groupby(u, sort=False).rank(method="min").to_numpy()
+        lengths = np.bincount(u, minlength=fold.n_users).astype(np.int64)
+        values = (lengths[u] + 1 - position).astype(np.float32)
+        matrix = sp.csr_matrix((values, (u, i)), shape=(fold.n_users, fold.n_items), dtype=np.float32)
         matrix.sort_indices()
         self.list_scores_ = matrix
         self.list_lengths_ = lengths
