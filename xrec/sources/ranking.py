@@ -118,7 +118,8 @@ def read_ranking_file(
         empty = frame[col].isna().to_numpy()
         if empty.any():
             raise DataError(_rows_message(frame, empty, f"have no {col}", label))
-        frame[col] = frame[col].astype(str)
+        if not pd.api.types.is_string_dtype(frame[col]):
+            frame[col] = frame[col].astype(str)
     values = pd.to_numeric(frame[by], errors="coerce")
     non_numeric = (values.isna() & frame[by].notna()).to_numpy()
     if non_numeric.any():
@@ -126,7 +127,8 @@ def read_ranking_file(
     values = values.to_numpy(dtype=np.float64)
     if not np.isfinite(values).all():
         raise DataError(_rows_message(frame, ~np.isfinite(values), f"have a missing (NaN) or infinite {by}", label))
-    dup = frame.duplicated(["user", "item"], keep=False).to_numpy()
+    users, items = pd.factorize(frame["user"])[0], pd.factorize(frame["item"])[0]
+    dup = pd.Series(users.astype(np.int64) * (int(items.max()) + 1) + items).duplicated(keep=False).to_numpy()
     if dup.any():
         raise DataError(_rows_message(frame, dup, "repeat a (user, item) pair", label))
     return pd.DataFrame({"user": frame["user"].to_numpy(), "item": frame["item"].to_numpy(), "value": values}), by
@@ -146,6 +148,21 @@ def _file_columns(path: Path, csv: bool) -> list[str]:
         return list(pq.read_schema(path).names)
     except (pa.ArrowInvalid, OSError) as exc:
         raise DataError(f"{path}: not a readable Parquet file ({exc})") from exc
+
+
+def _within_group(groups: np.ndarray, values: np.ndarray | None = None) -> np.ndarray:
+    """0-based place of each row in its run of equal ``groups`` (rows sorted by group, then value).
+
+    With ``values``, rows with equal values share the place of the first of them.
+    """
+    n = len(groups)
+    index = np.arange(n)
+    new_group = np.r_[True, groups[1:] != groups[:-1]] if n else np.zeros(0, dtype=bool)
+    group_start = np.maximum.accumulate(np.where(new_group, index, 0)) if n else index
+    if values is None:
+        return index - group_start
+    new_value = new_group | np.r_[True, values[1:] != values[:-1]]
+    return np.maximum.accumulate(np.where(new_value, index, 0)) - group_start
 
 
 class RankingSource(Source):
@@ -212,28 +229,28 @@ class RankingSource(Source):
             self.path, user_col=self.user_col, item_col=self.item_col, score_col=self.score_col, rank_col=self.rank_col
         )
         # best first within each user; equal values keep the file's order here (their scores tie below)
-        key = -frame["value"] if self.by_ == "score" else frame["value"]
-        frame = frame.assign(key=key.to_numpy()).sort_values(["user", "key"], kind="stable")
+        key = -frame["value"].to_numpy() if self.by_ == "score" else frame["value"].to_numpy()
+        # ids are looked up once per distinct id, through their codes
+        file_users, user_names = pd.factorize(frame["user"])
+        file_items, item_names = pd.factorize(frame["item"])
+        order = np.lexsort((key, file_users))
         if depth is not None:
-            frame = frame[frame.groupby("user", sort=False).cumcount().to_numpy() < depth]
-        user_pos = {u: i for i, u in enumerate(np.asarray(fold.user_ids).astype(str))}
-        item_pos = {it: i for i, it in enumerate(fold.catalog.item_ids.astype(str))}
-        users = frame["user"].map(user_pos)
-        items = frame["item"].map(item_pos)
-        unknown_user, unknown_item = users.isna().to_numpy(), items.isna().to_numpy()
+            order = order[_within_group(file_users[order]) < depth]
+        users = pd.Index(np.asarray(fold.user_ids).astype(str)).get_indexer(user_names)[file_users[order]]
+        items = pd.Index(fold.catalog.item_ids.astype(str)).get_indexer(item_names)[file_items[order]]
+        unknown_user, unknown_item = users < 0, items < 0
         self.skipped_ = {"unknown_user": int(unknown_user.sum()), "unknown_item": int(unknown_item.sum())}
         if unknown_user.any() or unknown_item.any():
             warnings.warn(
-                f"{self.path}: left out {int((unknown_user | unknown_item).sum())} of {len(frame)} rows: "
+                f"{self.path}: left out {int((unknown_user | unknown_item).sum())} of {len(order)} rows: "
                 f"{self.skipped_['unknown_user']} name a user not in the data, "
                 f"{self.skipped_['unknown_item']} an item not in the catalog",
                 stacklevel=2,
             )
         keep = ~(unknown_user | unknown_item)
-        u = users.to_numpy()[keep].astype(np.int64)
-        i = items.to_numpy()[keep].astype(np.int64)
+        u, i, k = users[keep].astype(np.int64), items[keep].astype(np.int64), key[order][keep]
         # position = 1 + number of the user's items strictly better ("min" ranking: ties share the best)
-        position = pd.Series(frame["key"].to_numpy()[keep]).groupby(u, sort=False).rank(method="min").to_numpy()
+        position = _within_group(u, k) + 1
         lengths = np.bincount(u, minlength=fold.n_users).astype(np.int64)
         values = (lengths[u] + 1 - position).astype(np.float32)
         matrix = sp.csr_matrix((values, (u, i)), shape=(fold.n_users, fold.n_items), dtype=np.float32)
