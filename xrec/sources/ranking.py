@@ -42,6 +42,7 @@ import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 
+from xrec._validation import check_int
 from xrec.errors import ConfigError, DataError
 from xrec.fold import Fold
 from xrec.sources.base import Source
@@ -222,9 +223,7 @@ class RankingSource(Source):
 
     def fit(self, fold: Fold) -> Self:
         """Read the file and place each user's list on the fold's user and item index; returns ``self``."""
-        depth = self.depth
-        if depth is not None and (isinstance(depth, bool) or not isinstance(depth, int) or depth < 1):
-            raise ConfigError(f"ranking setting 'depth' must be a positive integer or None, got {depth!r}")
+        depth = check_int(self.depth, "ranking setting 'depth'", low=1, allow_none=True)
         frame, self.by_ = read_ranking_file(
             self.path, user_col=self.user_col, item_col=self.item_col, score_col=self.score_col, rank_col=self.rank_col
         )

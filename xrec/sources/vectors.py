@@ -32,6 +32,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
+from xrec._validation import check_choice, check_int
 from xrec.data.catalog import Catalog
 from xrec.errors import ConfigError
 from xrec.sources._vector_files import align_vectors, open_vector_file
@@ -39,11 +40,6 @@ from xrec.sources._profiles import ProfileSource
 
 ON_MISSING = ("error", "skip")
 ON_EXTRA = ("error", "ignore")
-
-
-def _check_choice(value: Any, choices: tuple[str, ...], field: str) -> None:
-    if value not in choices:
-        raise ConfigError(f"vectors setting {field!r} must be one of {list(choices)}, got {value!r}")
 
 
 def read_item_vectors(
@@ -103,10 +99,9 @@ def read_item_vectors(
     """
     import warnings
 
-    _check_choice(on_missing, ON_MISSING, "on_missing")
-    _check_choice(on_extra, ON_EXTRA, "on_extra")
-    if dim is not None and (isinstance(dim, bool) or not isinstance(dim, int) or dim < 1):
-        raise ConfigError(f"vectors setting 'dim' must be a positive integer or None, got {dim!r}")
+    check_choice(on_missing, "vectors setting 'on_missing'", ON_MISSING)
+    check_choice(on_extra, "vectors setting 'on_extra'", ON_EXTRA)
+    dim = check_int(dim, "vectors setting 'dim'", low=1, allow_none=True)
     table = open_vector_file(
         Path(path), ids_path=None if ids is None else Path(ids), id_col=id_col, vector_col=vector_col, tensor=tensor
     )
