@@ -87,7 +87,8 @@ def test_catalog_duplicate_ids_name_the_rows():
         _catalog(frame=frame)
     msg = str(err.value)
     assert msg.startswith("catalog: 2 rows share an item id")
-    assert "row 0: sku='a'" in msg and "row 2: sku='a'" in msg
+    # Rows are numbered from 1 (the frame's first row is row 1), like the 1-based lines of parse errors.
+    assert "row 1: sku='a'" in msg and "row 3: sku='a'" in msg
 
 
 def test_catalog_ids_equal_as_strings_are_duplicates():
@@ -98,17 +99,17 @@ def test_catalog_ids_equal_as_strings_are_duplicates():
 def test_catalog_missing_id_single_row_reads_as_singular():
     frame = _catalog_frame()
     frame.loc[1, "sku"] = None
-    with pytest.raises(DataError, match=r"^catalog: 1 row has no item id: row 1: sku=(None|nan)$"):
+    with pytest.raises(DataError, match=r"^catalog: 1 row has no item id: row 2: sku=<missing>$"):
         _catalog(frame=frame)
 
 
 def test_catalog_nan_and_non_numeric_in_numeric_column():
     frame = _catalog_frame()
     frame["price"] = [1.0, np.nan, np.nan]
-    with pytest.raises(DataError, match=r"2 rows have NaN in numeric column 'price'.*row 1.*row 2"):
+    with pytest.raises(DataError, match=r"2 rows have a missing or NaN value in numeric column 'price'.*row 2.*row 3"):
         _catalog(frame=frame)
     frame["price"] = ["1", "cheap", "2"]
-    with pytest.raises(DataError, match=r"1 row has a non-numeric 'price': row 1: sku='b', price='cheap'"):
+    with pytest.raises(DataError, match=r"1 row has a non-numeric 'price': row 2: sku='b', price='cheap'"):
         _catalog(frame=frame)
     frame["price"] = [1.0, np.inf, 2.0]
     with pytest.raises(DataError, match="1 row has an infinite value in numeric column 'price'"):
@@ -122,7 +123,7 @@ def test_catalog_missing_categorical_and_bad_text():
         _catalog(frame=frame)
     frame = _catalog_frame()
     frame.loc[2, "name"] = np.nan
-    with pytest.raises(DataError, match="1 row has a non-string text in 'name': row 2"):
+    with pytest.raises(DataError, match="1 row has a non-string text in 'name': row 3"):
         _catalog(frame=frame)
 
 
@@ -131,7 +132,7 @@ def test_catalog_missing_image_file(tmp_path):
     frame = pd.DataFrame({"item": ["a", "b"], "img": ["a.png", "b.png"]})
     cat = Catalog.from_frame(frame.iloc[:1], image="img", image_root=tmp_path)
     assert cat.image_path(0) == tmp_path / "a.png"
-    with pytest.raises(DataError, match=r"1 row points to a missing image file in 'img': row 1: item='b', img='b.png'"):
+    with pytest.raises(DataError, match=r"1 row points to a missing image file in 'img': row 2: item='b', img='b.png'"):
         Catalog.from_frame(frame, image="img", image_root=tmp_path)
 
 
@@ -140,15 +141,15 @@ def test_many_bad_rows_show_first_five_and_count():
     with pytest.raises(DataError) as err:
         Catalog.from_frame(frame, numeric=["x"])
     msg = str(err.value)
-    assert msg.startswith("catalog: 12 rows have NaN")
-    assert re.findall(r"row (\d+):", msg) == ["0", "1", "2", "3", "4"]
+    assert msg.startswith("catalog: 12 rows have a missing or NaN value")
+    assert re.findall(r"row (\d+):", msg) == ["1", "2", "3", "4", "5"]
     assert msg.endswith("(and 7 more)")
 
 
 def test_describe_rows_verb_agreement():
     frame = pd.DataFrame({"a": [1, 2]})
-    assert describe_rows(frame, [True, False], "have no id") == "1 row has no id: row 0: a=1"
-    assert describe_rows(frame, [True, False], "repeat a pair") == "1 row repeats a pair: row 0: a=1"
+    assert describe_rows(frame, [True, False], "have no id") == "1 row has no id: row 1: a=1"
+    assert describe_rows(frame, [True, False], "repeat a pair") == "1 row repeats a pair: row 1: a=1"
     assert describe_rows(frame, [True, True], "have no id").startswith("2 rows have no id")
 
 
@@ -189,22 +190,22 @@ def test_interactions_unknown_items_named():
 def test_interactions_missing_ids():
     events = _events()
     events.loc[0, "uid"] = None
-    with pytest.raises(DataError, match="1 row has no user id: row 0"):
+    with pytest.raises(DataError, match="1 row has no user id: row 1"):
         Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts")
     events = _events()
     events.loc[1, "sku"] = np.nan
-    with pytest.raises(DataError, match="1 row has no item id: row 1"):
+    with pytest.raises(DataError, match="1 row has no item id: row 2"):
         Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts")
 
 
 def test_interactions_bad_timestamps():
     events = _events().astype({"ts": object})
     events.loc[2, "ts"] = "yesterday"
-    with pytest.raises(DataError, match=r"1 row has a timestamp that is neither a number nor a date in 'ts': row 2: uid='u2', sku='a', ts='yesterday'"):
+    with pytest.raises(DataError, match=r"1 row has a timestamp that is neither a number nor a date in 'ts': row 3: uid='u2', sku='a', ts='yesterday'"):
         Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts")
     events = _events().astype({"ts": float})
     events.loc[[0, 3], "ts"] = np.nan
-    with pytest.raises(DataError, match=r"2 rows have no timestamp in 'ts': row 0.*row 3"):
+    with pytest.raises(DataError, match=r"2 rows have no timestamp in 'ts': row 1.*row 4"):
         Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts")
     events.loc[[0, 3], "ts"] = np.inf
     with pytest.raises(DataError, match=r"2 rows have an infinite timestamp"):
@@ -214,7 +215,7 @@ def test_interactions_bad_timestamps():
 def test_interactions_bad_weights():
     events = _events().astype({"stars": object})
     events.loc[1, "stars"] = "five"
-    with pytest.raises(DataError, match="1 row has a missing or non-numeric weight in 'stars': row 1"):
+    with pytest.raises(DataError, match="1 row has a missing or non-numeric weight in 'stars': row 2"):
         Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts", weight_col="stars")
 
 

@@ -55,7 +55,7 @@ def _cmd_export(args: argparse.Namespace) -> int:
 
 def _cmd_recommend(args: argparse.Namespace) -> int:
     from xrec.errors import ConfigError
-    from xrec.experiment import runtime_for_blend_file
+    from xrec.runtime import runtime_for_blend_file
 
     if args.k < 1:  # checked before the refit, which can take a while
         raise ConfigError(f"-k: must be at least 1, got {args.k}")

@@ -8,7 +8,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from xrec.data._report import raise_if_any
+from xrec.data._columns import column_name
+from xrec.data._report import raise_if_any, unstorable_text_mask
 from xrec.data.catalog import ITEM, Catalog
 from xrec.errors import DataError
 
@@ -61,8 +62,13 @@ class Interactions:
         Raises
         ------
         DataError
-            On empty input, missing columns, missing ids, non-numeric or NaN timestamps,
-            non-numeric or NaN weights, duplicates (with ``on_duplicate="error"``) or unknown items.
+            On empty input, missing columns, missing ids, ids that cannot be stored as text
+            (``bytes``, lone surrogates), timestamps that are missing, infinite, neither a number
+            nor a date, or a date pandas cannot represent, weights that are missing, non-numeric
+            or not finite as float32 (the dtype they are stored in), duplicates (with
+            ``on_duplicate="error"``) or unknown items. Messages name the rows, numbered from 1.
+        ConfigError
+            A column name is not a non-empty string.
         """
         if not isinstance(frame, pd.DataFrame):
             raise DataError(f"interactions must be a pandas DataFrame, got {type(frame).__name__}")
@@ -70,28 +76,40 @@ class Interactions:
             raise DataError(f"on_duplicate must be one of {_DUPLICATE_RULES}, got {on_duplicate!r}")
         if frame.empty:
             raise DataError("interactions are empty: at least one row is needed")
+        user_col, item_col, time_col = (column_name(v, k) for k, v in (("user_col", user_col), ("item_col", item_col), ("time_col", time_col)))
+        weight_col = column_name(weight_col, "weight_col", optional=True)
         needed = [user_col, item_col, time_col] + ([weight_col] if weight_col else [])
         missing = [c for c in needed if c not in frame.columns]
         if missing:
             raise DataError(f"interactions lack columns {missing}; they have {list(frame.columns)}")
+        repeated = sorted({c for c in needed if list(frame.columns).count(c) > 1 or needed.count(c) > 1})
+        if repeated:
+            raise DataError(f"interactions: columns {repeated} are named twice (in the frame or in the column mapping)")
         raw = frame.reset_index(drop=True)
-        raise_if_any(raw, raw[user_col].isna(), "have no user id", [user_col, item_col], "interactions")
-        raise_if_any(raw, raw[item_col].isna(), "have no item id", [user_col, item_col], "interactions")
-        times = _to_seconds(raw[time_col])
+        for col, what in ((user_col, "user id"), (item_col, "item id")):
+            raise_if_any(raw, raw[col].isna(), f"have no {what}", [user_col, item_col], "interactions")
+            raise_if_any(raw, unstorable_text_mask(raw[col]), f"have a {what} that is not text (bytes, or a lone surrogate)", [col], "interactions")
+        times, out_of_range = _to_seconds(raw[time_col])
+        raise_if_any(raw, out_of_range, f"have a date in {time_col!r} outside the range pandas can represent", needed, "interactions")
         raise_if_any(raw, np.isnan(times) & raw[time_col].notna().to_numpy(), f"have a timestamp that is neither a number nor a date in {time_col!r}", needed, "interactions")
         raise_if_any(raw, np.isnan(times), f"have no timestamp in {time_col!r}", needed, "interactions")
         raise_if_any(raw, np.isinf(times), f"have an infinite timestamp in {time_col!r}", needed, "interactions")
         if weight_col:
-            weights = pd.to_numeric(raw[weight_col], errors="coerce").to_numpy(dtype="float64")
-            raise_if_any(raw, ~np.isfinite(weights), f"have a missing or non-numeric weight in {weight_col!r}", needed, "interactions")
+            numbers = _to_numbers(raw[weight_col])
+            raise_if_any(raw, np.isnan(numbers), f"have a missing or non-numeric weight in {weight_col!r}", needed, "interactions")
+            # Checked in the dtype the weights are stored in: 1e39 is finite as float64, inf as float32.
+            with np.errstate(over="ignore"):
+                weights = numbers.astype("float32")
+            raise_if_any(raw, ~np.isfinite(weights), f"have a weight in {weight_col!r} that is not a finite float32 (|w| < 3.4e38)", needed, "interactions")
+            del numbers
         else:
-            weights = np.ones(len(raw))
+            weights = np.ones(len(raw), dtype="float32")
         out = pd.DataFrame(
             {
                 USER: raw[user_col].astype(str).to_numpy(),
                 ITEM: raw[item_col].astype(str).to_numpy(),
                 TIME: times,
-                WEIGHT: weights.astype("float32"),
+                WEIGHT: weights,
             }
         )
         if catalog is not None:
@@ -128,18 +146,74 @@ class Interactions:
         return h.hexdigest()[:16]
 
 
-def _to_seconds(col: pd.Series) -> np.ndarray:
-    """Timestamps as float seconds: numbers pass through; datetimes and date strings become epoch seconds."""
+def _to_numbers(col: pd.Series) -> np.ndarray:
+    """``col`` as float64; anything that is not a number (text, lists, bools in text) becomes NaN."""
+    if pd.api.types.is_bool_dtype(col):
+        return col.to_numpy(dtype="float64", na_value=np.nan)
+    try:
+        values = pd.to_numeric(col, errors="coerce")
+    except (TypeError, ValueError):  # cells pandas cannot even try (lists, dicts): judged one by one
+        values = pd.Series([_number_or_nan(v) for v in col], dtype="float64")
+    return values.to_numpy(dtype="float64", na_value=np.nan)
+
+
+def _number_or_nan(value) -> float:
+    try:
+        return float(pd.to_numeric(value))
+    except (TypeError, ValueError, OverflowError):
+        return np.nan
+
+
+def _epoch_seconds(dates: pd.Series) -> np.ndarray:
+    """Datetime values (any unit, with or without a time zone) as float epoch seconds; NaT -> NaN.
+
+    Read from the stored integers, so no arithmetic leaves the column's own unit (subtracting a
+    nanosecond epoch would overflow for dates outside 1677-2262).
+    """
+    array = dates.array
+    ticks = np.asarray(array.asi8, dtype="float64")
+    per_second = float(np.timedelta64(1, "s") / np.timedelta64(1, array.unit))
+    seconds = ticks / per_second
+    seconds[np.asarray(dates.isna())] = np.nan
+    return seconds
+
+
+def _to_seconds(col: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """Timestamps as float seconds, and a mask of date text outside the range pandas can represent.
+
+    Numbers pass through; datetimes and date strings become epoch seconds (date strings
+    without a zone are read as UTC). Unreadable values become NaN.
+    """
+    out_of_range = np.zeros(len(col), dtype=bool)
     if pd.api.types.is_datetime64_any_dtype(col):
-        # Subtracting the epoch works whatever the stored unit (pandas 3 defaults to us, not ns)
-        # and whether or not the column carries a time zone; NaT becomes NaN.
-        epoch = pd.Timestamp(0, tz=getattr(col.dt, "tz", None))
-        return ((col - epoch) / pd.Timedelta(1, "s")).to_numpy(dtype="float64", na_value=np.nan)
-    values = pd.to_numeric(col, errors="coerce").to_numpy(dtype="float64", copy=True)
+        return _epoch_seconds(col), out_of_range
+    values = _to_numbers(col).copy()
     unparsed = np.isnan(values) & col.notna().to_numpy()
     if unparsed.any() and (col.dtype == object or pd.api.types.is_string_dtype(col)):
         # Date strings such as "2024-05-01 12:00" (read as UTC when they carry no zone).
-        dates = pd.to_datetime(col[unparsed], errors="coerce", utc=True, format="mixed")
-        seconds = ((dates - pd.Timestamp(0, tz="UTC")) / pd.Timedelta(1, "s")).to_numpy(dtype="float64", na_value=np.nan)
+        seconds, too_far = _parse_dates(col[unparsed])
         values[unparsed] = seconds
-    return values
+        out_of_range[unparsed] = too_far
+    return values, out_of_range
+
+
+def _parse_dates(col: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """Epoch seconds of date text (NaN where unreadable) and a mask of dates out of pandas' range."""
+    try:
+        return _epoch_seconds(pd.to_datetime(col, errors="coerce", utc=True, format="mixed")), np.zeros(len(col), dtype=bool)
+    except (OverflowError, ValueError, TypeError):  # pandas' OutOfBoundsDatetime is a ValueError
+        pass
+    # One value is out of range or unreadable in a way pandas does not coerce: judge each
+    # distinct value alone, so the rows at fault can be named.
+    seconds = np.full(len(col), np.nan)
+    too_far = np.zeros(len(col), dtype=bool)
+    codes, uniques = pd.factorize(col)
+    for code, value in enumerate(uniques):
+        rows = codes == code
+        try:
+            seconds[rows] = _epoch_seconds(pd.to_datetime(pd.Series([value], dtype=object), errors="coerce", utc=True, format="mixed"))[0]
+        except (OverflowError, ValueError):
+            too_far[rows] = True
+        except TypeError:
+            pass  # not date text at all: left NaN, reported as neither a number nor a date
+    return seconds, too_far
