@@ -12,7 +12,7 @@ import pytest
 
 from xrec.data import Catalog, Dataset, Interactions
 from xrec.data._report import describe_rows
-from xrec.errors import DataError
+from xrec.errors import ConfigError, DataError
 
 
 def _catalog_frame() -> pd.DataFrame:
@@ -300,3 +300,84 @@ def test_date_string_timestamps_become_epoch_seconds():
     assert got["u1"] == dt.datetime(2024, 5, 1, tzinfo=dt.timezone.utc).timestamp()
     assert got["u2"] == dt.datetime(2024, 5, 1, 10, tzinfo=dt.timezone.utc).timestamp()
     assert got["u3"] == 1714521600.0
+
+
+# --- defects found by a hostile pass over the inputs (each raised a raw exception or passed) ---
+
+
+def test_weight_finite_in_float64_but_not_in_float32_is_refused():
+    # Weights are stored as float32; 1e39 used to pass (checked in float64) and become inf.
+    # Reference: numpy.finfo(np.float32).max (IEEE 754 binary32, ~3.4028235e38).
+    assert float(np.finfo(np.float32).max) < 1e39
+    events = _events().astype({"stars": float})
+    events.loc[2, "stars"] = 1e39
+    with pytest.raises(DataError, match=r"1 row has a weight in 'stars' that is not a finite float32.*row 3: .*stars=1e\+39"):
+        Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts", weight_col="stars")
+    largest = float(np.finfo(np.float32).max)
+    events.loc[2, "stars"] = largest
+    kept = Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts", weight_col="stars")
+    assert kept.frame["weight"].max() == np.float32(largest)
+
+
+def test_summed_weights_that_overflow_float32_are_refused():
+    frame = _dupes().assign(weight=[3e38, 3e38, 1.0, 1.0])
+    with pytest.raises(DataError, match="summed weights that are not a finite float32"):
+        Interactions.from_frame(frame, weight_col="weight", on_duplicate="sum")
+
+
+def test_dates_outside_the_nanosecond_range_are_read_or_named():
+    # "1000-01-01" used to raise pandas' OutOfBoundsDatetime (the epoch was subtracted in
+    # nanoseconds). Reference: the standard library's datetime for the expected seconds.
+    frame = pd.DataFrame({"user": ["u", "u", "u"], "item": ["a", "b", "c"],
+                          "timestamp": ["1000-01-01", "2020-01-01", "3000-06-01T12:00:00Z"]})
+    got = Interactions.from_frame(frame).frame.sort_values("item")["timestamp"].tolist()
+    utc = dt.timezone.utc
+    assert got == [dt.datetime(1000, 1, 1, tzinfo=utc).timestamp(), dt.datetime(2020, 1, 1, tzinfo=utc).timestamp(),
+                   dt.datetime(3000, 6, 1, 12, tzinfo=utc).timestamp()]
+    stamps = pd.Series(pd.to_datetime(["1000-01-01", "3000-01-01"]).as_unit("s"))
+    got = Interactions.from_frame(pd.DataFrame({"user": ["u", "u"], "item": ["a", "b"], "timestamp": stamps})).frame
+    assert got["timestamp"].tolist() == [dt.datetime(1000, 1, 1, tzinfo=utc).timestamp(), dt.datetime(3000, 1, 1, tzinfo=utc).timestamp()]
+    # A year pandas cannot hold at all is reported with its row, as the file holds it.
+    frame.loc[1, "timestamp"] = "10000-01-01"
+    with pytest.raises(DataError, match=r"1 row has a timestamp that is neither a number nor a date.*row 2: .*timestamp='10000-01-01'"):
+        Interactions.from_frame(frame)
+
+
+def test_a_date_pandas_refuses_to_convert_is_named_not_raised(monkeypatch):
+    # Whatever pandas' own range is, a date it raises OutOfBoundsDatetime for becomes a DataError naming the row.
+    real = pd.to_datetime
+
+    def refusing(values, *args, **kwargs):
+        if any(str(v).startswith("0999") for v in list(values)):
+            raise pd.errors.OutOfBoundsDatetime("Out of bounds nanosecond timestamp")
+        return real(values, *args, **kwargs)
+
+    monkeypatch.setattr(pd, "to_datetime", refusing)
+    frame = pd.DataFrame({"user": ["u", "u"], "item": ["a", "b"], "timestamp": ["2020-01-01", "0999-01-01"]})
+    with pytest.raises(DataError, match=r"1 row has a date in 'timestamp' outside the range pandas can represent: row 2: .*'0999-01-01'"):
+        Interactions.from_frame(frame)
+
+
+@pytest.mark.parametrize("bad", ["\ud800", b"u1"])
+@pytest.mark.parametrize("column", ["uid", "sku"])
+def test_ids_that_cannot_be_text_name_the_row(bad, column):
+    # Lone surrogates used to pass and then break the fingerprint (UnicodeEncodeError); bytes
+    # were silently turned into the text "b'u1'".
+    events = _events().astype({column: object})
+    events.loc[1, column] = bad
+    what = "user" if column == "uid" else "item"
+    with pytest.raises(DataError, match=rf"1 row has a {what} id that is not text.*row 2: {column}="):
+        Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts")
+    items = _catalog_frame().astype({"sku": object, "name": object})
+    items.loc[2, "sku" if column == "sku" else "name"] = bad
+    with pytest.raises(DataError, match=r"1 row has an? (item id|value in 'name') that is not text.*row 3"):
+        _catalog(frame=items)
+
+
+def test_one_column_name_given_as_a_string_is_one_column():
+    # categorical="brand" used to be read as the columns ['b', 'r', 'a', 'n', 'd'].
+    frame = _catalog_frame()
+    cat = Catalog.from_frame(frame, item_col="sku", categorical="kind", text="name")
+    assert cat.schema.categorical == ("kind",) and cat.schema.text == ("name",)
+    with pytest.raises(ConfigError, match=r"categorical: a column name or a list of column names, got \['kind', 3\]"):
+        Catalog.from_frame(frame, item_col="sku", categorical=["kind", 3])

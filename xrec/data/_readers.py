@@ -84,28 +84,32 @@ def column_names_in(path: Path, fmt: str, *, show_details: bool = True) -> list[
     return list(_csv(path, fmt, show_details, nrows=0).columns)
 
 
-def read_frame(path: Path, *, columns: Sequence[str] | None, text_columns: Sequence[str], what: str,
-               show_details: bool = True) -> pd.DataFrame:
-    """The file's rows, only ``columns`` (all when ``None``), with ``text_columns`` read as text.
+def checked_format(path: Path, what: str) -> str:
+    """The format of a file that exists and is a regular file; :class:`DataError` saying what it is otherwise."""
+    problem = path_problem(path)
+    if problem:
+        raise DataError(f"{what}: {problem}")
+    return file_format(path)
+
+
+def read_frame(path: Path, fmt: str, *, columns: Sequence[str] | None, required: Sequence[str], text_columns: Sequence[str],
+               what: str, show_details: bool = True) -> pd.DataFrame:
+    """The rows of a file in format ``fmt`` (see :func:`checked_format`), only ``columns`` (all when
+    ``None``), with ``text_columns`` read as text.
 
     Raises
     ------
     DataError
-        The path is not a regular file, its type is unknown, a column asked for is absent
-        (the message lists the file's columns), or the file cannot be parsed. With
-        ``show_details=False`` the parser's own message (which may quote the file's bytes)
-        is left out.
+        A ``required`` column is absent (the message lists the file's columns), or the file
+        cannot be parsed. With ``show_details=False`` neither the file's columns nor the
+        parser's own message (which may quote the file's bytes) are shown.
     """
-    problem = path_problem(path)
-    if problem:
-        raise DataError(f"{what}: {problem}")
-    fmt = file_format(path)
     have = column_names_in(path, fmt, show_details=show_details)
+    absent = [c for c in dict.fromkeys(required) if c not in have]
+    if absent:
+        listed = f"; it has {have}" if show_details else ""
+        raise DataError(f"{what}: {path} lacks columns {absent}{listed}")
     if columns is not None:
-        absent = [c for c in columns if c not in have]
-        if absent:
-            listed = f"; it has {have}" if show_details else ""
-            raise DataError(f"{what}: {path} lacks columns {absent}{listed}")
         columns = list(dict.fromkeys(columns))
     if fmt == "parquet":
         return _parquet(path, columns, text_columns, show_details)
@@ -132,8 +136,12 @@ def _parquet(path: Path, columns: list[str] | None, text_columns: Sequence[str],
             if name in table.column_names:
                 position = table.column_names.index(name)
                 table = table.set_column(position, name, _as_text(table.column(name)))
-        # One conversion; each Arrow column is released as soon as it is converted.
-        return table.to_pandas(self_destruct=True, split_blocks=True)
+        # One conversion; each Arrow column is released as soon as it is converted, and the
+        # reader's buffers go back to the system rather than staying in Arrow's pool.
+        frame = table.to_pandas(self_destruct=True, split_blocks=True)
+        del table
+        pa.default_memory_pool().release_unused()
+        return frame
     except (pa.ArrowException, OSError, ValueError) as exc:
         raise _unreadable(path, "parquet", exc, show_details) from None
 

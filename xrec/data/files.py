@@ -21,8 +21,8 @@ import os
 from collections.abc import Sequence
 from pathlib import Path
 
-from xrec.data._columns import column_name
-from xrec.data._readers import FORMATS, KNOWN_SUFFIXES, MISSING_MARKERS, file_format, read_frame
+from xrec.data._columns import column_name, column_names
+from xrec.data._readers import FORMATS, KNOWN_SUFFIXES, MISSING_MARKERS, checked_format, read_frame
 from xrec.data._report import reporting
 from xrec.data.catalog import Catalog
 from xrec.data.interactions import Interactions
@@ -67,9 +67,14 @@ def read_catalog(
         be parsed, or the rows break a check (rows named, numbered from 1).
     """
     path = Path(path)
-    fmt = file_format(path)
+    fmt = checked_format(path, "catalog")
     with reporting(missing=MISSING_MARKERS[fmt], hide_values=not show_values):
-        frame = read_frame(path, columns=None, text_columns=[column_name(item_col, "item_col")], what="catalog",
+        declared = [column_name(item_col, "item_col")]
+        for key, value in (("categorical", categorical), ("multilabel", multilabel), ("numeric", numeric), ("text", text)):
+            declared += column_names(value, key)
+        if column_name(image, "image", optional=True) is not None:
+            declared.append(image)
+        frame = read_frame(path, fmt, columns=None, required=declared, text_columns=[item_col], what="catalog",
                            show_details=show_values)
         try:
             return Catalog.from_frame(
@@ -112,12 +117,12 @@ def read_interactions(
         As :func:`read_catalog`.
     """
     path = Path(path)
-    fmt = file_format(path)
+    fmt = checked_format(path, "interactions")
     names = [column_name(user_col, "user_col"), column_name(item_col, "item_col"), column_name(time_col, "time_col")]
     if column_name(weight_col, "weight_col", optional=True) is not None:
         names.append(weight_col)
     with reporting(missing=MISSING_MARKERS[fmt], hide_values=not show_values):
-        frame = read_frame(path, columns=names, text_columns=[user_col, item_col], what="interactions",
+        frame = read_frame(path, fmt, columns=names, required=names, text_columns=[user_col, item_col], what="interactions",
                            show_details=show_values)
         try:
             return Interactions.from_frame(

@@ -104,27 +104,42 @@ class Interactions:
             del numbers
         else:
             weights = np.ones(len(raw), dtype="float32")
+        # Ids stay pandas text columns (Arrow-backed): no Python object per row.
         out = pd.DataFrame(
             {
-                USER: raw[user_col].astype(str).to_numpy(),
-                ITEM: raw[item_col].astype(str).to_numpy(),
+                USER: raw[user_col].astype(str),
+                ITEM: raw[item_col].astype(str),
                 TIME: times,
                 WEIGHT: weights,
             }
         )
+        # Each id column is factorized once, in sorted order; the catalog check, the duplicate
+        # check and the final ordering all work on these integer codes.
+        user_codes, _ = _sorted_codes(out[USER])
+        item_codes, items = _sorted_codes(out[ITEM])
         if catalog is not None:
-            known = out[ITEM].isin(set(catalog.item_ids))
+            known = np.asarray(items.isin(catalog.item_ids))[item_codes]
             raise_if_any(out, ~known, "name an item that is not in the catalog", [USER, ITEM], "interactions")
-        dup = out.duplicated([USER, ITEM], keep=False)
-        if dup.any():
+        pairs = user_codes.astype(np.int64) * len(items) + item_codes
+        pairs.sort()  # a sorted copy finds repeats with less memory than hashing every pair
+        repeated = bool((pairs[1:] == pairs[:-1]).any())
+        del pairs
+        if repeated:
+            dup = out.duplicated([USER, ITEM], keep=False).to_numpy()
             if on_duplicate == "error":
                 raise_if_any(out, dup, "repeat a (user, item) pair (pass on_duplicate='last' or 'sum' to merge)", [USER, ITEM, TIME], "interactions")
             out = out.sort_values([USER, ITEM, TIME], kind="stable")
             if on_duplicate == "sum":
-                summed = out.groupby([USER, ITEM], sort=False)[WEIGHT].transform("sum")
-                out = out.assign(**{WEIGHT: summed.astype("float32")})
-            out = out.drop_duplicates([USER, ITEM], keep="last")
-        out = out.sort_values([USER, TIME, ITEM], kind="stable").reset_index(drop=True)
+                summed = out[WEIGHT].astype("float64").groupby([out[USER], out[ITEM]], sort=False).transform("sum")
+                with np.errstate(over="ignore"):
+                    out = out.assign(**{WEIGHT: summed.to_numpy().astype("float32")})
+            out = out.drop_duplicates([USER, ITEM], keep="last").reset_index(drop=True)
+            raise_if_any(out, ~np.isfinite(out[WEIGHT].to_numpy()), "have summed weights that are not a finite float32 (|w| < 3.4e38)", [USER, ITEM], "interactions (after on_duplicate='sum')")
+            user_codes, _ = _sorted_codes(out[USER])
+            item_codes, _ = _sorted_codes(out[ITEM])
+        order = _order(user_codes, out[TIME].to_numpy(), item_codes)
+        del user_codes, item_codes
+        out = out.take(order).reset_index(drop=True)
         return cls(frame=out)
 
     def __len__(self) -> int:
@@ -144,6 +159,37 @@ class Interactions:
         h.update(np.ascontiguousarray(f[TIME].to_numpy(dtype="float64")).tobytes())
         h.update(np.ascontiguousarray(f[WEIGHT].to_numpy(dtype="float32")).tobytes())
         return h.hexdigest()[:16]
+
+
+def _sorted_codes(col: pd.Series) -> tuple[np.ndarray, pd.Index]:
+    """Integer codes of ``col``'s values (no missing ones), numbered in sorted order of the values, and those values.
+
+    Arrow-backed text is coded by Arrow itself (distinct values sorted, then each row looked
+    up), which needs only the int32 codes besides the column; other columns go through
+    ``pandas.factorize``. Both order text by code point.
+    """
+    if isinstance(col.dtype, pd.StringDtype) and col.dtype.storage == "pyarrow":
+        import pyarrow as pa
+        import pyarrow.compute as pc
+
+        values = pa.chunked_array(col.array.__arrow_array__())
+        uniques = pc.unique(values)
+        uniques = uniques.take(pc.sort_indices(uniques))
+        codes = pc.index_in(values, value_set=uniques)
+        return codes.to_numpy().astype(np.int32, copy=False), pd.Index(uniques.to_pylist(), dtype=col.dtype)
+    codes, uniques = pd.factorize(col, sort=True)
+    return codes.astype(np.int32 if len(uniques) < 2**31 else np.int64), uniques
+
+
+def _order(user_codes: np.ndarray, times: np.ndarray, item_codes: np.ndarray) -> np.ndarray:
+    """Row order by user, then time, then item: the same as ``np.lexsort((item_codes, times, user_codes))``.
+
+    Three stable argsorts, least significant key first; about twice as fast as ``np.lexsort``
+    on millions of rows with a float key.
+    """
+    order = np.argsort(item_codes, kind="stable")
+    order = order[np.argsort(times[order], kind="stable")]
+    return order[np.argsort(user_codes[order], kind="stable")]
 
 
 def _to_numbers(col: pd.Series) -> np.ndarray:
@@ -187,7 +233,9 @@ def _to_seconds(col: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     out_of_range = np.zeros(len(col), dtype=bool)
     if pd.api.types.is_datetime64_any_dtype(col):
         return _epoch_seconds(col), out_of_range
-    values = _to_numbers(col).copy()
+    values = _to_numbers(col)
+    if not values.flags.owndata or not values.flags.writeable:
+        values = values.copy()  # a float64 column comes back as a view; date text is written into it below
     unparsed = np.isnan(values) & col.notna().to_numpy()
     if unparsed.any() and (col.dtype == object or pd.api.types.is_string_dtype(col)):
         # Date strings such as "2024-05-01 12:00" (read as UTC when they carry no zone).
