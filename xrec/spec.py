@@ -230,6 +230,8 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
         _check_blend(table, where, sources, learning_allowed=split.get("validation", True))
     for key in ("baseline", "primary"):
         value = evaluate.get(key)
+        if value is not None and not isinstance(value, str):
+            raise ConfigError(f"evaluate.{key}: the name of a source or blend, got {value!r}")
         if value is not None and value not in sources and value not in blends:
             raise ConfigError(f"evaluate.{key}: {value!r} is neither a source nor a blend")
     return ExperimentSpec(

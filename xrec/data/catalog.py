@@ -152,6 +152,11 @@ class Catalog:
         missing = [c for c in declared if c not in frame.columns]
         if missing:
             raise DataError(f"catalog lacks declared columns {missing}; it has {list(frame.columns)}")
+        if item_col != ITEM and ITEM in frame.columns:
+            raise DataError(f"catalog: column {ITEM!r} would clash with the item ids of {item_col!r} (stored as {ITEM!r}); rename or drop it")
+        repeated = sorted({str(c) for c in frame.columns if list(frame.columns).count(c) > 1})
+        if repeated:
+            raise DataError(f"catalog: columns {repeated} appear more than once")
         items = frame.reset_index(drop=True).copy()
         raise_if_any(items, items[item_col].isna(), "have no item id", [item_col], "catalog")
         raise_if_any(items, unstorable_text_mask(items[item_col]), _NOT_TEXT.format("an item id"), [item_col], "catalog")
