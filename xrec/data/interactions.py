@@ -115,7 +115,7 @@ class Interactions:
         )
         # Each id column is factorized once, in sorted order; the catalog check, the duplicate
         # check and the final ordering all work on these integer codes.
-        user_codes, _ = _sorted_codes(out[USER])
+        user_codes, users = _sorted_codes(out[USER])
         item_codes, items = _sorted_codes(out[ITEM])
         if catalog is not None:
             known = np.asarray(items.isin(catalog.item_ids))[item_codes]
@@ -130,16 +130,23 @@ class Interactions:
                 raise_if_any(out, dup, "repeat a (user, item) pair (pass on_duplicate='last' or 'sum' to merge)", [USER, ITEM, TIME], "interactions")
             out = out.sort_values([USER, ITEM, TIME], kind="stable")
             if on_duplicate == "sum":
-                summed = out[WEIGHT].astype("float64").groupby([out[USER], out[ITEM]], sort=False).transform("sum")
-                with np.errstate(over="ignore"):
-                    out = out.assign(**{WEIGHT: summed.to_numpy().astype("float32")})
+                with np.errstate(over="ignore"):  # an overflow to inf is reported below, with its rows
+                    summed = out.groupby([USER, ITEM], sort=False)[WEIGHT].transform("sum")
+                out = out.assign(**{WEIGHT: summed.astype("float32")})
             out = out.drop_duplicates([USER, ITEM], keep="last").reset_index(drop=True)
             raise_if_any(out, ~np.isfinite(out[WEIGHT].to_numpy()), "have summed weights that are not a finite float32 (|w| < 3.4e38)", [USER, ITEM], "interactions (after on_duplicate='sum')")
-            user_codes, _ = _sorted_codes(out[USER])
-            item_codes, _ = _sorted_codes(out[ITEM])
+            user_codes, users = _sorted_codes(out[USER])
+            item_codes, items = _sorted_codes(out[ITEM])
         order = _order(user_codes, out[TIME].to_numpy(), item_codes)
-        del user_codes, item_codes
-        out = out.take(order).reset_index(drop=True)
+        _release_arrow_memory()  # the coding's scratch buffers, before the sorted copy is made
+        # The sorted id columns are taken from the few distinct ids by their codes: taking from
+        # the whole (chunked) column would first join its chunks into one more copy.
+        out = pd.DataFrame({
+            USER: users.take(user_codes[order]).array,
+            ITEM: items.take(item_codes[order]).array,
+            TIME: out[TIME].to_numpy()[order],
+            WEIGHT: out[WEIGHT].to_numpy()[order],
+        })
         return cls(frame=out)
 
     def __len__(self) -> int:
@@ -159,6 +166,15 @@ class Interactions:
         h.update(np.ascontiguousarray(f[TIME].to_numpy(dtype="float64")).tobytes())
         h.update(np.ascontiguousarray(f[WEIGHT].to_numpy(dtype="float32")).tobytes())
         return h.hexdigest()[:16]
+
+
+def _release_arrow_memory() -> None:
+    """Hand memory that Arrow's allocator keeps for reuse back to the system (peak memory of large loads)."""
+    try:
+        import pyarrow as pa
+    except ImportError:
+        return
+    pa.default_memory_pool().release_unused()
 
 
 def _sorted_codes(col: pd.Series) -> tuple[np.ndarray, pd.Index]:
