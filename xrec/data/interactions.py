@@ -111,8 +111,10 @@ class Interactions:
                 ITEM: raw[item_col].astype(str),
                 TIME: times,
                 WEIGHT: weights,
-            }
+            },
+            copy=False,
         )
+        del times, weights  # held by ``out`` alone from here
         # Each id column is factorized once, in sorted order; the catalog check, the duplicate
         # check and the final ordering all work on these integer codes.
         user_codes, users = _sorted_codes(out[USER])
@@ -141,12 +143,15 @@ class Interactions:
         _release_arrow_memory()  # the coding's scratch buffers, before the sorted copy is made
         # The sorted id columns are taken from the few distinct ids by their codes: taking from
         # the whole (chunked) column would first join its chunks into one more copy.
-        out = pd.DataFrame({
-            USER: users.take(user_codes[order]).array,
-            ITEM: items.take(item_codes[order]).array,
-            TIME: out[TIME].to_numpy()[order],
-            WEIGHT: out[WEIGHT].to_numpy()[order],
-        })
+        # Built one column at a time, each unsorted column dropped as soon as its sorted copy exists.
+        sorted_columns = {}
+        for name, codes, values in ((USER, user_codes, users), (ITEM, item_codes, items)):
+            sorted_columns[name] = values.take(codes[order]).array
+        del user_codes, item_codes
+        for name in (TIME, WEIGHT):
+            sorted_columns[name] = out[name].to_numpy()[order]
+            out = out.drop(columns=name)
+        out = pd.DataFrame(sorted_columns, copy=False)
         return cls(frame=out)
 
     def __len__(self) -> int:
