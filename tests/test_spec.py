@@ -180,3 +180,12 @@ def test_only_fits_and_evaluates_one_scorer_and_what_it_blends(tmp_path, monkeyp
     assert set(run_experiment(spec, only="kind").scorecards) == {"kind"} and fitted == ["kind"]
     with pytest.raises(ConfigError, match="no source or blend named 'mixx'"):
         run_experiment(spec, only="mixx")
+
+
+def test_a_spec_path_that_is_a_folder_or_device_is_said_for_what_it_is(tmp_path):
+    # Used to read "no spec file ... and no built-in spec of that name" for both.
+    with pytest.raises(ConfigError, match="is a folder, not a spec file") as err:
+        load_spec(tmp_path)
+    assert "no spec file" not in str(err.value)
+    with pytest.raises(ConfigError, match="/dev/null is a character device"):
+        load_spec("/dev/null")

@@ -73,6 +73,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from xrec.data._readers import path_problem
 from xrec.data.location import DataLocation
 from xrec.errors import ConfigError
 
@@ -260,6 +261,8 @@ def load_spec(path_or_name: str | Path) -> ExperimentSpec:
         builtin = BUILTIN_DIR / f"{path_or_name}.toml"
         if builtin.is_file():
             path = builtin
+        elif path.exists():  # a folder, a device such as /dev/null, ...: say what it is
+            raise ConfigError(f"spec: {path_problem(path, 'spec file')}")
         else:
             raise ConfigError(f"no spec file {str(path_or_name)!r} and no built-in spec of that name; built-in: {builtin_specs()}")
     try:

@@ -43,8 +43,8 @@ def file_format(path: Path) -> str:
     raise DataError(f"{path}: unknown file type {path.suffix!r}; known extensions: {', '.join(KNOWN_SUFFIXES)}")
 
 
-def path_problem(path: Path) -> str | None:
-    """Why ``path`` cannot be read as a data file (``None`` when it is a regular file).
+def path_problem(path: Path, what: str = "data file") -> str | None:
+    """Why ``path`` cannot be read as a ``what`` (``None`` when it is a regular file).
 
     Says what the path is: missing, a folder, a device such as ``/dev/null``, a pipe, ...
     """
@@ -68,7 +68,7 @@ def path_problem(path: Path) -> str | None:
         (stat.S_ISSOCK, "a socket"),
     )
     kind = next((name for test, name in kinds if test(mode)), "not a regular file")
-    return f"{path} is {kind}, not a data file"
+    return f"{path} is {kind}, not a {what}"
 
 
 def column_names_in(path: Path, fmt: str, *, show_details: bool = True) -> list[str]:
