@@ -381,3 +381,17 @@ def test_one_column_name_given_as_a_string_is_one_column():
     assert cat.schema.categorical == ("kind",) and cat.schema.text == ("name",)
     with pytest.raises(ConfigError, match=r"categorical: a column name or a list of column names, got \['kind', 3\]"):
         Catalog.from_frame(frame, item_col="sku", categorical=["kind", 3])
+
+
+def test_row_order_equals_numpys_lexsort_packed_or_not():
+    # Reference: numpy.lexsort (last key first) on (item, time, user); xrec packs the three into
+    # one int64 key when they fit, else sorts three times.
+    from xrec.data.interactions import _order
+
+    rng = np.random.default_rng(11)
+    users = rng.integers(0, 50, 3000).astype(np.int32)
+    times = rng.integers(0, 40, 3000).astype(float)
+    items = rng.permutation(3000).astype(np.int32)  # distinct, so (user, item) pairs are distinct
+    np.testing.assert_array_equal(_order(users, times, items), np.lexsort((items, times, users)))
+    wide = items.astype(np.int64) * 2**45  # too wide to pack into 63 bits
+    np.testing.assert_array_equal(_order(users, times, wide), np.lexsort((wide, times, users)))

@@ -203,13 +203,28 @@ def _sorted_codes(col: pd.Series) -> tuple[np.ndarray, pd.Index]:
 
 
 def _order(user_codes: np.ndarray, times: np.ndarray, item_codes: np.ndarray) -> np.ndarray:
-    """Row order by user, then time, then item: the same as ``np.lexsort((item_codes, times, user_codes))``.
+    """Row order by user, then time, then item: the same as ``np.lexsort((item_codes, times, user_codes))``
+    for rows whose (user, item) pairs are distinct.
 
-    Three stable argsorts, least significant key first; about twice as fast as ``np.lexsort``
-    on millions of rows with a float key.
+    When (user code, time rank, item code) fits in 63 bits it is packed into one int64 key per
+    row; the keys are distinct (so are the pairs), so numpy's fast unstable sort gives the one
+    order. Otherwise three stable argsorts, least significant key first. Both are several times
+    faster than ``np.lexsort`` on millions of rows with a float key.
     """
+    if len(times) == 0:
+        return np.zeros(0, dtype=np.int64)
+    by_time = np.argsort(times)
+    ordered = times[by_time]
+    time_ranks = np.empty(len(times), dtype=np.int64)
+    time_ranks[by_time] = np.concatenate(([0], np.cumsum(ordered[1:] != ordered[:-1])))
+    del by_time, ordered
+    sizes = [int(codes.max()) + 1 for codes in (user_codes, time_ranks, item_codes)]
+    if sum(size.bit_length() for size in sizes) <= 63:
+        key = (user_codes.astype(np.int64) * sizes[1] + time_ranks) * sizes[2] + item_codes
+        del time_ranks
+        return np.argsort(key)
     order = np.argsort(item_codes, kind="stable")
-    order = order[np.argsort(times[order], kind="stable")]
+    order = order[np.argsort(time_ranks[order], kind="stable")]
     return order[np.argsort(user_codes[order], kind="stable")]
 
 
