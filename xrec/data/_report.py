@@ -9,6 +9,7 @@ outside the spec's folder is being checked, no value is shown at all (:func:`rep
 
 from __future__ import annotations
 
+import datetime as dt
 from collections.abc import Iterator
 from contextlib import contextmanager
 from contextvars import ContextVar
@@ -49,7 +50,16 @@ def show_value(value) -> str:
         return str(int(value))
     if isinstance(value, Real):
         return repr(float(value))
-    return repr(value)
+    if isinstance(value, (dt.datetime, dt.date, np.datetime64)):
+        try:
+            return str(value)
+        except (ValueError, OverflowError, NotImplementedError):  # e.g. a pandas Timestamp in year 0
+            year = getattr(value, "year", None)
+            return f"<a date in year {year}>" if year is not None else f"<{type(value).__name__}>"
+    try:
+        return repr(value)
+    except Exception:  # a value whose repr fails must not hide the message about its row
+        return f"<{type(value).__name__}>"
 
 
 def _singular(what: str) -> str:
