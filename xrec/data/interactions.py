@@ -114,45 +114,12 @@ class Interactions:
             },
             copy=False,
         )
-        del times, weights  # held by ``out`` alone from here
-        # Each id column is factorized once, in sorted order; the catalog check, the duplicate
-        # check and the final ordering all work on these integer codes.
-        user_codes, users = _sorted_codes(out[USER])
-        item_codes, items = _sorted_codes(out[ITEM])
-        if catalog is not None:
-            known = np.asarray(items.isin(catalog.item_ids))[item_codes]
-            raise_if_any(out, ~known, "name an item that is not in the catalog", [USER, ITEM], "interactions")
-        pairs = user_codes.astype(np.int64) * len(items) + item_codes
-        pairs.sort()  # a sorted copy finds repeats with less memory than hashing every pair
-        repeated = bool((pairs[1:] == pairs[:-1]).any())
-        del pairs
-        if repeated:
-            dup = out.duplicated([USER, ITEM], keep=False).to_numpy()
-            if on_duplicate == "error":
-                raise_if_any(out, dup, "repeat a (user, item) pair (pass on_duplicate='last' or 'sum' to merge)", [USER, ITEM, TIME], "interactions")
-            out = out.sort_values([USER, ITEM, TIME], kind="stable")
-            if on_duplicate == "sum":
-                with np.errstate(over="ignore"):  # an overflow to inf is reported below, with its rows
-                    summed = out.groupby([USER, ITEM], sort=False)[WEIGHT].transform("sum")
-                out = out.assign(**{WEIGHT: summed.astype("float32")})
-            out = out.drop_duplicates([USER, ITEM], keep="last").reset_index(drop=True)
-            raise_if_any(out, ~np.isfinite(out[WEIGHT].to_numpy()), "have summed weights that are not a finite float32 (|w| < 3.4e38)", [USER, ITEM], "interactions (after on_duplicate='sum')")
-            user_codes, users = _sorted_codes(out[USER])
-            item_codes, items = _sorted_codes(out[ITEM])
-        order = _order(user_codes, out[TIME].to_numpy(), item_codes)
-        _release_arrow_memory()  # the coding's scratch buffers, before the sorted copy is made
-        # The sorted id columns are taken from the few distinct ids by their codes: taking from
-        # the whole (chunked) column would first join its chunks into one more copy.
-        # Built one column at a time, each unsorted column dropped as soon as its sorted copy exists.
-        sorted_columns = {}
-        for name, codes, values in ((USER, user_codes, users), (ITEM, item_codes, items)):
-            sorted_columns[name] = values.take(codes[order]).array
-        del user_codes, item_codes
-        for name in (TIME, WEIGHT):
-            sorted_columns[name] = out[name].to_numpy()[order]
-            out = out.drop(columns=name)
-        out = pd.DataFrame(sorted_columns, copy=False)
-        return cls(frame=out)
+        del times, weights
+        # Handed over in a list so that no local name keeps the unsorted columns alive while
+        # their sorted copies are made.
+        handed = [out]
+        del out
+        return cls(frame=_checked_and_sorted(handed, catalog, on_duplicate))
 
     def __len__(self) -> int:
         return len(self.frame)
@@ -171,6 +138,50 @@ class Interactions:
         h.update(np.ascontiguousarray(f[TIME].to_numpy(dtype="float64")).tobytes())
         h.update(np.ascontiguousarray(f[WEIGHT].to_numpy(dtype="float32")).tobytes())
         return h.hexdigest()[:16]
+
+
+def _checked_and_sorted(handed: list[pd.DataFrame], catalog: Catalog | None, on_duplicate: str) -> pd.DataFrame:
+    """The converted frame (the one item of ``handed``, taken out of it) checked against the
+    catalog and for repeated pairs, merged per ``on_duplicate``, and ordered by user, time and
+    item, as a new frame; the unsorted columns are released as their sorted copies are made."""
+    out = handed.pop()
+    # Each id column is factorized once, in sorted order; the catalog check, the duplicate
+    # check and the final ordering all work on these integer codes.
+    user_codes, users = _sorted_codes(out[USER])
+    item_codes, items = _sorted_codes(out[ITEM])
+    if catalog is not None:
+        known = np.asarray(items.isin(catalog.item_ids))[item_codes]
+        raise_if_any(out, ~known, "name an item that is not in the catalog", [USER, ITEM], "interactions")
+    pairs = user_codes.astype(np.int64) * len(items) + item_codes
+    pairs.sort()  # a sorted copy finds repeats with less memory than hashing every pair
+    repeated = bool((pairs[1:] == pairs[:-1]).any())
+    del pairs
+    if repeated:
+        dup = out.duplicated([USER, ITEM], keep=False).to_numpy()
+        if on_duplicate == "error":
+            raise_if_any(out, dup, "repeat a (user, item) pair (pass on_duplicate='last' or 'sum' to merge)", [USER, ITEM, TIME], "interactions")
+        out = out.sort_values([USER, ITEM, TIME], kind="stable")
+        if on_duplicate == "sum":
+            with np.errstate(over="ignore"):  # an overflow to inf is reported below, with its rows
+                summed = out.groupby([USER, ITEM], sort=False)[WEIGHT].transform("sum")
+            out = out.assign(**{WEIGHT: summed.astype("float32")})
+        out = out.drop_duplicates([USER, ITEM], keep="last").reset_index(drop=True)
+        raise_if_any(out, ~np.isfinite(out[WEIGHT].to_numpy()), "have summed weights that are not a finite float32 (|w| < 3.4e38)", [USER, ITEM], "interactions (after on_duplicate='sum')")
+        user_codes, users = _sorted_codes(out[USER])
+        item_codes, items = _sorted_codes(out[ITEM])
+    order = _order(user_codes, out[TIME].to_numpy(), item_codes)
+    _release_arrow_memory()  # the coding's scratch buffers, before the sorted copy is made
+    # The sorted id columns are taken from the few distinct ids by their codes: taking from
+    # the whole (chunked) column would first join its chunks into one more copy.
+    # Built one column at a time, each unsorted column dropped as soon as its sorted copy exists.
+    sorted_columns = {}
+    for name, codes, values in ((USER, user_codes, users), (ITEM, item_codes, items)):
+        sorted_columns[name] = values.take(codes[order]).array
+    del user_codes, item_codes
+    for name in (TIME, WEIGHT):
+        sorted_columns[name] = out[name].to_numpy()[order]
+        out = out.drop(columns=name)
+    return pd.DataFrame(sorted_columns, copy=False)
 
 
 def _release_arrow_memory() -> None:
