@@ -120,10 +120,7 @@ class DataLocation:
                 if not isinstance(table.get(key), str) or not table[key]:
                     raise ConfigError(f"{where}.{key}: a file path (CSV or Parquet) is required when {where}.dataset = 'files'")
                 settings[key] = table[key]
-            for key in ("item_col", "user_col", "time_col"):
-                if key in table:
-                    settings[key] = column_name(table[key], f"{where}.{key}")
-            for key in ("weight_col", "image"):
+            for key in ("item_col", "user_col", "time_col", "weight_col", "image"):
                 if key in table:
                     settings[key] = column_name(table[key], f"{where}.{key}")
             for key in ("categorical", "multilabel", "numeric", "text"):
