@@ -36,6 +36,11 @@ def reporting(*, missing: str = "<missing>", hide_values: bool = False) -> Itera
         _HIDE_VALUES.reset(hide)
 
 
+def values_hidden() -> bool:
+    """Whether messages may quote nothing from the input (see :func:`reporting`)."""
+    return _HIDE_VALUES.get()
+
+
 def show_value(value) -> str:
     """One cell as the input holds it: text quoted, numbers plain, missing values as the marker."""
     if value is None or value is pd.NA or value is pd.NaT:
@@ -84,7 +89,7 @@ def describe_rows(frame: pd.DataFrame, mask: np.ndarray | pd.Series, what: str, 
     count = int(mask.sum())
     positions = np.flatnonzero(mask)[:_SHOW]
     columns = list(frame.columns) if columns is None else columns
-    if _HIDE_VALUES.get():
+    if values_hidden():
         shown = ", ".join(f"row {p + 1}" for p in positions)
         shown += " (values not shown: the file lies outside the spec's folder)"
     else:
