@@ -395,3 +395,22 @@ def test_row_order_equals_numpys_lexsort_packed_or_not():
     np.testing.assert_array_equal(_order(users, times, items), np.lexsort((items, times, users)))
     wide = items.astype(np.int64) * 2**45  # too wide to pack into 63 bits
     np.testing.assert_array_equal(_order(users, times, wide), np.lexsort((wide, times, users)))
+
+
+@pytest.mark.parametrize("chunk", [1, 3, 1_000_000])
+def test_interactions_fingerprint_is_the_documented_sha256_whatever_the_chunking(monkeypatch, chunk):
+    # Reference: hashlib.sha256 over the documented bytes (ids joined by "\x1f", then float64
+    # times and float32 weights); xrec feeds the ids in chunks to bound memory.
+    import hashlib
+
+    import xrec.data.interactions
+
+    monkeypatch.setattr(xrec.data.interactions, "_HASH_CHUNK", chunk)
+    inter = Interactions.from_frame(_events(), user_col="uid", item_col="sku", time_col="ts", weight_col="stars")
+    f = inter.frame
+    h = hashlib.sha256()
+    for col in ("user", "item"):
+        h.update("\x1f".join(f[col].tolist()).encode())
+    h.update(f["timestamp"].to_numpy("float64").tobytes())
+    h.update(f["weight"].to_numpy("float32").tobytes())
+    assert inter.fingerprint() == h.hexdigest()[:16]
