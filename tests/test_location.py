@@ -182,3 +182,17 @@ def test_csv_and_parquet_specs_read_the_same_data(tmp_path):
     parquet = load_spec(_spec_file(tmp_path / "b", "parquet"))
     assert load_dataset(csv.data).fingerprint() == load_dataset(parquet.data).fingerprint()
     assert not csv.data.same_data(parquet.data)
+
+
+def test_catalog_images_outside_the_spec_folder_are_named_by_row(tmp_path):
+    project = tmp_path / "project"
+    _shop(project)
+    (tmp_path / "elsewhere.png").write_bytes(b"\x89PNG")
+    (project / "inside.png").write_bytes(b"\x89PNG")
+    (project / "linked.png").symlink_to(tmp_path / "elsewhere.png")
+    items = pd.read_csv(project / "items.csv", keep_default_na=False).assign(picture=["inside.png", "../elsewhere.png", "linked.png", "inside.png", "inside.png", "inside.png"])
+    items.to_csv(project / "items.csv", index=False)
+    table = _table(image="picture")
+    with pytest.raises(DataError, match=r"data\.image: 2 rows have an image in 'picture' outside the spec's folder.*row 2: item='s1', picture='\.\./elsewhere\.png'; row 3: item='s2', picture='linked\.png'"):
+        load_dataset(DataLocation.from_table(table, project))
+    assert load_dataset(DataLocation.from_table({**table, "allow_outside": True}, project)).catalog.n_items == 6

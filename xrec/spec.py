@@ -61,8 +61,8 @@ onto xrec's::
     # allow_outside = true           # read data from outside this spec's folder
 
 In CSV files only an empty field is a missing value (``NA``, ``null`` and ``None`` are text).
-Data paths must lie inside the spec file's folder (also after following ``..`` and symbolic
-links) unless ``allow_outside = true``; values from files outside it are never quoted in
+Data paths, and the catalog's image paths, must lie inside the spec file's folder (also after
+following ``..`` and symbolic links) unless ``allow_outside = true``; values from files outside it are never quoted in
 error messages.
 """
 

@@ -26,9 +26,10 @@ The ``[data]`` table
 ``name``
     files: the dataset's label (default: the catalog file's name without extension).
 ``allow_outside``
-    ``true`` lets the paths above lie outside the spec's folder (default ``false``: a path
-    that leads outside, also through ``..`` or a symbolic link, is refused). Files read from
-    outside are never quoted in error messages: rows and columns are named, values are not.
+    ``true`` lets the paths above, and the catalog's image paths, lie outside the spec's folder
+    (default ``false``: a path that leads outside, also through ``..`` or a symbolic link, is
+    refused; images outside are named by row). Files read from outside are never quoted in
+    error messages: rows and columns are named, values are not.
 
 Relative paths are read from the spec file's folder.
 """
@@ -43,7 +44,7 @@ from typing import Any
 
 from xrec.data._columns import column_name, column_names
 from xrec.data._readers import COMPRESSED, path_problem
-from xrec.data._report import reporting
+from xrec.data._report import raise_if_any, reporting
 from xrec.data.dataset import Dataset
 from xrec.errors import ConfigError, DataError
 
@@ -287,6 +288,13 @@ def load_dataset(location: DataLocation, *, progress: bool = False) -> Dataset:
         )
     except DataError as exc:
         raise DataError(f"data.catalog: {exc}") from None
+    if location.image is not None and not location.allow_outside:
+        base = location.base.resolve()
+        outside = [not catalog.image_path(i).resolve().is_relative_to(base) for i in range(catalog.n_items)]
+        raise_if_any(
+            catalog.items, outside, f"have an image in {location.image!r} outside the spec's folder (set data.allow_outside = true to read it)",
+            ["item", location.image], "data.image",
+        )
     try:
         interactions = read_interactions(
             interactions_path, user_col=location.user_col, item_col=location.item_col, time_col=location.time_col,
