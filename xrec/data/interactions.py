@@ -115,7 +115,9 @@ class Interactions:
             },
             copy=False,
         )
-        del times, weights
+        # From here on only the converted columns are needed: the input's own columns are
+        # released (when the caller holds no other reference to them, as read_interactions does not).
+        del times, weights, raw, frame
         # Handed over in a list so that no local name keeps the unsorted columns alive while
         # their sorted copies are made.
         handed = [out]
@@ -183,6 +185,7 @@ def _checked_and_sorted(handed: list[pd.DataFrame], catalog: Catalog | None, on_
     sorted_columns = {}
     for name, codes, values in ((USER, user_codes, users), (ITEM, item_codes, items)):
         sorted_columns[name] = values.take(codes[order]).array
+        out = out.drop(columns=name)
     del user_codes, item_codes
     for name in (TIME, WEIGHT):
         sorted_columns[name] = out[name].to_numpy()[order]
