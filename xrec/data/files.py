@@ -122,13 +122,13 @@ def read_interactions(
     if column_name(weight_col, "weight_col", optional=True) is not None:
         names.append(weight_col)
     with reporting(missing=MISSING_MARKERS[fmt], hide_values=not show_values):
+        handed = [read_frame(path, fmt, columns=names, required=names, text_columns=[user_col, item_col], what="interactions",
+                             show_details=show_values)]
         try:
-            # The frame is passed without a name here, so the file's columns can be released
-            # inside from_frame once they are converted.
+            # Handed over without a name, so the file's columns can be released inside
+            # from_frame once they are converted.
             return Interactions.from_frame(
-                read_frame(path, fmt, columns=names, required=names, text_columns=[user_col, item_col], what="interactions",
-                           show_details=show_values),
-                user_col=user_col, item_col=item_col, time_col=time_col, weight_col=weight_col,
+                handed.pop(), user_col=user_col, item_col=item_col, time_col=time_col, weight_col=weight_col,
                 catalog=catalog, on_duplicate=on_duplicate,
             )
         except DataError as exc:
