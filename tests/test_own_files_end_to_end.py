@@ -1,5 +1,6 @@
-"""End to end from the CLI: a generated catalog, its item vectors (.npy and Parquet) and a
-production ranking file named in a spec; the ranking is the baseline of the comparison."""
+"""End to end from the CLI: a generated catalog and interactions (Parquet), its item vectors
+(.npy and Parquet) and a production ranking file (CSV) named in a spec; the ranking is the
+baseline of the comparison."""
 
 from __future__ import annotations
 
@@ -31,13 +32,14 @@ def _generate(folder: Path) -> Path:
     latent = rng.normal(size=(N_ITEMS, DIM))
     taste = rng.normal(size=(N_USERS, DIM))
     items = [f"p{j:03d}" for j in range(N_ITEMS)]
-    pd.DataFrame({"item": items, "colour": rng.choice(["red", "blue", "green"], N_ITEMS)}).to_csv(folder / "items.csv", index=False)
+    # catalog and interactions as Parquet (pyarrow), the files a team already has
+    pd.DataFrame({"item": items, "colour": rng.choice(["red", "blue", "green"], N_ITEMS)}).to_parquet(folder / "items.parquet")
     rows = []
     for u in range(N_USERS):
         pref = np.exp(taste[u] @ latent.T / 2)
         bought = rng.choice(N_ITEMS, size=int(rng.integers(4, 9)), replace=False, p=pref / pref.sum())
         rows += [{"user": f"c{u}", "item": items[j], "timestamp": 1_700_000_000 + 3600 * (u * 10 + t)} for t, j in enumerate(bought)]
-    pd.DataFrame(rows).to_csv(folder / "events.csv", index=False)
+    pd.DataFrame(rows).to_parquet(folder / "events.parquet")
     # the item vectors a team computed elsewhere: the hidden factors plus noise, in shuffled order
     vectors = (latent + rng.normal(scale=0.3, size=latent.shape)).astype(np.float32)
     order = rng.permutation(N_ITEMS)
@@ -61,8 +63,8 @@ def _generate(folder: Path) -> Path:
 name = "own files"
 [data]
 dataset = "files"
-catalog = "items.csv"
-interactions = "events.csv"
+catalog = "items.parquet"
+interactions = "events.parquet"
 categorical = ["colour"]
 [split]
 rule = "leave_last"
