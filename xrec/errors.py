@@ -17,3 +17,7 @@ class ConfigError(XrecError, ValueError):
 
 class FingerprintMismatch(ConfigError):
     """A blend file was produced on different data than the data it is applied to."""
+
+
+class BundleError(ConfigError):
+    """A bundle folder is incomplete, altered or unreadable; the message names the file."""
