@@ -87,11 +87,12 @@ class FolderWriter:
             _fsync_dir(folder)
         if self.target.exists():
             if _exchange(self.tmp, self.target):
-                shutil.rmtree(self.tmp, ignore_errors=True)  # now holds the previous bundle
+                _discard(self.tmp)  # now holds the previous bundle
             else:
                 aside = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.", suffix=".old", dir=self.target.parent))
                 os.rename(self.target, aside / "bundle")
                 os.rename(self.tmp, self.target)
+                _discard(aside / "bundle")
                 shutil.rmtree(aside, ignore_errors=True)
         else:
             os.rename(self.tmp, self.target)
@@ -166,6 +167,15 @@ def _check_name(name: str) -> None:
     parts = PurePosixPath(name).parts
     if not name or name.startswith("/") or "\\" in name or any(p in ("", ".", "..") for p in parts) or name == MANIFEST:
         raise ConfigError(f"file name {name!r}: must be a plain relative path inside the bundle")
+
+
+def _discard(folder: Path) -> None:
+    """Remove a replaced bundle, its manifest first so that no half-deleted copy ever verifies."""
+    try:
+        os.unlink(folder / MANIFEST)
+    except FileNotFoundError:
+        pass
+    shutil.rmtree(folder, ignore_errors=True)
 
 
 def _fsync_dir(folder: Path) -> None:
