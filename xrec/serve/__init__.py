@@ -55,10 +55,14 @@ def serve(bundle: str | Path, *, host: str = "127.0.0.1", port: int = 8000, log_
         uvicorn's log level (``"info"`` also logs every request).
     """
     import uvicorn
+    from threadpoolctl import threadpool_limits
 
     holder = BundleHolder(bundle)
     app = create_app(holder)
     if hasattr(signal, "SIGHUP"):
         # the reload runs beside the event loop, so requests keep being answered meanwhile
         signal.signal(signal.SIGHUP, lambda *_: threading.Thread(target=holder.reload_logged, daemon=True).start())
-    uvicorn.run(app, host=host, port=port, log_level=log_level, access_log=log_level in ("info", "debug", "trace"))
+    # Requests are scored one user at a time, side by side: one BLAS thread per request is
+    # several times faster than threads that contend for the same cores.
+    with threadpool_limits(1, "blas"):
+        uvicorn.run(app, host=host, port=port, log_level=log_level, access_log=log_level in ("info", "debug", "trace"))
