@@ -295,3 +295,31 @@ def test_kill_9_while_writing_never_leaves_a_loadable_partial_bundle(tmp_path):
                 assert np.array_equal(whole.top_items(np.arange(50), 10), expected)
             shutil.rmtree(leftover)
     assert target.exists()
+
+
+@pytest.mark.slow
+def test_text_search_maps_a_query_as_the_source_maps_item_texts(shop, written):
+    from sklearn.metrics.pairwise import cosine_similarity
+
+    from xrec.sources.content import item_texts
+
+    dataset, _, sources, _ = shop
+    bundle = load_bundle(written)
+    assert set(bundle.search_sources()) == {"text", "ridge", "cca", "conse"}
+    texts = item_texts(dataset.catalog, ["name", "description"])
+    rng = np.random.default_rng(0)
+    picks = rng.choice(len(texts), 25, replace=False)
+    items = sources["text"].item_factors_
+    for j in picks:
+        scores = bundle.query_scores("text", texts[j])
+        # outside reference: scikit-learn's cosine of the item's own (centred) vector with every item
+        assert np.allclose(scores, cosine_similarity(items[j : j + 1], items)[0], atol=1e-4)
+        assert bundle.search_text(texts[j], 1, source="text")["item"].iloc[0] == dataset.catalog.item_ids[j]
+    # through the CCA bridge a description finds images: its own item's image is in the top 10
+    # far more often than chance (10 / n_items)
+    texts_default = item_texts(dataset.catalog)
+    hits = [dataset.catalog.item_ids[j] in set(bundle.search_text(texts_default[j], 10, source="cca")["item"]) for j in picks]
+    assert np.mean(hits) > 3 * 10 / len(texts)
+    filtered = bundle.search_text("a small enamel pin", 5, filters={"attributes": {"product_type": "pin"}})
+    assert len(filtered) == 5
+    assert set(dataset.catalog.items.set_index("item").loc[filtered["item"], "product_type"]) == {"pin"}

@@ -185,14 +185,14 @@ def test_in_flight_requests_finish_on_the_old_bundle(served, bundles):
     old = holder.current
     expected = old.recommend("u4", 5)["item"].tolist()
     entered, release = threading.Event(), threading.Event()
-    original = old.recommend
+    original = old.ranked
 
     def slow(*args, **kwargs):
         entered.set()
         assert release.wait(10)
         return original(*args, **kwargs)
 
-    old.recommend = slow
+    old.ranked = slow
     result = {}
     worker = threading.Thread(target=lambda: result.update(client.post("/recommend", json={"user": "u4", "k": 5}).json()))
     worker.start()

@@ -129,19 +129,38 @@ class Bundle:
             ``item``, ``score`` (float32), ``rank`` (1 = best); fewer than ``k`` rows only
             when fewer items pass.
         """
+        top, scores = self.ranked(user_id, k, filters=filters, exclude_seen=exclude_seen, unknown=unknown)
+        return self._table(top, scores)
+
+    def ranked(
+        self,
+        user_id: Any,
+        k: int = 10,
+        *,
+        filters: dict[str, Any] | None = None,
+        exclude_seen: bool = True,
+        unknown: str = "error",
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`recommend` as arrays: item indices (best first) and their float32 scores."""
         if unknown not in UNKNOWN_RULES:
             raise ConfigError(f"unknown_user: must be one of {list(UNKNOWN_RULES)}, got {unknown!r}")
         k = check_k(k)
         allowed = self._allowed(filters)
         if unknown == "popular" and not self.has_user(user_id):
-            return self._frame(self._counts.astype(np.float32), allowed, k)
-        u = self.user_index(user_id)
-        row = self.scorer.score(np.array([u], dtype=np.int64))[0]
-        if exclude_seen:
-            seen = self.scorer.train_matrix_[u].indices
-            allowed = allowed.copy()
-            allowed[seen] = False
-        return self._frame(row, allowed, k)
+            scores = self._counts.astype(np.float32)
+        else:
+            u = self.user_index(user_id)
+            scores = self.scorer.score(np.array([u], dtype=np.int64))[0]
+            if exclude_seen:
+                allowed = allowed.copy()
+                allowed[self.seen_items(u)] = False
+        top = top_k(scores, allowed, k)
+        return top, scores[top].astype(np.float32)
+
+    def seen_items(self, user: int) -> np.ndarray:
+        """Item indices of user index ``user``'s training items."""
+        m = self.scorer.train_matrix_
+        return m.indices[m.indptr[user] : m.indptr[user + 1]]
 
     def top_items(self, user_indices: np.ndarray, k: int = 10) -> np.ndarray:
         """Item indices of each user's ``k`` best unseen items (no filters), ``-1``-padded."""
@@ -151,7 +170,7 @@ class Bundle:
         out = np.full((len(users), k), -1, dtype=np.int64)
         for r, u in enumerate(users):
             allowed = np.ones(self.items.n_items, dtype=bool)
-            allowed[self.scorer.train_matrix_[u].indices] = False
+            allowed[self.seen_items(u)] = False
             top = top_k(scores[r], allowed, k)
             out[r, : len(top)] = top
         return out
@@ -276,9 +295,10 @@ class Bundle:
 
     def _frame(self, scores: np.ndarray, allowed: np.ndarray, k: int) -> pd.DataFrame:
         top = top_k(scores, allowed, k)
-        return pd.DataFrame(
-            {"item": self.items.item_ids[top], "score": scores[top].astype(np.float32), "rank": np.arange(1, len(top) + 1, dtype=np.int64)}
-        )
+        return self._table(top, scores[top].astype(np.float32))
+
+    def _table(self, top: np.ndarray, scores: np.ndarray) -> pd.DataFrame:
+        return pd.DataFrame({"item": self.items.item_ids[top], "score": scores, "rank": np.arange(1, len(top) + 1, dtype=np.int64)})
 
 
 def check_k(k: Any) -> int:

@@ -111,8 +111,12 @@ def create_app(bundle: str | Path | BundleHolder) -> Starlette:
         current = holder.current
         if unknown == "error" and not current.has_user(user):
             raise RequestError(404, "user", f"user: unknown user {user!r} (pass \"unknown_user\": \"popular\" for a cold-start list)"[:300])
-        frame = await run_in_threadpool(current.recommend, user, k, filters=filters, exclude_seen=exclude_seen, unknown=unknown)
-        return _json({"user": user, "known_user": current.has_user(user), "items": _records(frame), "bundle": current.identity})
+        top, scores = await run_in_threadpool(current.ranked, user, k, filters=filters, exclude_seen=exclude_seen, unknown=unknown)
+        items = [
+            {"item": str(item), "score": float(score), "rank": rank}
+            for rank, (item, score) in enumerate(zip(current.item_ids[top].tolist(), scores.tolist(), strict=True), start=1)
+        ]
+        return JSONResponse({"user": user, "known_user": current.has_user(user), "items": items, "bundle": current.identity})
 
     async def similar(request: Request) -> JSONResponse:
         body = await _body(request)
