@@ -1,8 +1,10 @@
-"""Atomic text-file writes shared by the blend file and the HTML report."""
+"""Atomic file writes: the blend file, the HTML report and the embedding cache's entries."""
 
 from __future__ import annotations
 
+import contextlib
 import os
+import secrets
 import tempfile
 from pathlib import Path
 
@@ -33,6 +35,23 @@ def write_text_atomic(path: str | os.PathLike, text: str) -> Path:
             pass
         raise
     return path
+
+
+def write_bytes_atomic(path: Path, data: bytes) -> None:
+    """Write ``data`` to ``path`` so that readers never see a partial file.
+
+    The bytes go to a hidden temporary file beside ``path`` (named after the process and a
+    random token, so concurrent writers never share one) and replace ``path`` in one rename.
+    """
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.{secrets.token_hex(4)}.tmp")
+    try:
+        with open(tmp, "wb") as fh:
+            fh.write(data)
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
 
 
 def _mode_for(path: Path) -> int:
