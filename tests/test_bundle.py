@@ -14,7 +14,6 @@ from pathlib import Path
 from typing import Self
 
 import numpy as np
-import pandas as pd
 import pytest
 
 from xrec.blend import Blend, CombMNZ, ReciprocalRankFusion

@@ -251,6 +251,12 @@ class Bundle:
         """Sources that can place a text query among their items (text sources and bridged cross-modal ones)."""
         return [n for n, s in self.states.items() if s.get("query")]
 
+    def default_search_source(self) -> str | None:
+        """The source :meth:`search_text` uses when none is named: the first bridged cross-modal
+        source, else the first text source; ``None`` when no source takes text queries."""
+        names = self.search_sources()
+        return next((n for n in names if self.scorer.sources[n].kind == "cross_modal"), names[0] if names else None)
+
     def search_text(self, text: str, k: int = 10, *, source: str | None = None, filters: dict[str, Any] | None = None) -> pd.DataFrame:
         """The ``k`` items whose vectors in ``source``'s item space are closest (cosine) to ``text``.
 
@@ -263,7 +269,7 @@ class Bundle:
         if not names:
             raise ConfigError("source: no source of this bundle can place a text query (a text source or a bridged cross_modal source)")
         if source is None:
-            source = next((n for n in names if self.scorer.sources[n].kind == "cross_modal"), names[0])
+            source = self.default_search_source()
         if source not in names:
             raise ConfigError(f"source: {source!r} cannot place a text query; choose one of {names}")
         if not isinstance(text, str) or not text.strip():

@@ -141,9 +141,11 @@ def create_app(bundle: str | Path | BundleHolder) -> Starlette:
         filters = _filters(body)
         source = _optional_str(body.get("source"), "source")
         current = holder.current
-        names = current.search_sources()
-        chosen = source or next((n for n in names if current.scorer.sources[n].kind == "cross_modal"), names[0] if names else None)
-        frame = await run_in_threadpool(current.search_text, text, k, source=source, filters=filters)
+        try:
+            frame = await run_in_threadpool(current.search_text, text, k, source=source, filters=filters)
+        except (ImportError, OSError) as exc:  # the text encoder's package or files cannot be loaded
+            raise RequestError(503, "source", f"source: the text encoder cannot be loaded here ({exc})"[:300]) from None
+        chosen = source or current.default_search_source()
         return _json({"text": text, "source": chosen, "items": _records(frame), "bundle": current.identity})
 
     async def reload(request: Request) -> JSONResponse:
