@@ -10,7 +10,8 @@ lack, so it never loads.
 
 Reading lists every file under the folder, refuses one the manifest does not list (an
 extra file), one it lists that is absent (a missing file) and one whose SHA-256 differs
-(a changed file), each naming the file; contents are hashed and parsed from the same bytes.
+(a changed file), each naming the file; contents are hashed and parsed from the same bytes
+(the blend file is then read by :func:`xrec.blendfile.read_blend` and compared with them).
 """
 
 from __future__ import annotations

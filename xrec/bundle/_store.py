@@ -26,14 +26,12 @@ import datetime as _dt
 import io
 import json
 import os
-import tomllib
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
-import tomli_w
 
 from xrec.bundle._artifacts import check_exportable, load_source, save_source
 from xrec.bundle._filters import ItemTable
@@ -79,7 +77,7 @@ def save_bundle(
         When a source's kind cannot be bundled (the message names the source and kind), the
         scorer is not fitted, or it was fitted on training rows other than its recorded split's.
     """
-    from xrec.blendfile import BlendSpec, spec_from_scorer
+    from xrec.blendfile import save_blend, spec_from_scorer
 
     if not getattr(blend_or_fusion, "fitted_", False):
         raise ConfigError("blend: not fitted; fit it on its fold before writing a bundle")
@@ -89,9 +87,6 @@ def save_bundle(
         blend_or_fusion, dataset=dataset, split_settings=split_settings, fold=fold, evidence=evidence, dataset_load=dataset_load
     )
     train_fold = _recreate_fold(spec, dataset, blend_or_fusion)
-    content = spec.to_dict()
-    BlendSpec.from_dict(content)  # never write a file that would not read back
-    blend_text = "# xrec blend file: load with xrec.runtime.load_blend(path, dataset)\n" + tomli_w.dumps(content)
 
     source_files, source_arrays = {}, {}
     for i, (name, src) in enumerate(blend_or_fusion.sources.items()):
@@ -125,7 +120,12 @@ def save_bundle(
     }
     writer = FolderWriter(path)
     try:
-        writer.write(BLEND_FILE, blend_text.encode("utf-8"))
+        # the blend file exactly as save_blend writes it (its own format and checks)
+        blend_path = save_blend(
+            writer.tmp / BLEND_FILE, blend_or_fusion, dataset=dataset, split_settings=split_settings,
+            evidence=evidence, fold=fold, dataset_load=dataset_load,
+        )
+        writer.write(BLEND_FILE, blend_path.read_bytes())
         writer.write("users.parquet", _parquet(users))
         writer.write("items.parquet", _parquet(items))
         writer.write("train.parquet", _parquet(train))
@@ -162,17 +162,22 @@ def load_bundle(path: str | os.PathLike) -> Bundle:
     """
     from safetensors.numpy import load as tensors_from_bytes
 
-    from xrec.blendfile import BlendSpec, ranking_digest
+    from xrec.blendfile import ranking_digest, read_blend
     from xrec.data.catalog import Catalog
     from xrec.fold import Fold
 
     folder = Path(path)
     manifest, contents, identity = read_verified(folder)
+    blend_name = manifest.get("blend_file", BLEND_FILE)
+    if blend_name not in contents:
+        raise BundleError(f"manifest.json: blend_file {blend_name!r} is not a listed file")
     try:
-        blend_name = manifest["blend_file"]
-        spec = BlendSpec.from_dict(tomllib.loads(contents[blend_name].decode("utf-8")))
-    except (KeyError, UnicodeDecodeError, tomllib.TOMLDecodeError, XrecError) as exc:
-        raise BundleError(f"{manifest.get('blend_file', BLEND_FILE)}: {exc}") from None
+        # read by xrec.blendfile itself (its format checks), after its checksum passed
+        spec = read_blend(folder / blend_name)
+        if (folder / blend_name).read_bytes() != contents[blend_name]:
+            raise BundleError(f"{blend_name}: changed while the bundle was being read")
+    except XrecError as exc:
+        raise BundleError(f"{blend_name}: {exc}") from None
     if spec.check is None:
         raise BundleError(f"{blend_name}: has no [check] ranking digest; bundles are written with one")
     if manifest.get("dataset", {}).get("fingerprint") != spec.fingerprint:
