@@ -84,7 +84,7 @@ class Bundle:
         """Index of ``user_id``; :class:`DataError` naming it when unknown."""
         key = str(user_id)
         if key not in self._users:
-            raise DataError(f"user: unknown user {key!r}; the bundle serves {len(self._users)} users (unknown_user='popular' gives a cold-start list)")
+            raise DataError(f"user: unknown user {key!r}; the bundle serves {len(self._users)} users (unknown='popular' gives a cold-start list)")
         return self._users[key]
 
     def item_index(self, item_id: Any) -> int:
@@ -143,7 +143,7 @@ class Bundle:
     ) -> tuple[np.ndarray, np.ndarray]:
         """:meth:`recommend` as arrays: item indices (best first) and their float32 scores."""
         if unknown not in UNKNOWN_RULES:
-            raise ConfigError(f"unknown_user: must be one of {list(UNKNOWN_RULES)}, got {unknown!r}")
+            raise ConfigError(f"unknown: must be one of {list(UNKNOWN_RULES)}, got {unknown!r}")
         k = check_k(k)
         allowed = self._allowed(filters)
         if unknown == "popular" and not self.has_user(user_id):
