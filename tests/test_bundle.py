@@ -18,7 +18,7 @@ import pytest
 
 from xrec.blend import Blend, CombMNZ, ReciprocalRankFusion
 from xrec.blend.gating import GatedBlend
-from xrec.bundle import load_bundle, save_bundle
+from xrec.bundle import load_bundle, save_bundle, sweep_stale
 from xrec.data.demo import load_demo_shop
 from xrec.errors import BundleError, ConfigError
 from xrec.fold import Fold
@@ -247,6 +247,24 @@ def test_replacing_a_bundle_and_refusing_other_folders(shop, written, tmp_path):
     (other / "cat.png").write_bytes(b"x")
     with pytest.raises(ConfigError, match="neither empty nor a bundle"):
         save_bundle(other, small, dataset=dataset, split_settings=split.settings, fold="test")
+
+
+def test_leftovers_of_killed_writers_are_swept_when_old(shop, written, tmp_path):
+    dataset, split, sources, _ = shop
+    target = _copy(written, tmp_path / "b")
+    old = tmp_path / ".b.abc123.partial"
+    fresh = tmp_path / ".b.def456.partial"
+    other = tmp_path / ".c.abc123.partial"
+    for folder in (old, fresh, other):
+        folder.mkdir()
+        (folder / "users.parquet").write_bytes(b"half")
+    os.utime(old, (time.time() - 7200, time.time() - 7200))
+    os.utime(other, (time.time() - 7200, time.time() - 7200))
+    assert sweep_stale(target) == [old]
+    assert fresh.exists() and other.exists()  # a writer may still be filling it; another bundle's
+    save_bundle(target, Blend({"als": sources["als"]}, {"als": 1.0}).fit(split.test), dataset=dataset,
+                split_settings=split.settings, fold="test")
+    assert load_bundle(target).spec.method == "weighted"
 
 
 _WRITER = """

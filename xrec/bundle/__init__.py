@@ -10,7 +10,8 @@ The folder layout is documented in :mod:`xrec.bundle._store`, the filter structu
 
 from xrec.bundle._artifacts import exportable_kinds, register_artifacts
 from xrec.bundle._filters import ItemTable
+from xrec.bundle._manifest import sweep_stale
 from xrec.bundle._runtime import Bundle, top_k
 from xrec.bundle._store import load_bundle, save_bundle
 
-__all__ = ["Bundle", "ItemTable", "exportable_kinds", "load_bundle", "register_artifacts", "save_bundle", "top_k"]
+__all__ = ["Bundle", "ItemTable", "exportable_kinds", "load_bundle", "register_artifacts", "save_bundle", "sweep_stale", "top_k"]

@@ -6,7 +6,7 @@ take the target's name, in one rename (an existing bundle is swapped out atomica
 the system offers ``renameat2(RENAME_EXCHANGE)``, else renamed aside first). A writer
 killed at any point leaves either the previous bundle or the new complete one under the
 target name; a leftover ``.partial`` folder has no manifest, or one listing files it may
-lack, so it never loads.
+lack, so it never loads (the next write of the same bundle removes leftovers older than an hour).
 
 Reading lists every file under the folder, refuses one the manifest does not list (an
 extra file), one it lists that is absent (a missing file) and one whose SHA-256 differs
@@ -58,6 +58,7 @@ class FolderWriter:
                 raise ConfigError(f"bundle: {str(self.target)!r} exists and is not a folder")
             if not (self.target / MANIFEST).is_file() and any(self.target.iterdir()):
                 raise ConfigError(f"bundle: {str(self.target)!r} is a folder that is neither empty nor a bundle; not replacing it")
+        sweep_stale(self.target)
         self.tmp = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.", suffix=".partial", dir=parent))
         umask = os.umask(0)
         os.umask(umask)
@@ -103,6 +104,39 @@ class FolderWriter:
     def abort(self) -> None:
         """Remove the temporary folder (after a failure)."""
         shutil.rmtree(self.tmp, ignore_errors=True)
+
+
+#: Temporary folders of a bundle's writers older than this (seconds) are left by killed writers.
+STALE_AFTER = 3600.0
+
+
+def sweep_stale(target: str | os.PathLike, *, older_than: float = STALE_AFTER) -> list[Path]:
+    """Remove the temporary folders killed writers of ``target`` left beside it; returns them.
+
+    Only ``.NAME.*.partial`` and ``.NAME.*.old`` folders not modified for ``older_than``
+    seconds are removed, so a writer still at work is never disturbed.
+    """
+    import time
+
+    target = Path(target)
+    parent = target.parent if str(target.parent) else Path(".")
+    removed = []
+    try:
+        entries = list(parent.iterdir())
+    except OSError:
+        return removed
+    now = time.time()
+    for entry in entries:
+        name = entry.name
+        if not (name.startswith(f".{target.name}.") and name.endswith((".partial", ".old"))):
+            continue
+        try:
+            if entry.is_dir() and not entry.is_symlink() and now - entry.stat().st_mtime > older_than:
+                shutil.rmtree(entry, ignore_errors=True)
+                removed.append(entry)
+        except OSError:
+            continue
+    return removed
 
 
 def read_verified(folder: str | os.PathLike) -> tuple[dict[str, Any], dict[str, bytes], str]:
