@@ -12,7 +12,7 @@ from xrec.blendfile import read_blend, save_blend
 from xrec.bundle import Bundle, load_bundle, save_bundle
 from xrec.data import Catalog, CatalogSchema, Dataset, Interactions, load_movielens
 from xrec.data.demo import load_demo_shop
-from xrec.errors import ConfigError, DataError, FingerprintMismatch, XrecError
+from xrec.errors import ConfigError, DataError, FingerprintMismatch, NotFittedError, XrecError
 # The evaluate() function is not re-exported: the name is the xrec.evaluate subpackage.
 from xrec.evaluate import Comparison, FullRanking, SampledNegatives, Scorecard, compare
 from xrec.fold import Fold
@@ -35,6 +35,7 @@ __all__ = [
     "DataError",
     "Dataset",
     "FingerprintMismatch",
+    "NotFittedError",
     "Fold",
     "FullRanking",
     "Interactions",

@@ -21,3 +21,10 @@ class FingerprintMismatch(ConfigError):
 
 class BundleError(ConfigError):
     """A bundle folder is incomplete, altered or unreadable; the message names the file."""
+
+
+class NotFittedError(XrecError, RuntimeError):
+    """An estimator was used before ``fit`` (or a blend engine before ``prepare``).
+
+    Also a :class:`RuntimeError`, which is what xrec raised here before this class existed.
+    """

@@ -202,6 +202,7 @@ def _build_blend(spec, table, sources, split, valid_sources, learned, name, prog
     if table["weights"] != "learn":
         return Blend(chosen, weights=table["weights"], normalizers=normalizer).fit(fold)
 
+    from xrec._validation import parse_metric_column
     from xrec.blend.engine import BlendEngine
     from xrec.blend.gating import GatedBlend, learn_gated_weights
     from xrec.blend.learn import learn_weights
@@ -214,10 +215,7 @@ def _build_blend(spec, table, sources, split, valid_sources, learned, name, prog
         if n not in valid_sources:
             valid_sources[n] = built[n].fit(split.validation)
     metric = table.get("metric", "ndcg@10")
-    try:
-        k = int(metric.rpartition("@")[2])
-    except ValueError:
-        raise ConfigError(f"metric: expected '<name>@<k>', got {metric!r}") from None
+    k = parse_metric_column(metric)[1]
     seed = int(table.get("seed", 0))
     # Blends over the same sources, normalizers, metric, method and seed share the engine and
     # the ungated search (a gated blend starts from it), so neither is paid for twice.

@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 
+from xrec._validation import check_int
 from xrec.blendfile import BlendSpec, ranking_digest, read_blend
 from xrec.data.dataset import Dataset
 from xrec.errors import ConfigError, DataError, FingerprintMismatch
@@ -129,9 +130,7 @@ class BlendRuntime:
 
 
 def _check_k(k: Any) -> int:
-    if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 1:
-        raise ConfigError(f"k must be a positive integer, got {k!r}")
-    return int(k)
+    return check_int(k, "k", low=1)
 
 
 def load_blend(path: str | os.PathLike, dataset: Dataset, *, progress: bool = False, verify: bool = True) -> BlendRuntime:

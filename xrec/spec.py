@@ -57,6 +57,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from xrec._validation import check_int
 from xrec.errors import ConfigError
 
 _DATASETS = ("movielens", "demo_shop", "files")
@@ -120,9 +121,7 @@ def _check_table(value: Any, where: str) -> dict:
 
 
 def _check_int(table: dict, key: str, lowest: int, where: str) -> None:
-    value = table.get(key, lowest)
-    if not isinstance(value, int) or isinstance(value, bool) or value < lowest:
-        raise ConfigError(f"{where}.{key}: must be an integer >= {lowest}, got {value!r}")
+    check_int(table.get(key, lowest), f"{where}.{key}:", low=lowest, expected=f"an integer >= {lowest}")
 
 
 def _check_blend(table: dict, where: str, sources: dict, *, learning_allowed: bool) -> None:

@@ -10,8 +10,9 @@ import numpy as np
 import scipy.sparse as sp
 from tqdm.auto import tqdm
 
+from xrec._validation import check_int
 from xrec.errors import ConfigError, DataError
-from xrec.evaluate._metrics import ALL_METRICS, LIST_METRICS, RANK_METRICS, metric_column, metrics_from_ranks, popularity_of_lists
+from xrec.evaluate._metrics import LIST_METRICS, RANK_METRICS, check_ks, check_metrics, metric_column, metrics_from_ranks, popularity_of_lists
 from xrec.evaluate._ranking import canonical_rows, check_users, rank_heldout, top_k_items
 from xrec.evaluate.protocols import SAMPLED_WARNING, FullRanking, SampledNegatives
 from xrec.evaluate.scorecard import Scorecard
@@ -64,27 +65,6 @@ def _row_run(m: sp.csr_matrix, start: int, stop: int) -> sp.csr_matrix:
     )
     out.has_canonical_format = True
     return out
-
-
-def _check_ks(ks: Sequence[int] | int) -> tuple[int, ...]:
-    if isinstance(ks, (int, np.integer)):
-        ks = (ks,)
-    ks = tuple(ks)
-    bad = [k for k in ks if not isinstance(k, (int, np.integer)) or isinstance(k, bool) or k <= 0]
-    if not ks or bad:
-        raise ConfigError(f"ks must be positive integers, got bad value(s) {bad or list(ks)}")
-    return tuple(sorted({int(k) for k in ks}))
-
-
-def _check_metrics(metrics: Sequence[str] | str) -> tuple[str, ...]:
-    if isinstance(metrics, str):
-        metrics = (metrics,)
-    unknown = [m for m in metrics if m not in ALL_METRICS]
-    if unknown:
-        raise ConfigError(f"unknown metric name(s) {unknown}; known: {list(ALL_METRICS)}")
-    if not metrics:
-        raise ConfigError("metrics is empty; pick from " + str(list(ALL_METRICS)))
-    return tuple(dict.fromkeys(metrics))
 
 
 def evaluate_blocks(
@@ -143,10 +123,9 @@ def evaluate_blocks(
     DataError
         Shape mismatches, users out of range, repeated, or without held-out items.
     """
-    ks = _check_ks(ks)
-    metrics = _check_metrics(metrics)
-    if not isinstance(chunk_size, (int, np.integer)) or chunk_size <= 0:
-        raise ConfigError(f"chunk_size must be a positive int, got {chunk_size!r}")
+    ks = check_ks(ks)
+    metrics = check_metrics(metrics)
+    check_int(chunk_size, "chunk_size", low=1, expected="a positive int")
     protocol = FullRanking() if protocol is None else protocol
     if not isinstance(protocol, (FullRanking, SampledNegatives)):
         raise ConfigError(f"protocol must be FullRanking() or SampledNegatives(...), got {type(protocol).__name__}")
