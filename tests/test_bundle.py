@@ -14,7 +14,9 @@ from pathlib import Path
 from typing import Self
 
 import numpy as np
+import pandas as pd
 import pytest
+from _bundles import small_dataset
 
 from xrec.blend import Blend, CombMNZ, ReciprocalRankFusion
 from xrec.blend.gating import GatedBlend
@@ -82,7 +84,8 @@ def written(shop, tmp_path_factory):
 
 def test_the_kinds_cover_every_registered_built_in():
     built_in = {k for k in source_kinds() if source_class(k).__module__.startswith("xrec.")}
-    assert built_in <= {kind for kind, _ in KINDS.values()} | {kind for kind, _ in SLOW_BRIDGES.values()}
+    # ranking and vectors: test_ranking_and_vectors_kinds_restore_exactly
+    assert built_in <= {kind for kind, _ in KINDS.values()} | {kind for kind, _ in SLOW_BRIDGES.values()} | {"ranking", "vectors"}
 
 
 def test_every_kind_restores_its_exact_scores(shop, written):
@@ -377,3 +380,26 @@ def test_cca_and_conse_bridges_restore_exactly_and_search(shop, cache_dir, tmp_p
     picks = np.random.default_rng(1).choice(len(texts), 25, replace=False)
     hits = [dataset.catalog.item_ids[j] in set(bundle.search_text(texts[j], 10)["item"]) for j in picks]
     assert np.mean(hits) > 3 * 10 / len(texts)  # chance is 10 / n_items
+
+
+def test_ranking_and_vectors_kinds_restore_exactly(tmp_path):
+    dataset = small_dataset()
+    split = split_dataset(dataset, "leave_last", seed=0)
+    rng = np.random.default_rng(4)
+    rows = [(u, f"i{j:02d}", float(8 - p)) for u in split.test.user_ids for p, j in enumerate(rng.choice(60, 8, replace=False))]
+    pd.DataFrame(rows, columns=["user", "item", "score"]).to_csv(tmp_path / "ranking.csv", index=False)
+    np.save(tmp_path / "vectors.npy", rng.normal(size=(60, 6)).astype(np.float32))
+    (tmp_path / "ids.txt").write_text("\n".join(f"i{j:02d}" for j in range(60)) + "\n")
+    sources = {
+        "current": make_source("ranking", path=str(tmp_path / "ranking.csv")).fit(split.test),
+        "mine": make_source("vectors", path=str(tmp_path / "vectors.npy"), ids=str(tmp_path / "ids.txt"), center=True).fit(split.test),
+    }
+    blend = Blend(sources, {"current": 1.0, "mine": 0.5}).fit(split.test)
+    save_bundle(tmp_path / "b", blend, dataset=dataset, split_settings=split.settings, fold="test")
+    (tmp_path / "ranking.csv").unlink()  # the bundle needs neither file
+    (tmp_path / "vectors.npy").unlink()
+    bundle = load_bundle(tmp_path / "b")
+    users = np.arange(split.test.n_users)
+    for name, src in sources.items():
+        assert np.array_equal(bundle.scorer.sources[name].score(users), src.score(users)), name
+    assert np.array_equal(bundle.scorer.score(users), blend.score(users))

@@ -273,11 +273,39 @@ def _load_early_fusion(source: Any, arrays: Arrays, state: dict[str, Any], fold:
     source.blocks_ = {m: (int(a), int(b)) for m, (a, b) in state.get("blocks", {}).items()}
 
 
+# -- a production ranking read from a file: its per-user list scores --------------------------
+
+
+def _save_ranking(source: Any, ctx: ExportContext) -> tuple[Arrays, dict[str, Any]]:
+    lists = source.list_scores_.tocsr()
+    arrays = {
+        "list_data": lists.data.astype(np.float32),
+        "list_indices": lists.indices.astype(np.int64),
+        "list_indptr": lists.indptr.astype(np.int64),
+        "list_lengths": np.asarray(source.list_lengths_, dtype=np.int64),
+    }
+    return arrays, {"by": source.by_, "skipped": {k: int(v) for k, v in source.skipped_.items()}}
+
+
+def _load_ranking(source: Any, arrays: Arrays, state: dict[str, Any], fold: Fold) -> None:
+    indptr = _take(arrays, "list_indptr", (fold.n_users + 1,), np.int64)
+    indices = _take(arrays, "list_indices", (None,), np.int64)
+    data = _take(arrays, "list_data", (len(indices),), np.float32)
+    if indptr[0] != 0 or indptr[-1] != len(indices) or np.any(np.diff(indptr) < 0) or (len(indices) and (indices.min() < 0 or indices.max() >= fold.n_items)):
+        raise ConfigError("tensors list_*: not a valid users × items sparse matrix")
+    source.list_scores_ = sp.csr_matrix((data, indices, indptr), shape=(fold.n_users, fold.n_items))
+    source.list_lengths_ = _take(arrays, "list_lengths", (fold.n_users,), np.int64)
+    source.by_ = state.get("by")
+    source.skipped_ = dict(state.get("skipped", {}))
+
+
 for _kind in ("als", "bpr", "attributes"):
     register_artifacts(_kind, _save_factors, _load_factors)
 register_artifacts("popularity", _save_popularity, _load_popularity)
 register_artifacts("item_knn", _save_item_knn, _load_item_knn)
 register_artifacts("image", _save_content, _load_content)
+register_artifacts("vectors", _save_content, _load_content)  # the user's own item vectors
+register_artifacts("ranking", _save_ranking, _load_ranking)
 register_artifacts("text", _save_text, _load_text)
 register_artifacts("cross_modal", _save_cross_modal, _load_cross_modal)
 register_artifacts("early_fusion", _save_early_fusion, _load_early_fusion)
