@@ -264,23 +264,52 @@ def evidence_summary(result: ExperimentResult, name: str) -> dict[str, Any]:
     return evidence
 
 
-def export_spec(spec: ExperimentSpec, output: str | Path, *, scorer: str | None = None, progress: bool = False) -> Path:
-    """Run ``spec`` and write the blend file of one of its scorers (default: the primary)."""
+def export_spec(
+    spec: ExperimentSpec,
+    output: str | Path | None = None,
+    *,
+    scorer: str | None = None,
+    progress: bool = False,
+    bundle: str | Path | None = None,
+) -> Path:
+    """Run ``spec`` and write the blend file of one of its scorers (default: the primary).
+
+    With ``bundle`` (a folder), also write a bundle there (see :func:`xrec.bundle.save_bundle`):
+    the blend file plus every learned artifact, loadable without the data. Returns the
+    blend file's path, or the bundle folder when no ``output`` is given.
+    """
     from xrec.blendfile import save_blend
 
     # Checked before the (long) run, not after it.
-    output = Path(output)
-    if output.is_dir():
-        raise ConfigError(f"--output: {str(output)!r} is a folder; give the blend file's path, e.g. {str(output / 'blend.toml')!r}")
-    if not output.parent.is_dir():
-        raise ConfigError(f"--output: folder {str(output.parent)!r} does not exist")
+    if output is None and bundle is None:
+        raise ConfigError("--output: give a blend file to write, a --bundle folder, or both")
+    if output is not None:
+        output = Path(output)
+        if output.is_dir():
+            raise ConfigError(f"--output: {str(output)!r} is a folder; give the blend file's path, e.g. {str(output / 'blend.toml')!r}")
+        if not output.parent.is_dir():
+            raise ConfigError(f"--output: folder {str(output.parent)!r} does not exist")
+    if bundle is not None:
+        bundle = Path(bundle)
+        if not (bundle.parent if str(bundle.parent) else Path(".")).is_dir():
+            raise ConfigError(f"--bundle: folder {str(bundle.parent)!r} does not exist")
+        if bundle.exists() and not bundle.is_dir():
+            raise ConfigError(f"--bundle: {str(bundle)!r} exists and is not a folder")
     result = run_experiment(spec, progress=progress)
     name, blend = _scorer_for(result, scorer)
     evidence = evidence_summary(result, name)
-    return save_blend(
-        output, blend, dataset=result.dataset, split_settings=result.split.settings,
-        evidence=evidence, fold="test", dataset_load=data_hints(spec),
-    )
+    options = {
+        "dataset": result.dataset, "split_settings": result.split.settings, "evidence": evidence,
+        "fold": "test", "dataset_load": data_hints(spec),
+    }
+    written = None
+    if bundle is not None:
+        from xrec.bundle import save_bundle
+
+        written = save_bundle(bundle, blend, **options)
+    if output is not None:
+        written = save_blend(output, blend, **options)
+    return written
 
 
 def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progress: bool = False):
