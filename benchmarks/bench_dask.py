@@ -43,6 +43,7 @@ from xrec.evaluate import (
     evaluate_blocks_sharded,
 )
 from xrec.evaluate._synthetic_scale import SHAPES, scale_problem
+from _results import save  # noqa: E402  (benchmarks/_results.py)
 
 METRICS = ("hit_rate", "ndcg", "recall", "mrr")
 
@@ -102,6 +103,7 @@ def main() -> None:
     print(f"{'workers':>7}{'pair':>5}{'one process s':>15}{'sharded s':>11}{'ratio':>7}{'task compute s':>16}"
           f"{'overhead s':>12}{'cluster start s':>17}{'load':>6}")
     ratios: dict[int, list[float]] = {}
+    pairs = []
     for n in (int(w) for w in args.workers.split(",")):
         t0 = time.perf_counter()
         with open_client(workers=n) as client:
@@ -119,12 +121,16 @@ def main() -> None:
                     if not np.array_equal(card.per_user[col].to_numpy(), reference.per_user[col].to_numpy(), equal_nan=True):
                         raise SystemExit(f"{n} workers: per-user {col} differs from one process")
                 ratios.setdefault(n, []).append(wall / single)
+                pairs.append({"workers": n, "pair": pair + 1, "one_process_s": single, "sharded_s": wall, "task_compute_s": compute,
+                              "overhead_s": wall - compute / n, "cluster_start_s": started, "load_1min": os.getloadavg()[0]})
                 print(f"{n:>7}{pair + 1:>5}{single:>15.1f}{wall:>11.1f}{wall / single:>7.2f}{compute:>16.1f}"
                       f"{wall - compute / n:>12.1f}{started:>17.1f}{os.getloadavg()[0]:>6.1f}", flush=True)
     for n, values in ratios.items():
         print(f"{n} worker(s): sharded / one process, median of {len(values)} pairs: {statistics.median(values):.2f}× "
               f"({cells / 1e9:.2f}·10^9 cells)")
     print("per-user values of every sharded run equal the one-process values")
+    save("bench_dask", {"shape": args.shape, "users": problem.n_users, "items": problem.n_items, "training_rows": int(problem.train.nnz),
+                        "path": args.path, "pairs": pairs, "per_user_values_equal": True})
 
 
 if __name__ == "__main__":

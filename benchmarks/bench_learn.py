@@ -38,6 +38,7 @@ import sys
 import time
 
 import pandas as pd
+from _results import save  # noqa: E402  (benchmarks/_results.py)
 
 from xrec.blend.engine import BlendEngine
 from xrec.blend.gating import learn_gated_weights
@@ -118,7 +119,7 @@ def bench(name: str, loader, repeats: int) -> pd.DataFrame:
     return frame
 
 
-def time_cli() -> None:
+def time_cli() -> dict:
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t = time.perf_counter()
     subprocess.run([sys.executable, "-m", "xrec.cli", "run", "movielens_fusion", "-q"], check=True, stdout=subprocess.DEVNULL)
@@ -126,6 +127,7 @@ def time_cli() -> None:
     after = resource.getrusage(resource.RUSAGE_CHILDREN)
     cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
     print(f"python -m xrec.cli run movielens_fusion: {wall:.1f} s wall, {cpu:.1f} s CPU")
+    return {"wall_s": wall, "cpu_s": cpu}
 
 
 def main() -> None:
@@ -141,8 +143,8 @@ def main() -> None:
         frames.append(bench("movielens", movielens_problem, args.repeats))
     with pd.option_context("display.width", 200, "display.max_columns", 20, "display.float_format", lambda v: f"{v:.4f}" if not math.isnan(v) else ""):
         print(pd.concat(frames, ignore_index=True).to_string(index=False))
-    if args.cli:
-        time_cli()
+    cli = time_cli() if args.cli else None
+    save("bench_learn", {"repeats": args.repeats, "rows": pd.concat(frames, ignore_index=True).to_dict("records"), "cli": cli})
 
 
 if __name__ == "__main__":

@@ -55,6 +55,9 @@ print(json.dumps(out))
 """
 
 
+from _results import save  # noqa: E402  (benchmarks/_results.py)
+
+
 def write_interactions(path: Path, rows: int, seed: int = 0) -> int:
     """A Parquet file of ``rows`` (rounded down to whole users) distinct (user, item) pairs, in row groups."""
     import numpy as np
@@ -100,14 +103,18 @@ def main(argv: list[str] | None = None) -> None:
         arrow = measure("arrow", path)
         size = arrow["nbytes"]
         print(f"in memory as an Arrow table: {size / 1e6:,.0f} MB")
+        jobs = {}
         print(f"{'job':<16}{'seconds':>9}{'rows/s':>13}{'peak MB':>10}{'above start':>13}{'peak/size':>11}{'above/size':>12}")
         for label, job in (("arrow table", "arrow"), ("arrow -> pandas", "pandas"), ("xrec", "xrec")):
             got = arrow if job == "arrow" else measure(job, path)
+            jobs[job] = got
             above = got["peak"] - got["start"]
             print(f"{label:<16}{got['seconds']:>9.1f}{got['rows'] / got['seconds']:>13,.0f}{got['peak'] / 1e6:>10,.0f}"
                   f"{above / 1e6:>13,.0f}{got['peak'] / size:>11.2f}{above / size:>12.2f}")
             if "result_bytes" in got:
                 print(f"  (the checked, sorted Interactions frame itself: {got['result_bytes'] / 1e6:,.0f} MB)")
+        file_mb = path.stat().st_size / 1e6
+    save("bench_load", {"rows": rows, "parquet_mb": file_mb, "arrow_bytes": size, "jobs": jobs})
 
 
 if __name__ == "__main__":

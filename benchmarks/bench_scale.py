@@ -50,6 +50,7 @@ from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
+from _results import run_info  # benchmarks/_results.py: machine, date, load at start, command, commit
 
 ROOT = Path(__file__).resolve().parents[1]
 RESULTS = ROOT / "benchmarks" / "results"
@@ -370,7 +371,8 @@ def main(argv: list[str] | None = None) -> None:
     out.parent.mkdir(parents=True, exist_ok=True)
     from xrec._files import write_text_atomic
 
-    write_text_atomic(out.with_suffix(".json"), json.dumps({"rows": rows, "growth_exponent": exponents}, indent=2))
+    payload = {"source": "this script's run", "run": run_info(), "rows": rows, "growth_exponent": exponents}
+    write_text_atomic(out.with_suffix(".json"), json.dumps(payload, indent=2) + "\n")
     write_text_atomic(out.with_suffix(".md"), to_markdown(rows, exponents))
     print(to_markdown(rows, exponents))
 

@@ -35,6 +35,7 @@ import time
 from pathlib import Path
 
 import numpy as np
+from _results import save  # noqa: E402  (benchmarks/_results.py)
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -188,6 +189,7 @@ def main() -> None:
         "p50_over_in_process": round(float(np.percentile(lat, 50)) / in_process, 1),
     }
     print(json.dumps(summary, indent=1))
+    save("bench_serve", summary)
     if errors:
         print("first errors:", errors[:3])
 

@@ -50,6 +50,9 @@ print(json.dumps({"seconds": elapsed, "extra_bytes": max(peak[0], proc.memory_in
 """
 
 
+from _results import save  # noqa: E402  (benchmarks/_results.py)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--items", type=int, default=200_000)
@@ -82,6 +85,7 @@ def main() -> None:
     print(f"{'layout':<20} {'time / baseline':>16} {'extra peak RSS / output':>24}")
     for layout, r in rows.items():
         print(f"{layout:<20} {r['seconds'] / base:>16.2f} {r['extra_bytes'] / r['out_bytes']:>24.2f}")
+    save("bench_vectors", {"items": args.items, "dim": args.dim, "layouts": rows})
 
 
 if __name__ == "__main__":

@@ -20,6 +20,10 @@ Usage::
     python -m xrec.docs                    # regenerate every table in README.md
     python -m xrec.docs movielens_fusion   # just one
     python -m xrec.docs --check            # exit 1 if any table is stale (what the test checks)
+
+Benchmark figures (``<!-- xrec:bench NAME -->`` blocks) are rendered from the committed
+``benchmarks/results/*.json`` files by :mod:`xrec.docs_bench` in the same pass; no
+benchmark is run.
 """
 
 from __future__ import annotations
@@ -208,9 +212,12 @@ def _blocks(text: str) -> dict[str, str]:
 
 def update_readme(names: list[str] | None = None, readme: Path = README, *, progress: bool = True) -> list[str]:
     """Regenerate the named tables (default: every table with markers in ``readme``); returns their names."""
+    from xrec.docs_bench import BENCH, rewrite_bench
+
     text = readme.read_text(encoding="utf-8")
     present = _blocks(text)
-    names = names or [n for n in TABLES if n in present]
+    bench = None if names is None else [n for n in names if n in BENCH and n not in TABLES]
+    names = [n for n in TABLES if n in present] if names is None else [n for n in names if n not in (bench or ())]
     missing = [n for n in names if n not in present]
     if missing:
         raise ConfigError(f"README: no markers for table(s) {missing}; add <!-- xrec:results NAME --> ... <!-- /xrec:results -->")
@@ -220,21 +227,27 @@ def update_readme(names: list[str] | None = None, readme: Path = README, *, prog
             print(f"- running {name} ...", flush=True)
         bodies[name] = render(name)
     text = _BLOCK.sub(lambda m: m.group(1) + bodies.get(m["name"], m["body"]) + m.group(4), text)
+    text, bench = rewrite_bench(text, bench)  # benchmark blocks: rendered from benchmarks/results, nothing re-run
     from xrec._files import write_text_atomic
 
     write_text_atomic(readme, text)
-    return names
+    return names + bench
 
 
 def check_readme(readme: Path = README, *, rerun_cheap: bool = True) -> list[str]:
     """Problems with the README's tables (empty when up to date).
 
-    Every table in :data:`TABLES` must have markers; an expensive table's recorded inputs
+    Every table in :data:`TABLES` and every benchmark block in
+    :data:`xrec.docs_bench.BENCH` must have markers; a benchmark block must equal the rendering
+    of its committed results files; an expensive table's recorded inputs
     fingerprint must equal the current one; a cheap table (when ``rerun_cheap``) must equal
     a fresh run.
     """
-    present = _blocks(readme.read_text(encoding="utf-8"))
-    problems = []
+    from xrec.docs_bench import bench_problems
+
+    text = readme.read_text(encoding="utf-8")
+    present = _blocks(text)
+    problems = bench_problems(text)
     for name, table in TABLES.items():
         if name not in present:
             problems.append(f"{name}: no <!-- xrec:results {name} --> block in {readme.name}")
@@ -253,7 +266,9 @@ def check_readme(readme: Path = README, *, rerun_cheap: bool = True) -> list[str
 
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="python -m xrec.docs", description="Regenerate the README's result tables from real runs.")
-    parser.add_argument("names", nargs="*", help=f"tables to regenerate (default: all): {', '.join(TABLES)}")
+    from xrec.docs_bench import BENCH
+
+    parser.add_argument("names", nargs="*", help=f"tables to regenerate (default: all): {', '.join([*TABLES, *BENCH])}")
     parser.add_argument("--check", action="store_true", help="report stale tables and exit 1 instead of rewriting")
     parser.add_argument("--readme", type=Path, default=README)
     args = parser.parse_args(argv)
