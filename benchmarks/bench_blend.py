@@ -49,6 +49,7 @@ from xrec.data.catalog import Catalog
 from xrec.evaluate import evaluate
 from xrec.fold import Fold
 from xrec.sources.base import LowRankSource, Source
+from _results import save  # noqa: E402  (benchmarks/_results.py)
 
 SHAPES = {"ml1m": (6040, 3706, 165.0), "shop": (2000, 1000, 25.0)}
 RANK = 16
@@ -184,7 +185,7 @@ def movielens_problem():
     return fold, sources, {"s0": (sources["s0"].user_factors_, sources["s0"].item_factors_)}
 
 
-def run(name: str, repeats: int, plain: bool) -> None:
+def run(name: str, repeats: int, plain: bool) -> dict:
     t0 = time.perf_counter()
     if name == "movielens":
         fold, sources, factors = movielens_problem()
@@ -264,8 +265,10 @@ def run(name: str, repeats: int, plain: bool) -> None:
         ratio = f"{base / t:13.1f}" if base else ""
         print(f"{label:50s} {t * 1e3:8.1f} ms {ratio}")
     print("raw kernel, weighted sum of 4 blocks + count:")
-    for label, t in kernel_comparison([engine.blocks_[n] for n in engine.names_], repeats).items():
+    kernels = kernel_comparison([engine.blocks_[n] for n in engine.names_], repeats)
+    for label, t in kernels.items():
         print(f"  {label:40s} {t * 1e3:8.1f} ms")
+    return {"users": fold.n_users, "items": fold.n_items, "steps_s": dict(rows), "kernels_s": kernels}
 
 
 def main() -> None:
@@ -274,8 +277,8 @@ def main() -> None:
     parser.add_argument("--only", choices=sorted(SHAPES) + ["movielens"])
     parser.add_argument("--no-plain", action="store_true", help="skip the (slow) plain-path baseline")
     args = parser.parse_args()
-    for name in [args.only] if args.only else ["shop", "ml1m", "movielens"]:
-        run(name, args.repeats, not args.no_plain)
+    problems = {name: run(name, args.repeats, not args.no_plain) for name in ([args.only] if args.only else ["shop", "ml1m", "movielens"])}
+    save("bench_blend", {"repeats": args.repeats, "problems": problems})
 
 
 if __name__ == "__main__":

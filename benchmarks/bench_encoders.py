@@ -32,6 +32,7 @@ import time
 from pathlib import Path
 
 import numpy as np
+from _results import save  # noqa: E402  (benchmarks/_results.py: results JSON)
 
 from xrec.encoders.base import Encoder
 from xrec.encoders.cache import EmbeddingCache
@@ -218,4 +219,4 @@ def main(argv: list[str] | None = None) -> list[dict]:
 
 
 if __name__ == "__main__":
-    main()
+    save("bench_encoders", {"rows": main()})

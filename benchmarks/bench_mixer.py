@@ -27,6 +27,7 @@ import statistics
 import time
 
 import numpy as np
+from _results import save  # noqa: E402  (benchmarks/_results.py)
 
 
 def _fit_sources(fold, content: bool) -> dict:
@@ -96,6 +97,7 @@ def main() -> None:
     sources = _fit_sources(fold, args.content)
     rng = np.random.default_rng(0)
     values = [round(float(v), 2) for v in rng.uniform(0.05, 1.0, size=args.repeats)]
+    rows = []
     for label, sample in [(f"sample {args.sample}", args.sample), ("all users", len(fold.eval_users))]:
         t = time.perf_counter()
         mixer = WeightMixer(sources, fold, baseline="popularity", ks=(10,), sample_size=sample)
@@ -116,6 +118,9 @@ def main() -> None:
             f"(best {best * 1e3:.1f}, worst {worst * 1e3:.1f})  plain path median {plain_med * 1e3:8.1f} ms  "
             f"speed-up x{plain_med / med:.1f}  goal <150 ms: {'met' if med < 0.150 else 'MISSED'}"
         )
+        rows.append({"users": label, "n_users": len(mixer.users_), "build_s": build, "move_median_s": med, "move_best_s": best,
+                     "move_worst_s": worst, "plain_median_s": plain_med})
+    save("bench_mixer", {"content": args.content, "rows": rows})
 
 
 if __name__ == "__main__":

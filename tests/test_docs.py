@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 import hashlib
+import json
 
 import pytest
 
 import xrec.docs as docs
+import xrec.docs_bench as docs_bench
 from xrec.docs import Table, check_readme, fingerprint, update_readme
 
 
@@ -27,6 +29,7 @@ def tiny_package(tmp_path, monkeypatch):
     table = Table(lambda: f"| x |\n|---|\n| {numbers['value']} |\n", cheap=True, spec=None, code=("blend", "split.py"), dataset=lambda: "data-v1")
     monkeypatch.setattr(docs, "PACKAGE", pkg)
     monkeypatch.setattr(docs, "TABLES", {"tiny": table})
+    monkeypatch.setattr(docs_bench, "BENCH", {})  # benchmark blocks have their own tests below
     return pkg, numbers
 
 
@@ -62,3 +65,72 @@ def test_update_then_check_catches_changes(tiny_package, tmp_path):
     readme.write_text("<!-- xrec:results other -->\n<!-- /xrec:results -->\n")
     problems = check_readme(readme)
     assert any(p.startswith("tiny: no") for p in problems) and any(p.startswith("other:") for p in problems)
+
+
+# --- benchmark blocks: rendered from benchmarks/results/*.json, nothing re-run ---------------
+
+
+def test_every_benchmark_script_records_its_results():
+    # Each bench_*.py writes benchmarks/results/<name>.json through benchmarks/_results.py.
+    bench = docs_bench.RESULTS.parent
+    scripts = sorted(bench.glob("bench_*.py"))
+    assert len(scripts) >= 10
+    for script in scripts:
+        text = script.read_text(encoding="utf-8")
+        assert "from _results import" in text, f"{script.name} does not record its results"
+
+
+def test_results_files_name_their_run():
+    # A figure in the README must be traceable: every results file a block uses says where it came from.
+    for name, block in docs_bench.BENCH.items():
+        for file in block.files:
+            data = json.loads((docs_bench.RESULTS / file).read_text(encoding="utf-8"))
+            assert data.get("source"), f"{file} (block {name}) has no source"
+            if "run" in data:
+                assert {"date_utc", "machine", "load_1min_at_start", "command", "commit"} <= set(data["run"])
+
+
+def _cells(block: str, column: str) -> list[str]:
+    rows = [line.strip("|").split(" | ") for line in block.splitlines() if line.startswith("|")]
+    head = [c.strip() for c in rows[0]]
+    return [r[head.index(column)].strip() for r in rows[2:]]
+
+
+def test_screen_speedups_in_readme_follow_from_the_measured_times():
+    # Speed-up = full-ranking time / screened time (definition; common practice, no source),
+    # recomputed here from the committed results files and compared with the README's cells.
+    text = docs.README.read_text(encoding="utf-8")
+    block = docs_bench._bench_blocks(text)["scale_screen"]
+    expected = []
+    for file in docs_bench.BENCH["scale_screen"].files:
+        rows = json.loads((docs_bench.RESULTS / file).read_text(encoding="utf-8"))["rows"]
+        expected += [r["full_all_users_s"] / r["screen_all_users_s"] for r in rows if r["engine"] == "screen-vs-full"]
+    shown = [float(c.strip("*").split("×")[0]) for c in _cells(block, "speed-up")]
+    assert len(shown) == len(expected) >= 5
+    for got, want in zip(shown, expected):
+        assert got == pytest.approx(want, abs=0.051 if want >= 1 else 0.0051)
+
+
+def test_bench_block_check_catches_edits_and_new_results(tmp_path, monkeypatch):
+    results = tmp_path / "results"
+    results.mkdir()
+    run = {"date_utc": "2026-01-01T00:00:00Z", "machine": {}, "load_1min_at_start": 1.0, "command": "python benchmarks/bench_vectors.py", "commit": None}
+    layouts = {k: {"seconds": s, "extra_bytes": e, "out_bytes": 1000} for k, s, e in (("baseline", 2.0, 2000), ("npy", 2.0, 2500), ("parquet", 5.0, 5000), ("safetensors", 3.0, 3000))}
+    path = results / "bench_vectors.json"
+    path.write_text(json.dumps({"run": run, "source": "test", "figures": {"items": 10, "dim": 4, "layouts": layouts}}))
+    monkeypatch.setattr(docs_bench, "BENCH", {"vectors": docs_bench.BENCH["vectors"]})
+    text, done = docs_bench.rewrite_bench("a\n<!-- xrec:bench vectors -->\nold\n<!-- /xrec:bench -->\nb\n", results=results)
+    assert done == ["vectors"] and text.startswith("a\n") and text.endswith("b\n") and "old" not in text
+    # parquet: 5.0 s / 2.0 s = 2.50 (arithmetic), extra peak 5000 B / 1000 B = 5.00
+    assert "| Parquet | 2.50 | 5.00 |" in text
+    assert docs_bench.bench_problems(text, results) == []
+    # A hand edit of a figure is caught ...
+    edited = text.replace("| 2.50 |", "| 2.40 |")
+    assert any("differs" in p and "python -m xrec.docs vectors" in p for p in docs_bench.bench_problems(edited, results))
+    # ... and so is a new results file the README was not re-rendered from.
+    layouts["parquet"]["seconds"] = 6.0
+    path.write_text(json.dumps({"run": run, "source": "test", "figures": {"items": 10, "dim": 4, "layouts": layouts}}))
+    assert any("differs" in p for p in docs_bench.bench_problems(text, results))
+    # A missing block and an unknown block are reported.
+    problems = docs_bench.bench_problems("<!-- xrec:bench other -->\n<!-- /xrec:bench -->\n", results)
+    assert any(p.startswith("vectors: no") for p in problems) and any(p.startswith("other:") for p in problems)
