@@ -111,3 +111,51 @@ def test_a_bad_file_from_outside_is_not_quoted(tmp_path) -> None:
     (project / "r.csv").write_text((elsewhere / "r.csv").read_text(encoding="utf-8"), encoding="utf-8")
     with pytest.raises(DataError, match=secret):
         run_experiment(_spec(project, {"current": {"kind": "ranking", "path": "r.csv"}}), dataset=dataset)
+
+
+def test_a_blend_file_reads_its_recorded_paths_as_written(tmp_path, capsys) -> None:
+    """Export records source files as absolute paths (checked against the spec when it ran);
+    loading the blend file reads them as recorded, also a file outside that was allowed."""
+    from xrec.blendfile import read_blend
+    from xrec.cli import main
+    from xrec.runtime import runtime_for_blend_file
+
+    project, elsewhere = tmp_path / "project", tmp_path / "elsewhere"
+    project.mkdir()
+    elsewhere.mkdir()
+    pd.DataFrame({"item": ITEMS}).to_csv(project / "items.csv", index=False)
+    events = [(f"u{u}", ITEMS[(u + t) % 6], 1_700_000_000 + 60 * (3 * u + t)) for u in range(4) for t in range(3)]
+    pd.DataFrame(events, columns=["user", "item", "timestamp"]).to_csv(project / "events.csv", index=False)
+    ranking = [(f"u{u}", ITEMS[(u + 4 + j) % 6], float(3 - j)) for u in range(4) for j in range(3)]
+    pd.DataFrame(ranking, columns=["user", "item", "score"]).to_csv(elsewhere / "current.csv", index=False)
+    spec = project / "spec.toml"
+    text = """
+[data]
+dataset = "files"
+catalog = "items.csv"
+interactions = "events.csv"
+allow_outside = true
+[split]
+rule = "leave_last"
+validation = false
+[evaluate]
+ks = [2]
+primary = "mix"
+[sources]
+current = { kind = "ranking", path = "../elsewhere/current.csv" }
+popularity = { kind = "popularity" }
+[blends]
+mix = { normalizer = "rank", weights = { current = 1.0, popularity = 0.2 } }
+"""
+    spec.write_text(text, encoding="utf-8")
+    out = tmp_path / "blend.toml"
+    assert main(["export", str(spec), "--scorer", "mix", "-o", str(out), "-q"]) == 0
+    capsys.readouterr()
+    recorded = read_blend(out).sources["current"].params["path"]
+    assert Path(recorded).is_absolute() and Path(recorded).resolve() == (elsewhere / "current.csv").resolve()
+    runtime = runtime_for_blend_file(out)
+    assert len(runtime.recommend("u1", k=2)) == 2
+    # without the opt-out the same spec is refused before anything is fitted
+    spec.write_text(text.replace("allow_outside = true\n", ""), encoding="utf-8")
+    assert main(["export", str(spec), "--scorer", "mix", "-o", str(tmp_path / "refused.toml"), "-q"]) != 0
+    assert "sources.current.path" in capsys.readouterr().err and not (tmp_path / "refused.toml").exists()

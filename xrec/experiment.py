@@ -25,6 +25,13 @@ def build_sources(spec: ExperimentSpec, *, progress: bool = False) -> dict[str, 
 
     With ``progress``, sources that can show their own bars (encoders, implicit models) do,
     unless the spec sets their ``progress`` explicitly.
+
+    Raises
+    ------
+    ConfigError
+        A file setting (:attr:`~xrec.sources.base.Source.path_settings`) leads outside the
+        spec's folder (``..``, an absolute path, a symbolic link) without
+        ``data.allow_outside = true``; the message names it, e.g. ``sources.current.path``.
     """
     from xrec._settings import setting_names
     from xrec.sources.base import source_class

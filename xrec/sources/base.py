@@ -27,7 +27,8 @@ class Source(ABC):
 
     kind: ClassVar[str] = ""
     #: settings that hold file paths (a path, a table with "path" / "ids" keys, or a table
-    #: of such tables); a spec gives them relative to the spec file
+    #: of such tables); a spec gives them relative to the spec file, inside its folder unless
+    #: ``data.allow_outside`` (checked by :func:`xrec.experiment.build_sources`)
     path_settings: ClassVar[tuple[str, ...]] = ()
 
     def __init_subclass__(cls, **kwargs: Any) -> None:
