@@ -166,10 +166,11 @@ def _load_table(data: dict[str, dict]) -> str:
     f = res["figures"]
     size = f["arrow_bytes"]
     labels = {"arrow": "`pyarrow.parquet.read_table` alone", "pandas": "`read_table(...).to_pandas()`", "xrec": "`xrec.read_interactions` (read, check, sort)"}
-    lines = ["| job | seconds | rows/s | peak RSS MB | peak / Arrow table |", "|---|---|---|---|---|"]
+    lines = ["| job | seconds | rows/s | peak RSS MB | above the process's start MB | above start / Arrow table |", "|---|---|---|---|---|---|"]
     for job, label in labels.items():
         g = f["jobs"][job]
-        lines.append(f"| {label} | {g['seconds']:.1f} | {g['rows'] / g['seconds']:,.0f} | {g['peak'] / 1e6:,.0f} | {g['peak'] / size:.2f} |")
+        above = g["peak"] - g["start"]
+        lines.append(f"| {label} | {g['seconds']:.1f} | {g['rows'] / g['seconds']:,.0f} | {g['peak'] / 1e6:,.0f} | {above / 1e6:,.0f} | {above / size:.2f} |")
     lines.append("")
     lines.append(
         f"`{res['run']['command']}`: {f['rows']:,} rows, {f['parquet_mb']:,.0f} MB of Parquet, {size / 1e6:,.0f} MB as an Arrow "
