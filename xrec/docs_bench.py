@@ -205,6 +205,25 @@ def _serve_text(data: dict[str, dict]) -> str:
     )
 
 
+def _dask_table(data: dict[str, dict]) -> str:
+    res = data["bench_dask.json"]
+    f = res["figures"]
+    lines = ["| workers | pair | one process s | sharded s | sharded / one process | task compute s | engine overhead s | cluster start s | load |", "|" + "---|" * 9]
+    for p in f["pairs"]:
+        lines.append(
+            f"| {p['workers']} | {p['pair']} | {p['one_process_s']:.1f} | {p['sharded_s']:.1f} | {p['sharded_s'] / p['one_process_s']:.2f}× | "
+            f"{p['task_compute_s']:.1f} | {p['overhead_s']:.1f} | {p['cluster_start_s']:.1f} | {p['load_1min']:.1f} |"
+        )
+    equal = "equal" if f["per_user_values_equal"] else "**differ from**"
+    lines.append("")
+    lines.append(
+        f"`{res['run']['command']}`: the {f['shape']} shape ({f['users']:,} users × {f['items']:,} items, {f['training_rows']:,} "
+        f"training rows), {f['path']} path, one-process and sharded runs alternating ({_load(res)}). The engine overhead is the "
+        f"wall time minus the shards' compute time divided by the workers. The sharded per-user values {equal} the one-process values."
+    )
+    return "\n".join(lines) + "\n"
+
+
 #: The README's benchmark blocks.
 BENCH: dict[str, BenchBlock] = {
     "scale": BenchBlock(_SCALE_RUNS, _scale_table),
@@ -213,6 +232,7 @@ BENCH: dict[str, BenchBlock] = {
     "load": BenchBlock(("bench_load.json",), _load_table),
     "vectors": BenchBlock(("bench_vectors.json",), _vectors_table),
     "serve": BenchBlock(("bench_serve.json",), _serve_text),
+    "dask": BenchBlock(("bench_dask.json",), _dask_table),
 }
 
 
