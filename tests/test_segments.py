@@ -185,3 +185,34 @@ def test_bad_labels_are_refused(fold, cards):
         cards["pop"].by_segment(labels.iloc[3:])
     with pytest.raises(ConfigError, match="pandas Series"):
         compare(cards["pop"], cards["better"], by={"a": 1}, n_resamples=10)
+
+
+def test_segment_charts_are_valid_vega_lite_and_carry_the_tables(fold, cards):
+    import altair as alt
+    import jsonschema
+    from pathlib import Path
+
+    from xrec.notebook import segment_differences, segment_means
+
+    # The published Vega-Lite JSON schema (draft-07), as shipped inside the altair package.
+    schema = json.loads((Path(alt.__file__).parent / "vegalite" / "v6" / "schema" / "vega-lite-schema.json").read_text())
+    validator = jsonschema.Draft7Validator(schema)
+    labels = [segment_labels(fold, "item_segment"), segment_labels(fold, "kind")]
+    means = segment_means(cards, "hit_rate@10", labels)
+    cmp = compare(cards["pop"], cards["better"], cards["noise"], metrics=["hit_rate@10"], by=labels, n_resamples=300)
+    diffs = segment_differences(cmp, "hit_rate@10")
+    for chart in (means, diffs):
+        spec = chart.to_dict()
+        errors = list(validator.iter_errors(spec))
+        assert not errors, errors[0].message
+    rows = [r for values in diffs.to_dict()["datasets"].values() for r in values if "by" in r]  # the zero rule has no rows
+    table = cmp.segments
+    assert len(rows) == len(table)
+    for r in rows:
+        ref = table[(table["by"] == r["by"]) & (table["segment"] == r["segment"]) & (table["candidate"] == r["candidate"])].iloc[0]
+        assert r["difference"] == pytest.approx(ref["difference"])
+        assert r["segment_n"] == f"{r['segment']} (n={ref['n_users']})"
+    with pytest.raises(ConfigError, match="no segments"):
+        segment_differences(compare(cards["pop"], cards["better"], n_resamples=10))
+    with pytest.raises(ConfigError, match="not in the segment table"):
+        segment_differences(cmp, "ndcg@5")
