@@ -18,7 +18,7 @@ import pandas as pd
 from xrec.errors import ConfigError, DataError
 from xrec.notebook.charts import BASELINE_COLOR, BETTER_COLOR, UNCLEAR_COLOR
 
-__all__ = ["segment_differences", "segment_means"]
+__all__ = ["segment_differences", "segment_means", "segment_section"]
 
 SMALL_COLOR = "#d9d9d9"
 
@@ -140,3 +140,65 @@ def segment_differences(
         return alt.layer(zero, err, dot).properties(width=width, height=alt.Step(12))
 
     return _panels(rows, draw, title or f"Paired differences by segment ({metric}; 95% CI, Holm over segments)")
+
+
+def segment_section(
+    cards: Mapping[str, Any],
+    fold: Any,
+    baseline: str,
+    candidates: list[str],
+    by: tuple[str, ...] = ("item_segment", "user_segment"),
+    *,
+    metric: str = "hit_rate@10",
+    seed: int = 0,
+    n_resamples: int = 2000,
+) -> tuple[dict[str, Any], dict[str, Any]]:
+    """Report sections and JSON payload of results by segment, for a page of charts.
+
+    Parameters
+    ----------
+    cards
+        Scorecards by name, all on ``fold``.
+    fold
+        The fold the scorecards were evaluated on (segment labels come from it).
+    baseline, candidates
+        Names in ``cards`` compared segment by segment.
+    by
+        Breakdowns (see :func:`xrec.evaluate.segments.segment_labels`).
+    metric
+        The metric drawn.
+    seed, n_resamples
+        Resampling of the intervals and tests.
+
+    Returns
+    -------
+    (dict, dict)
+        Heading -> chart or HTML for :func:`~xrec.notebook.charts_to_html`, and a plain
+        payload ``{"scorecards": rows, "comparison": rows}`` for a JSON file.
+    """
+    from xrec.evaluate import compare
+    from xrec.evaluate.breakdown import MIN_SEGMENT_USERS, segment_labels
+
+    labels = [segment_labels(fold, name) for name in by]
+    names = [baseline, *candidates]
+    table = pd.concat([cards[n].by_segment(labels, [metric], seed=seed, n_resamples=n_resamples).assign(scorer=n) for n in names],
+                      ignore_index=True)
+    comparison = compare(cards[baseline], *(cards[n] for n in candidates), metrics=[metric], by=labels, seed=seed, n_resamples=n_resamples)
+    note = (
+        f"<p>Each segment has its own 95% bootstrap interval; the paired differences are tested segment by segment and "
+        f"adjusted by Holm (1979) over the segments. Item segment: the held-out item is <i>new</i> (no training "
+        f"interactions), <i>head</i> (among the most-bought items that hold half of all training interactions) or "
+        f"<i>tail</i> (the rest); user segment: the shopper's number of training interactions. Segments under "
+        f"{MIN_SEGMENT_USERS} users are drawn pale: too few to say anything.</p>"
+    )
+    sections = {
+        f"Results by segment ({metric})": segment_means(table, metric),
+        f"Differences vs {baseline} by segment": segment_differences(comparison, metric),
+        "Reading the segment panels": note,
+    }
+    payload = {"scorecards": _records(table), "comparison": comparison.to_dict().get("segments", [])}
+    return sections, payload
+
+
+def _records(table: pd.DataFrame) -> list[dict]:
+    return table.astype(object).where(table.notna(), None).to_dict(orient="records")
