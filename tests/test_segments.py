@@ -161,6 +161,10 @@ def test_segment_comparison_is_the_comparison_of_each_segment_with_holm_over_seg
         expected = np.empty_like(p)
         expected[order] = np.minimum(1, np.maximum.accumulate((len(p) - np.arange(len(p))) * p[order]))
         np.testing.assert_allclose(family["p_holm_segments"], expected)
+        # Source: statsmodels.stats.multitest.multipletests(method="holm") on the same family.
+        from statsmodels.stats.multitest import multipletests
+
+        np.testing.assert_allclose(family["p_holm_segments"], multipletests(p, method="holm")[1])
     plain = json.loads(json.dumps(cmp.to_dict()))
     assert len(plain["segments"]) == len(seg) and plain["settings"]["min_users"] == 5
 
@@ -168,14 +172,14 @@ def test_segment_comparison_is_the_comparison_of_each_segment_with_holm_over_seg
 def test_holm_over_segments_on_a_worked_example():
     from xrec.evaluate._stats import holm
 
-    # Holm (1979) worked by hand for three segments: p = (0.010, 0.040, 0.030)
-    # sorted 0.010, 0.030, 0.040 -> 3*0.010 = 0.030, 2*0.030 = 0.060, 1*0.040 = 0.040 -> running max 0.060.
-    np.testing.assert_allclose(holm(np.array([0.010, 0.040, 0.030])), [0.030, 0.060, 0.060])
-    try:
-        from statsmodels.stats.multitest import multipletests
-    except ImportError:
-        return
-    p = np.array([0.2, 0.001, 0.5, 0.012, 0.04])
+    # Holm (1979) worked by hand for four segments, p = (0.004, 0.030, 0.020, 0.600):
+    # sorted 0.004, 0.020, 0.030, 0.600; scaled by 4, 3, 2, 1 -> 0.016, 0.060, 0.060, 0.600;
+    # running maximum -> 0.016, 0.060, 0.060, 0.600; back in segment order:
+    np.testing.assert_allclose(holm(np.array([0.004, 0.030, 0.020, 0.600])), [0.016, 0.060, 0.060, 0.600])
+    # Only the first segment stays under 0.05 after the adjustment, though three were before it.
+    from statsmodels.stats.multitest import multipletests
+
+    p = np.array([0.004, 0.030, 0.020, 0.600, 0.049])
     np.testing.assert_allclose(holm(p), multipletests(p, method="holm")[1])  # Source: statsmodels
 
 

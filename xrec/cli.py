@@ -56,10 +56,12 @@ def _cmd_compare(args: argparse.Namespace) -> int:
     else:
         print(format_comparison(comparison))
         if len(comparison.segments):
-            from xrec.report import format_segment_comparison
+            from xrec._validation import parse_metric_column
+            from xrec.report import HEADLINE_METRICS, format_segment_comparison
 
             for metric in comparison.segments["metric"].unique():
-                print("\n" + format_segment_comparison(comparison, metric))
+                if parse_metric_column(metric)[0] in HEADLINE_METRICS:  # every metric: --json
+                    print("\n" + format_segment_comparison(comparison, metric))
     return 0
 
 
