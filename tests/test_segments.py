@@ -188,7 +188,18 @@ def test_bad_labels_are_refused(fold, cards):
     with pytest.raises(DataError, match="no segment label"):
         cards["pop"].by_segment(labels.iloc[3:])
     with pytest.raises(ConfigError, match="pandas Series"):
-        compare(cards["pop"], cards["better"], by={"a": 1}, n_resamples=10)
+        compare(cards["pop"], cards["better"], by=[{"a": 1}], n_resamples=10)
+    with pytest.raises(ConfigError, match="needs fold="):
+        cards["pop"].by_segment("item_segment")
+
+
+def test_breakdowns_by_name_equal_breakdowns_by_labels(fold, cards):
+    by_name = cards["better"].by_segment(["item_segment", "kind"], ["ndcg@10"], fold=fold)
+    by_labels = cards["better"].by_segment([segment_labels(fold, "item_segment"), segment_labels(fold, "kind")], ["ndcg@10"])
+    pd.testing.assert_frame_equal(by_name, by_labels)
+    a = compare(cards["pop"], cards["better"], metrics=["ndcg@10"], by="user_segment", fold=fold, n_resamples=200)
+    b = compare(cards["pop"], cards["better"], metrics=["ndcg@10"], by=segment_labels(fold, "user_segment"), n_resamples=200)
+    pd.testing.assert_frame_equal(a.segments, b.segments)
 
 
 def test_segment_charts_are_valid_vega_lite_and_carry_the_tables(fold, cards):

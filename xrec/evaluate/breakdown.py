@@ -27,6 +27,7 @@ __all__ = [
     "SEGMENT_SUMMARY_COLUMNS",
     "bucket_labels",
     "check_labels",
+    "label_list",
     "item_segments",
     "segment_labels",
     "segment_order",
@@ -243,3 +244,17 @@ def segment_summary(
                 lo, hi = percentile_interval(bootstrap_means(x, n_resamples, seed), confidence)
             rows.append((str(labels.name), name, col, len(v), float(x.mean()) if len(x) else np.nan, lo, hi, small))
     return pd.DataFrame(rows, columns=SEGMENT_SUMMARY_COLUMNS)
+
+
+def label_list(by: Any, fold: Any = None) -> list[pd.Series]:
+    """``by`` as a list of label Series: a Series, a breakdown name, or a sequence of either
+    (names need the ``fold`` they are computed on, through :func:`segment_labels`)."""
+    many = [by] if isinstance(by, (pd.Series, str)) else list(by)
+    out = []
+    for entry in many:
+        if isinstance(entry, str):
+            if fold is None:
+                raise ConfigError(f"by: the breakdown name {entry!r} needs fold= (or pass segment_labels(fold, {entry!r}))")
+            entry = segment_labels(fold, entry)
+        out.append(entry)
+    return out

@@ -5,6 +5,7 @@ from __future__ import annotations
 import html
 from collections.abc import Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -12,7 +13,7 @@ import pandas as pd
 from xrec._validation import check_int
 from xrec.errors import ConfigError, DataError
 from xrec.evaluate._stats import bootstrap_means, holm, percentile_interval, sign_flip_pvalue
-from xrec.evaluate.breakdown import MIN_SEGMENT_USERS, check_labels, segment_order
+from xrec.evaluate.breakdown import MIN_SEGMENT_USERS, check_labels, label_list, segment_order
 from xrec.evaluate.scorecard import Scorecard, plain
 
 TABLE_COLUMNS = [
@@ -109,8 +110,9 @@ def compare(
     n_resamples: int = 10_000,
     confidence: float = 0.95,
     seed: int = 0,
-    by: pd.Series | Sequence[pd.Series] | None = None,
+    by: pd.Series | str | Sequence[pd.Series | str] | None = None,
     min_users: int = MIN_SEGMENT_USERS,
+    fold: Any = None,
 ) -> Comparison:
     """Paired comparison of one or more candidates against a baseline, metric by metric.
 
@@ -147,8 +149,12 @@ def compare(
         (1979) over the segments of the breakdown (per metric and candidate; the family is
         every segment with a test). Segments under ``min_users`` users are flagged ``small``:
         means only, no interval and no test.
+        A breakdown may also be given by name (``"item_segment"``, ``"user_segment"``, a
+        catalog column) together with ``fold``.
     min_users
         Smallest segment that gets an interval and a test.
+    fold
+        The fold the scorecards were evaluated on, when ``by`` names breakdowns.
 
     Raises
     ------
@@ -244,7 +250,7 @@ def compare(
     if by is not None:
         check_int(min_users, "min_users", low=1)
         result.settings["min_users"] = int(min_users)
-        many = [by] if isinstance(by, pd.Series) else list(by)
+        many = label_list(by, fold)
         options = {"metrics": metrics, "n_resamples": n_resamples, "confidence": confidence, "seed": seed}
         result.segments = pd.DataFrame(
             [row for labels in many for row in _segment_rows(cards, names, labels, base_users, min_users, options)],

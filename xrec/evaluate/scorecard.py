@@ -13,7 +13,7 @@ import pandas as pd
 from xrec._validation import parse_metric_column
 from xrec.errors import ConfigError
 from xrec.evaluate._stats import bootstrap_means, percentile_interval
-from xrec.evaluate.breakdown import MIN_SEGMENT_USERS, segment_summary
+from xrec.evaluate.breakdown import MIN_SEGMENT_USERS, label_list, segment_summary
 
 
 def plain(value: Any) -> Any:
@@ -136,9 +136,10 @@ class Scorecard:
 
     def by_segment(
         self,
-        labels: pd.Series | Sequence[pd.Series],
+        labels: pd.Series | str | Sequence[pd.Series | str],
         metrics: Sequence[str] | None = None,
         *,
+        fold: Any = None,
         confidence: float = 0.95,
         seed: int = 0,
         n_resamples: int = 2000,
@@ -154,9 +155,12 @@ class Scorecard:
         ----------
         labels
             Segment label per user, a Series indexed by user index (named after the
-            breakdown), e.g. ``segment_labels(fold, "item_segment")``; or several such Series.
+            breakdown), e.g. ``segment_labels(fold, "item_segment")``; a breakdown name
+            (``"item_segment"``, ``"user_segment"``, a catalog column) with ``fold``; or several.
         metrics
             Per-user metric columns; default all.
+        fold
+            The fold this scorecard was evaluated on, when breakdowns are given by name.
         confidence, seed, n_resamples
             As in :meth:`summary`.
         min_users
@@ -167,7 +171,7 @@ class Scorecard:
         DataFrame
             Columns ``by, segment, metric, n_users, mean, ci_low, ci_high, small``.
         """
-        many = [labels] if isinstance(labels, pd.Series) else list(labels)
+        many = label_list(labels, fold)
         frames = [
             segment_summary(self.per_user, s, metrics=metrics, confidence=confidence, seed=seed,
                             n_resamples=n_resamples, min_users=min_users)
