@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 
 import pytest
 
@@ -134,3 +135,31 @@ def test_bench_block_check_catches_edits_and_new_results(tmp_path, monkeypatch):
     # A missing block and an unknown block are reported.
     problems = docs_bench.bench_problems("<!-- xrec:bench other -->\n<!-- /xrec:bench -->\n", results)
     assert any(p.startswith("vectors: no") for p in problems) and any(p.startswith("other:") for p in problems)
+
+
+# Figures with a unit outside the generated blocks, in sections that cite a benchmark script,
+# that are not measurements of a benchmark run: each with the reason it may stay in prose.
+_PROSE_FIGURES = {
+    "13.7×": "bridge recall, measured in tests/test_bridge.py",
+    "12.9×": "bridge recall, measured in tests/test_bridge.py",
+    "1.2×": "bridge recall, measured in tests/test_bridge.py",
+    "5.2×": "bridge recall, measured in tests/test_bridge.py",
+    "50 ms": "the service's latency goal, not a measurement",
+    "64 MiB": "a setting of evaluate_blend_chunked",
+    "5.2 GB": "arithmetic: 10^7 × 129 × 4 bytes",
+    "3 GB": "arithmetic on the same item side, in 4 slices",
+}
+_UNIT = re.compile(r"\d[\d,.]*(?:·10\^\d+)? ?(?:ms|s|GB|MB|MiB|requests/s|img/s|texts/s|cells/s|×)(?![\w^])")
+
+
+def test_no_hand_typed_benchmark_figures_outside_blocks():
+    # "Numbers in the README come from real runs": in a section that cites benchmarks/, a
+    # measured figure belongs in an <!-- xrec:bench --> block rendered from its results file.
+    text = re.sub(r"<!-- xrec:(bench|results) [\w-]+ -->.*?<!-- /xrec:(bench|results) -->", "", docs.README.read_text(encoding="utf-8"), flags=re.S)
+    text = re.sub(r"```.*?```", "", text, flags=re.S)
+    found = []
+    for section in re.split(r"\n(?=## )", text):
+        if "benchmarks/" in section:
+            title = section.splitlines()[0]
+            found += [f"{title}: {m.group(0)!r}" for m in _UNIT.finditer(section) if m.group(0) not in _PROSE_FIGURES]
+    assert not found, "hand-typed benchmark figures (render them from benchmarks/results, see DEVELOPERS.md 'README numbers'):\n" + "\n".join(found)
