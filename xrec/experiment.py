@@ -175,7 +175,33 @@ def run_experiment(
     if only is None and baseline is not None and len(scorecards) > 1:
         others = [card for name, card in scorecards.items() if name != baseline]
         comparison = compare(scorecards[baseline], *others, seed=int(spec.evaluate.get("seed", 0)))
-    return ExperimentResult(spec, dataset, split, scorers, scorecards, comparison, extras={"learned": learned})
+    extras: dict[str, Any] = {"learned": learned}
+    overlap_k = int(spec.evaluate.get("overlap", 0))
+    if comparison is not None and overlap_k:
+        from xrec.evaluate.overlap import top_list_change
+
+        # How much of each top-K list changes against the baseline (evaluate.overlap = K).
+        extras["top_lists"] = {
+            name: top_list_change(scorers[baseline], scorers[name], fold, k=overlap_k, names=(baseline, name))
+            for name in scorecards if name != baseline
+        }
+    if only is None and spec.evaluate.get("pairs"):
+        extras["pairs"] = _paired_runs(spec, scorers, scorecards, fold, overlap_k)
+    return ExperimentResult(spec, dataset, split, scorers, scorecards, comparison, extras=extras)
+
+
+def _paired_runs(spec: ExperimentSpec, scorers: dict, scorecards: dict, fold: Any, overlap_k: int) -> list[dict[str, Any]]:
+    """``evaluate.pairs``: each (baseline, candidate) pair compared on its own, with top-list overlap."""
+    from xrec.evaluate import compare
+    from xrec.evaluate.overlap import top_list_change
+
+    runs = []
+    for base, cand in spec.evaluate["pairs"]:
+        run: dict[str, Any] = {"comparison": compare(scorecards[base], scorecards[cand], seed=int(spec.evaluate.get("seed", 0)))}
+        if overlap_k:
+            run["top_lists"] = top_list_change(scorers[base], scorers[cand], fold, k=overlap_k, names=(base, cand))
+        runs.append(run)
+    return runs
 
 
 def _blend_source_names(table: dict[str, Any], sources: dict[str, Source]) -> list[str]:

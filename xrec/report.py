@@ -65,6 +65,14 @@ def format_experiment(result: ExperimentResult) -> str:
                   f"(best single source {rec['best_single']}: {rec['best_single_validation']:.4f}); weights {weights}{gated}"]
     if result.comparison is not None:
         parts += ["", format_comparison(result.comparison, HEADLINE_METRICS), "(every metric's comparison: --json)"]
+    changes = result.extras.get("top_lists", {})
+    if changes:
+        parts += ["", "Top-list overlap with the baseline (share of each user's top-K kept):"]
+        parts += [change.describe() for change in changes.values()]
+    for run in result.extras.get("pairs", []):
+        parts += ["", format_comparison(run["comparison"], HEADLINE_METRICS)]
+        if "top_lists" in run:
+            parts.append(run["top_lists"].describe())
     return "\n".join(parts)
 
 
@@ -103,4 +111,8 @@ def experiment_payload(result: ExperimentResult) -> dict[str, Any]:
         out["comparison"] = result.comparison.to_dict()
     if result.extras.get("learned"):
         out["learned"] = result.extras["learned"]
+    if result.extras.get("top_lists"):
+        out["top_lists"] = {name: change.to_dict() for name, change in result.extras["top_lists"].items()}
+    if result.extras.get("pairs"):
+        out["pairs"] = [{key: value.to_dict() for key, value in run.items()} for run in result.extras["pairs"]]
     return out

@@ -16,6 +16,8 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     baseline = "popularity"      # the source or blend the others are compared with
     # primary = "als_genres"     # the scorer `xrec compare` / `xrec export` use (default: first blend)
     # protocol = "sampled"       # full ranking unless asked; sampled takes `negatives`
+    # overlap = 10               # also report each scorer's top-10 overlap with the baseline
+    # pairs = [["als", "als_genres"]]  # extra paired comparisons, each against its own baseline
 
     [sources.popularity]
     kind = "popularity"
@@ -65,7 +67,7 @@ _DATA_KEYS = {
     "categorical", "multilabel", "numeric", "text", "image", "image_root", "name",
 }
 _SPLIT_KEYS = {"rule", "seed", "validation", "test_fraction", "cutoff", "cold_fraction", "min_train"}
-_EVAL_KEYS = {"ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size"}
+_EVAL_KEYS = {"ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size", "overlap", "pairs"}
 _BLEND_KEYS = {"weights", "normalizer", "sources", "method", "metric", "gated", "fusion", "k", "depth", "seed"}
 _LEARN_METHODS = ("coordinate_ascent", "optuna", "logistic")
 _FUSIONS = ("rrf", "combsum", "combmnz")
@@ -203,7 +205,7 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
     unknown = [m for m in metrics if m not in ALL_METRICS]
     if unknown:
         raise ConfigError(f"evaluate.metrics: unknown metric name(s) {unknown}; known: {list(ALL_METRICS)}")
-    for key, lowest in (("chunk_size", 1), ("negatives", 1), ("seed", 0)):
+    for key, lowest in (("chunk_size", 1), ("negatives", 1), ("seed", 0), ("overlap", 1)):
         _check_int(evaluate, key, lowest, "evaluate")
     sources = _check_table(raw.get("sources", {}), "sources")
     if not sources:
@@ -224,6 +226,13 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
         value = evaluate.get(key)
         if value is not None and value not in sources and value not in blends:
             raise ConfigError(f"evaluate.{key}: {value!r} is neither a source nor a blend")
+    pairs = evaluate.get("pairs", [])
+    if not isinstance(pairs, list) or not all(isinstance(p, list) and len(p) == 2 for p in pairs):
+        raise ConfigError(f"evaluate.pairs: must be a list of [baseline, candidate] name pairs, got {pairs!r}")
+    for pair in pairs:
+        for value in pair:
+            if value not in sources and value not in blends:
+                raise ConfigError(f"evaluate.pairs: {value!r} is neither a source nor a blend")
     return ExperimentSpec(
         data=data,
         split=split,
