@@ -109,3 +109,40 @@ def test_auto_falls_back_to_pytorch_without_onnxruntime(monkeypatch) -> None:
     assert enc._runtime() == "torch" and not enc.identity.endswith(":onnxruntime")
     with pytest.raises(ConfigError, match="pip install onnxruntime"):
         EfficientNetLite0Encoder(runtime="onnx")._runtime()
+
+
+def test_clip_image_tower_through_onnx_runtime(tmp_path) -> None:
+    from test_clip import TINY
+
+    from xrec.encoders.clip import ClipEncoders
+
+    path = _tiny_clip(tmp_path)
+    onnx = ClipEncoders(TINY, weights=path, batch_size=2, runtime="onnx", graph_dir=tmp_path).load()
+    torch_ = ClipEncoders(TINY, weights=path, batch_size=2, runtime="torch").load()
+    assert onnx.image_graph_ is not None and torch_.image_graph_ is None
+    images = [_png(skdata.chelsea()), _png(skdata.coffee()), _png(skdata.rocket())]
+    a, b = onnx.image.encode(images), torch_.image.encode(images)
+    # The reference is open_clip's own encode_image on the same weights.
+    assert float(np.abs(a - b).max()) < 1e-4
+    assert onnx.image.identity == torch_.image.identity + ":onnxruntime"
+    assert onnx.text.identity == torch_.text.identity  # the text tower stays on PyTorch
+    with pytest.raises(ConfigError, match="weights file"):
+        ClipEncoders(TINY, pretrained_tag="openai", runtime="onnx").image_runtime()
+    assert ClipEncoders(TINY, pretrained_tag="openai").image_runtime() == "torch"
+
+
+def _tiny_clip(folder: Path) -> Path:
+    """A randomly initialised tiny CLIP saved as a weights file (test_clip.py's configuration)."""
+    import json
+
+    import open_clip
+    import torch
+    from test_clip import TINY, TINY_CONFIG
+
+    (folder / f"{TINY}.json").write_text(json.dumps(TINY_CONFIG))
+    open_clip.add_model_config(folder / f"{TINY}.json")
+    torch.manual_seed(0)
+    model = open_clip.create_model(TINY, pretrained=None)
+    path = folder / "tiny.pt"
+    torch.save(model.state_dict(), path)
+    return path

@@ -78,20 +78,27 @@ def _export(module: Any, example: Any, path: Path, input_name: str, output_names
     import torch
 
     buf = io.BytesIO()
-    with warnings.catch_warnings(), torch.inference_mode(False), torch.no_grad():
-        # The TorchScript exporter is deprecated in favour of the dynamo one; it still works
-        # offline with only the onnx package, which the dynamo exporter does not.
-        warnings.simplefilter("ignore")
-        torch.onnx.export(
-            module,
-            (example,),
-            buf,
-            dynamo=False,
-            input_names=[input_name],
-            output_names=list(output_names),
-            dynamic_axes={input_name: {0: "n"}, **{o: {0: "n"} for o in output_names}},
-            opset_version=_OPSET,
-        )
+    fastpath = torch.backends.mha.get_fastpath_enabled()
+    # nn.MultiheadAttention's fused inference kernel (CLIP's ViT) has no ONNX form; the plain
+    # path it falls back to computes the same attention.
+    torch.backends.mha.set_fastpath_enabled(False)
+    try:
+        with warnings.catch_warnings(), torch.inference_mode(False), torch.no_grad():
+            # The TorchScript exporter is deprecated in favour of the dynamo one; it still works
+            # offline with only the onnx package, which the dynamo exporter does not.
+            warnings.simplefilter("ignore")
+            torch.onnx.export(
+                module,
+                (example,),
+                buf,
+                dynamo=False,
+                input_names=[input_name],
+                output_names=list(output_names),
+                dynamic_axes={input_name: {0: "n"}, **{o: {0: "n"} for o in output_names}},
+                opset_version=_OPSET,
+            )
+    finally:
+        torch.backends.mha.set_fastpath_enabled(fastpath)
     path.parent.mkdir(parents=True, exist_ok=True)
     write_bytes_atomic(path, buf.getvalue())
 
