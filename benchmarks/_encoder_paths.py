@@ -67,9 +67,10 @@ def text_flops(encoder, texts: list[str], batch_size: int = 32) -> float:
 
     model = encoder.model_
     order = sorted(texts, key=len)
+    prepare = getattr(model, "preprocess", None) or model.tokenize  # renamed in sentence-transformers 5
     with torch.inference_mode(), FlopCounterMode(display=False) as counter:
         for start in range(0, len(order), batch_size):
-            features = model.tokenize(order[start : start + batch_size])
+            features = prepare(order[start : start + batch_size])
             model(features)
     return float(counter.get_total_flops()) / len(texts)
 

@@ -253,7 +253,8 @@ def paths_report(args) -> list[dict]:
               + ", ".join(f"{t} thread(s) {v / 1e9:.1f} GFLOP/s" for t, v in limits.best.items()), flush=True)
     for r in table:
         print(f"  {r['what']:>18} {r['path']:>5} threads {r['threads']} batch {r['batch']:>2}: "
-              f"{r['per_s']:7.1f}/s  {100 * r['share']:5.1f}% of the FLOP limit", flush=True)
+              f"{r['per_s']:7.1f}/s  {100 * r['share']:5.1f}% of the FLOP limit"
+              + (" (float32-equivalent)" if r["path"] == "int8" else ""), flush=True)
     _print_ratios(table)
     rows += table
     if args.demo:
@@ -284,9 +285,6 @@ def _demo_texts(n: int) -> list[str]:
 
 def _print_ratios(table: list[dict]) -> None:
     best = {}
-    if table:
-        print("float32 matmul probe, best over the run: "
-              + ", ".join(f"{t} thread(s) {v / 1e9:.1f} GFLOP/s" for t, v in limits.best.items()), flush=True)
     for r in table:
         key = (r["what"], r["path"])
         if key not in best or r["per_s"] > best[key]["per_s"]:
@@ -296,6 +294,10 @@ def _print_ratios(table: list[dict]) -> None:
             a, b = best[(what, fast)], best[(what, slow)]
             print(f"{what}: best {fast} {a['per_s']:.1f}/s (batch {a['batch']}, {a['threads']} threads) vs best {slow} "
                   f"{b['per_s']:.1f}/s (batch {b['batch']}, {b['threads']} threads): x{a['per_s'] / b['per_s']:.2f}", flush=True)
+            rate = {(r["path"], r["threads"], r["batch"]): r["per_s"] for r in table if r["what"] == what}
+            ratios = [rate[(fast, t, bs)] / rate[(slow, t, bs)] for (p, t, bs) in rate if p == fast and (slow, t, bs) in rate]
+            print(f"  {fast}/{slow} at the same threads and batch: median x{np.median(ratios):.2f} "
+                  f"(range x{min(ratios):.2f} to x{max(ratios):.2f}, {len(ratios)} settings)", flush=True)
 
 
 if __name__ == "__main__":

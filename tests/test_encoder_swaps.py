@@ -140,3 +140,16 @@ def test_spec_pairs_and_overlap(tmp_path) -> None:
         parse_spec({**base, "evaluate": {"pairs": ["a"]}})
     with pytest.raises(ConfigError, match="evaluate.overlap"):
         parse_spec({**base, "evaluate": {"overlap": 0}})
+
+
+@pytest.mark.slow
+def test_builtin_encoder_swap_spec_on_the_demo_shop() -> None:
+    result = run_experiment(load_spec("demo_encoders"))
+    assert result.comparison.baseline == "text_fp32"
+    int8 = result.extras["top_lists"]["text_int8"]
+    assert int8.k == 10 and 0.0 < int8.mean < 1.0  # int8 vectors move some items, not all
+    (images,) = result.extras["pairs"]
+    # ONNX Runtime and PyTorch agree to ~1e-6 per vector: the same top-10 lists, the same scores
+    assert images["top_lists"].mean > 0.99
+    table = images["comparison"].table
+    assert (table["difference"].abs() < 1e-9).all()

@@ -192,13 +192,13 @@ class EfficientNetLite0Encoder(Encoder):
 
     @property
     def identity(self) -> str:  # type: ignore[override]
-        """Architecture, the first 16 hex digits of the weights file's hash, the crop below 1,
-        and ``:onnxruntime`` when the network runs through ONNX Runtime."""
+        """Architecture, the first 16 hex digits of the weights file's hash, ``:onnxruntime``
+        when the network runs through ONNX Runtime, and the crop below 1."""
         base = f"efficientnet-lite0-in1k:{_ARCH}:{self._weights_hash()[:16]}"
         # the whole image on PyTorch keeps the identity it always had, so existing entries stay valid
-        if self.crop != 1.0:
-            base = f"{base}:crop{float(self.crop):g}"
-        return f"{base}:onnxruntime" if self._runtime() == "onnx" else base
+        if self._runtime() == "onnx":
+            base = f"{base}:onnxruntime"
+        return base if self.crop == 1.0 else f"{base}:crop{float(self.crop):g}"
 
     def _runtime(self) -> str:
         return resolve_runtime(self.runtime, "image encoder")
@@ -385,8 +385,9 @@ class EfficientNetLite0Encoder(Encoder):
 
     def _forward(self, batch: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """L2-normalized features and class probabilities of one preprocessed batch."""
-        if self.graph_ is not None:
-            vectors, probs = self.graph_.run(batch)
+        graph = getattr(self, "graph_", None)
+        if graph is not None:
+            vectors, probs = graph.run(batch)
             return vectors, probs
         import torch
 
