@@ -83,7 +83,8 @@ class Limit:
     """The FLOP limit per thread count: the best ``torch.mm`` rate seen, probed before each measurement.
 
     On a loaded machine a single probe can land on a busy moment; taking the best over the
-    whole run gives the rate the cores reach when free, so shares are never flattered.
+    whole run (and, for two threads, at least twice the one-thread best) gives the rate the
+    cores reach when free, so shares are not flattered by a busy probe.
     """
 
     def __init__(self) -> None:
@@ -91,6 +92,11 @@ class Limit:
 
     def probe(self, threads: int) -> None:
         self.best[threads] = max(self.best[threads], flop_rate(threads, repeats=3))
+
+    def rate(self, threads: int) -> float:
+        """FLOP/s the cores can do at ``threads``: the best probe, and at least ``threads`` x the
+        one-thread best (a loaded machine rarely shows two free cores at once)."""
+        return max(self.best[threads], threads * self.best[1])
 
 
 def _paired(encoders: dict[str, object], contents: list, bs: int, limit: Limit, threads: int, rounds: int = 2) -> dict[str, float]:
@@ -130,7 +136,7 @@ def image_paths(images: list[bytes], limit: Limit, n: int) -> tuple[list[dict], 
         measured += [("image forward only", runtime, threads, len(batch), per_s) for runtime, per_s in best.items()]
     for what, path, threads, bs, per_s in measured:
         rows.append({"what": what, "path": path, "threads": threads, "batch": bs, "per_s": per_s,
-                     "share": per_s * flops / limit.best[threads]})
+                     "share": per_s * flops / limit.rate(threads)})
     return rows, flops
 
 
@@ -148,7 +154,7 @@ def text_paths(texts: list[str], limit: Limit, n: int) -> tuple[list[dict], floa
         for bs in BATCHES:
             for precision, per_s in _paired(encoders, texts[: max(n, bs)], bs, limit, threads).items():
                 measured.append((precision, threads, bs, per_s))
-    rows = [{"what": "text", "path": p, "threads": t, "batch": bs, "per_s": v, "share": v * flops / limit.best[t]}
+    rows = [{"what": "text", "path": p, "threads": t, "batch": bs, "per_s": v, "share": v * flops / limit.rate(t)}
             for p, t, bs, v in measured]
     return rows, flops
 

@@ -250,7 +250,8 @@ def paths_report(args) -> list[dict]:
         table += text_rows
     if table:
         print("float32 matmul probe, best over the run: "
-              + ", ".join(f"{t} thread(s) {v / 1e9:.1f} GFLOP/s" for t, v in limits.best.items()), flush=True)
+              + ", ".join(f"{t} thread(s) {v / 1e9:.1f} GFLOP/s" for t, v in limits.best.items())
+              + "; limit used: " + ", ".join(f"{t} thread(s) {limits.rate(t) / 1e9:.1f}" for t in limits.best), flush=True)
     for r in table:
         print(f"  {r['what']:>18} {r['path']:>5} threads {r['threads']} batch {r['batch']:>2}: "
               f"{r['per_s']:7.1f}/s  {100 * r['share']:5.1f}% of the FLOP limit"
