@@ -9,67 +9,15 @@ from typing import Any
 import pandas as pd
 
 from xrec.data.dataset import Dataset
-from xrec.errors import ConfigError, DataError
+from xrec.data.location import load_dataset
+from xrec.errors import ConfigError
 from xrec.spec import ExperimentSpec
 from xrec.sources.base import Source, make_source
 
 
 def load_spec_dataset(spec: ExperimentSpec, *, progress: bool = False) -> Dataset:
-    """The dataset a spec names."""
-    data = spec.data
-    kind = data.get("dataset", "movielens")
-    if kind == "movielens":
-        from xrec.data.movielens import load_movielens
-
-        folder = data.get("folder")
-        return load_movielens(spec.resolve(folder) if folder else None, progress=progress)
-    if kind == "demo_shop":
-        from xrec.data.demo import load_demo_shop
-
-        folder = data.get("folder")
-        return load_demo_shop(spec.resolve(folder) if folder else None)
-    return _load_files(spec)
-
-
-def _load_files(spec: ExperimentSpec) -> Dataset:
-    from xrec.data.catalog import Catalog
-    from xrec.data.interactions import Interactions
-
-    data = spec.data
-    catalog_path, inter_path = spec.resolve(data["catalog"]), spec.resolve(data["interactions"])
-    for key, p in (("catalog", catalog_path), ("interactions", inter_path)):
-        if not p.is_file():
-            raise ConfigError(f"data.{key}: file not found: {p}")
-    item_col = data.get("item_col", "item")
-    catalog = Catalog.from_frame(
-        # Ids are read as text in both files, else "007" in the catalog would become 7 and
-        # no longer match the interactions' "007".
-        _read_csv(catalog_path, "catalog", {item_col: str}),
-        item_col=data.get("item_col", "item"),
-        categorical=data.get("categorical", ()),
-        multilabel=data.get("multilabel", ()),
-        numeric=data.get("numeric", ()),
-        text=data.get("text", ()),
-        image=data.get("image"),
-        image_root=spec.resolve(data.get("image_root", str(catalog_path.parent))),
-    )
-    frame = _read_csv(inter_path, "interactions", {data.get("user_col", "user"): str, item_col: str})
-    interactions = Interactions.from_frame(
-        frame,
-        user_col=data.get("user_col", "user"),
-        item_col=data.get("item_col", "item"),
-        time_col=data.get("time_col", "timestamp"),
-        weight_col=data.get("weight_col"),
-        catalog=catalog,
-    )
-    return Dataset(catalog, interactions, name=data.get("name", catalog_path.stem))
-
-
-def _read_csv(path: Path, key: str, dtype: dict[str, type]) -> pd.DataFrame:
-    try:
-        return pd.read_csv(path, dtype=dtype)
-    except (pd.errors.EmptyDataError, pd.errors.ParserError, UnicodeDecodeError) as exc:
-        raise DataError(f"data.{key}: cannot read {path} as CSV: {exc}") from exc
+    """The dataset a spec names (:func:`xrec.data.location.load_dataset` of ``spec.data``)."""
+    return load_dataset(spec.data, progress=progress)
 
 
 def build_sources(spec: ExperimentSpec, *, progress: bool = False) -> dict[str, Source]:
@@ -131,6 +79,38 @@ def evaluation_options(spec: ExperimentSpec) -> dict[str, Any]:
     return opts
 
 
+def cluster_options(spec: ExperimentSpec) -> dict[str, Any] | None:
+    """``scheduler`` / ``workers`` of the spec's ``[evaluate]`` table, or ``None`` to evaluate in this process."""
+    ev = spec.evaluate
+    if ev.get("scheduler") is None and ev.get("workers") is None:
+        return None
+    return {"scheduler": ev.get("scheduler"), "workers": ev.get("workers")}
+
+
+def evaluate_scorers(spec: ExperimentSpec, scorers: dict[str, Any], fold: Any, *, progress: bool = False) -> dict[str, Any]:
+    """Scorecards of ``scorers`` on ``fold`` with the spec's ``[evaluate]`` options.
+
+    With ``scheduler`` or ``workers`` in ``[evaluate]`` the users are sharded over one Dask
+    cluster shared by every scorer (:func:`xrec.evaluate.evaluate_sharded`); the scorecards
+    are the same as in one process.
+    """
+    from xrec.evaluate import evaluate, evaluate_sharded
+
+    opts = evaluation_options(spec)
+    cluster = cluster_options(spec)
+    items = _progress(scorers.items(), progress, "evaluating")
+    if cluster is None:
+        return {name: evaluate(scorer, fold, name=name, **opts) for name, scorer in items}
+    from xrec.cluster import open_client
+
+    shard_size = spec.evaluate.get("shard_size")
+    with open_client(**cluster) as client:
+        return {
+            name: evaluate_sharded(scorer, fold, name=name, shard_size=shard_size, client=client, progress=progress, **opts)
+            for name, scorer in items
+        }
+
+
 def run_experiment(
     spec: ExperimentSpec, *, progress: bool = False, dataset: Dataset | None = None, only: str | None = None
 ) -> ExperimentResult:
@@ -139,7 +119,7 @@ def run_experiment(
     With ``only`` (a source or blend name) just that scorer and the sources it needs are
     fitted and evaluated, and there is no comparison.
     """
-    from xrec.evaluate import compare, evaluate
+    from xrec.evaluate import compare
     from xrec.split import split_dataset
 
     dataset = dataset or load_spec_dataset(spec, progress=progress)
@@ -165,11 +145,7 @@ def run_experiment(
             scorers[name] = _build_blend(spec, table, sources, split, valid_sources, learned, name, progress)
         except ConfigError as exc:
             raise ConfigError(f"blends.{name}: {exc}") from exc
-    opts = evaluation_options(spec)
-    scorecards = {
-        name: evaluate(scorer, fold, name=name, **opts)
-        for name, scorer in _progress(scorers.items(), progress, "evaluating")
-    }
+    scorecards = evaluate_scorers(spec, scorers, fold, progress=progress)
     comparison = None
     baseline = spec.baseline
     if only is None and baseline is not None and len(scorecards) > 1:
@@ -228,6 +204,7 @@ def _build_blend(spec, table, sources, split, valid_sources, learned, name, prog
     if table["weights"] != "learn":
         return Blend(chosen, weights=table["weights"], normalizers=normalizer).fit(fold)
 
+    from xrec._validation import parse_metric_column
     from xrec.blend.engine import BlendEngine
     from xrec.blend.gating import GatedBlend, learn_gated_weights
     from xrec.blend.learn import learn_weights
@@ -240,10 +217,7 @@ def _build_blend(spec, table, sources, split, valid_sources, learned, name, prog
         if n not in valid_sources:
             valid_sources[n] = built[n].fit(split.validation)
     metric = table.get("metric", "ndcg@10")
-    try:
-        k = int(metric.rpartition("@")[2])
-    except ValueError:
-        raise ConfigError(f"metric: expected '<name>@<k>', got {metric!r}") from None
+    k = parse_metric_column(metric)[1]
     seed = int(table.get("seed", 0))
     # Blends over the same sources, normalizers, metric, method and seed share the engine and
     # the ungated search (a gated blend starts from it), so neither is paid for twice.
@@ -289,12 +263,9 @@ def _scorer_for(result: ExperimentResult, name: str | None):
 
 
 def data_hints(spec: ExperimentSpec) -> dict[str, Any]:
-    """The spec's ``[data]`` table with paths made absolute, so a blend file can find its data again."""
-    hints = dict(spec.data)
-    for key in ("folder", "catalog", "interactions", "image_root"):
-        if isinstance(hints.get(key), str):
-            hints[key] = str(spec.resolve(hints[key]).resolve())
-    return hints
+    """The spec's data location with paths made absolute, so a blend file can find its data again
+    (:meth:`xrec.data.location.DataLocation.to_hints`)."""
+    return spec.data.to_hints()
 
 
 def evidence_summary(result: ExperimentResult, name: str) -> dict[str, Any]:
@@ -343,7 +314,7 @@ def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progre
     # only each spec's primary scorer (and the sources it blends) is fitted and evaluated
     base = run_experiment(baseline, progress=progress, only=baseline.primary)
     # Relative paths are compared resolved: the same "items.csv" next to two specs may be two files.
-    same_data = data_hints(baseline) == data_hints(candidate)
+    same_data = baseline.data.same_data(candidate.data)
     cand = run_experiment(candidate, progress=progress, dataset=base.dataset if same_data else None, only=candidate.primary)
     if base.dataset.fingerprint() != cand.dataset.fingerprint():
         raise ConfigError("the two specs read different data (dataset fingerprints differ); a paired comparison needs the same data")
@@ -360,22 +331,7 @@ def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progre
 
 
 def runtime_for_blend_file(path: str | Path, *, data_folder: str | None = None, progress: bool = False):
-    """Load a blend file with the data its ``[dataset.load]`` hints name (or ``data_folder``)."""
-    from xrec.blendfile import read_blend
-    from xrec.runtime import load_blend
-    from xrec.spec import parse_spec
+    """Load a blend file with the data it records (see :func:`xrec.runtime.runtime_for_blend_file`)."""
+    from xrec.runtime import runtime_for_blend_file as load
 
-    blend_spec = read_blend(path)
-    hints = dict(blend_spec.dataset_load or {})
-    if not hints:
-        raise ConfigError(f"{path}: the blend file records no [dataset.load] hints; load it from Python with xrec.runtime.load_blend(path, dataset)")
-    if data_folder is not None:
-        hints["folder"] = data_folder
-        if hints.get("dataset") == "files":
-            # CSV files take no folder: look for the recorded file names in the given one.
-            for key in ("catalog", "interactions", "image_root"):
-                if isinstance(hints.get(key), str):
-                    hints[key] = str(Path(data_folder) / Path(hints[key]).name)
-    spec = parse_spec({"data": hints, "sources": {"_": {"kind": "popularity"}}})
-    dataset = load_spec_dataset(spec, progress=progress)
-    return load_blend(path, dataset, progress=progress)
+    return load(path, data_folder=data_folder, progress=progress)

@@ -18,6 +18,9 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     # protocol = "sampled"       # full ranking unless asked; sampled takes `negatives`
     # overlap = 10               # also report each scorer's top-10 overlap with the baseline
     # pairs = [["als", "als_genres"]]  # extra paired comparisons, each against its own baseline
+    # workers = 2                # evaluate on a local Dask cluster of 2 processes, sharded by users
+    # scheduler = "tcp://scheduler-host:8786"  # or on a running Dask cluster (not with `workers`)
+    # shard_size = 8192          # users per Dask task (default: about 4 per worker; unused in one process)
 
     [sources.popularity]
     kind = "popularity"
@@ -43,13 +46,29 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     [blends.rrf]                 # a tuning-free fusion rule
     fusion = "rrf"               # rrf (k = 60) | combsum | combmnz (depth = 100)
 
-For ``dataset = "files"`` the ``[data]`` table also takes ``catalog`` and
-``interactions`` (CSV paths, relative to the spec file) and the column
-declarations ``item_col``, ``user_col``, ``time_col``, ``weight_col``,
-``categorical``, ``multilabel``, ``numeric``, ``text``, ``image``, ``image_root`` and
-``name`` (defaults: ``item_col = "item"``, ``user_col = "user"``,
-``time_col = "timestamp"``, images relative to the catalog's folder, name = the catalog
-file's stem).
+The ``[data]`` table is checked by :class:`xrec.data.location.DataLocation` (its module
+docstring lists every key). For ``dataset = "files"`` it names the catalog and interactions
+files, CSV or Parquet by extension, relative to the spec file, and maps your column names
+onto xrec's::
+
+    [data]
+    dataset = "files"
+    catalog = "items.parquet"        # .csv, .tsv (optionally .gz, .zip, ...), .parquet, .pq
+    interactions = "events.csv"
+    item_col = "sku"                 # default "item"
+    user_col = "customer"            # default "user"
+    time_col = "ts"                  # default "timestamp": numbers (seconds) or dates
+    weight_col = "quantity"          # optional
+    categorical = ["brand", "type"]  # or one name: categorical = "brand"
+    text = ["title", "description"]
+    image = "picture"                # relative paths read from image_root (default: the catalog's folder)
+    # name = "shop"                  # default: the catalog file's name without extension
+    # allow_outside = true           # read data from outside this spec's folder
+
+In CSV files only an empty field is a missing value (``NA``, ``null`` and ``None`` are text).
+Data paths, and the catalog's image paths, must lie inside the spec file's folder (also after
+following ``..`` and symbolic links) unless ``allow_outside = true``; values from files outside it are never quoted in
+error messages.
 """
 
 from __future__ import annotations
@@ -59,15 +78,16 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from xrec._validation import check_int
+from xrec.data._readers import path_problem
+from xrec.data.location import DataLocation
 from xrec.errors import ConfigError
 
-_DATASETS = ("movielens", "demo_shop", "files")
-_DATA_KEYS = {
-    "dataset", "folder", "catalog", "interactions", "item_col", "user_col", "time_col", "weight_col",
-    "categorical", "multilabel", "numeric", "text", "image", "image_root", "name",
-}
 _SPLIT_KEYS = {"rule", "seed", "validation", "test_fraction", "cutoff", "cold_fraction", "min_train"}
-_EVAL_KEYS = {"ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size", "overlap", "pairs"}
+_EVAL_KEYS = {
+    "ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size",
+    "scheduler", "workers", "shard_size", "overlap", "pairs",
+}
 _BLEND_KEYS = {"weights", "normalizer", "sources", "method", "metric", "gated", "fusion", "k", "depth", "seed"}
 _LEARN_METHODS = ("coordinate_ascent", "optuna", "logistic")
 _FUSIONS = ("rrf", "combsum", "combmnz")
@@ -76,9 +96,12 @@ _TOP_KEYS = {"data", "split", "evaluate", "sources", "blends", "name"}
 
 @dataclass
 class ExperimentSpec:
-    """A validated experiment spec (see the module docstring for the file format)."""
+    """A validated experiment spec (see the module docstring for the file format).
 
-    data: dict[str, Any]
+    ``data`` is the checked ``[data]`` table: where the dataset lives, read from ``base_dir``.
+    """
+
+    data: DataLocation
     split: dict[str, Any] = field(default_factory=dict)
     evaluate: dict[str, Any] = field(default_factory=dict)
     sources: dict[str, dict[str, Any]] = field(default_factory=dict)
@@ -122,9 +145,7 @@ def _check_table(value: Any, where: str) -> dict:
 
 
 def _check_int(table: dict, key: str, lowest: int, where: str) -> None:
-    value = table.get(key, lowest)
-    if not isinstance(value, int) or isinstance(value, bool) or value < lowest:
-        raise ConfigError(f"{where}.{key}: must be an integer >= {lowest}, got {value!r}")
+    check_int(table.get(key, lowest), f"{where}.{key}:", low=lowest, expected=f"an integer >= {lowest}")
 
 
 def _check_blend(table: dict, where: str, sources: dict, *, learning_allowed: bool) -> None:
@@ -179,15 +200,8 @@ def _check_blend(table: dict, where: str, sources: dict, *, learning_allowed: bo
 def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentSpec:
     """Validate a spec already read into a dict; errors name the offending field."""
     _check_keys(raw, _TOP_KEYS, "spec")
-    data = _check_table(raw.get("data", {}), "data")
-    _check_keys(data, _DATA_KEYS, "data")
-    dataset = data.get("dataset", "movielens")
-    if dataset not in _DATASETS:
-        raise ConfigError(f"data.dataset: must be one of {list(_DATASETS)}, got {dataset!r}")
-    if dataset == "files":
-        for key in ("catalog", "interactions"):
-            if not isinstance(data.get(key), str):
-                raise ConfigError(f"data.{key}: a CSV path is required when data.dataset = 'files'")
+    base_dir = base_dir or Path.cwd()
+    data = DataLocation.from_table(raw.get("data", {}), base_dir)
     split = _check_table(raw.get("split", {}), "split")
     _check_keys(split, _SPLIT_KEYS, "split")
     evaluate = _check_table(raw.get("evaluate", {}), "evaluate")
@@ -205,8 +219,11 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
     unknown = [m for m in metrics if m not in ALL_METRICS]
     if unknown:
         raise ConfigError(f"evaluate.metrics: unknown metric name(s) {unknown}; known: {list(ALL_METRICS)}")
-    for key, lowest in (("chunk_size", 1), ("negatives", 1), ("seed", 0), ("overlap", 1)):
+    for key, lowest in (("chunk_size", 1), ("negatives", 1), ("seed", 0), ("shard_size", 1), ("overlap", 1)):
         _check_int(evaluate, key, lowest, "evaluate")
+    from xrec.cluster import check_cluster_options
+
+    check_cluster_options(evaluate.get("scheduler"), evaluate.get("workers"), where="evaluate.")
     sources = _check_table(raw.get("sources", {}), "sources")
     if not sources:
         raise ConfigError("sources: at least one [sources.NAME] table is needed")
@@ -224,6 +241,8 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
         _check_blend(table, where, sources, learning_allowed=split.get("validation", True))
     for key in ("baseline", "primary"):
         value = evaluate.get(key)
+        if value is not None and not isinstance(value, str):
+            raise ConfigError(f"evaluate.{key}: the name of a source or blend, got {value!r}")
         if value is not None and value not in sources and value not in blends:
             raise ConfigError(f"evaluate.{key}: {value!r} is neither a source nor a blend")
     pairs = evaluate.get("pairs", [])
@@ -240,7 +259,7 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
         sources={k: dict(v) for k, v in sources.items()},
         blends={k: dict(v) for k, v in blends.items()},
         name=str(raw.get("name", "experiment")),
-        base_dir=base_dir or Path.cwd(),
+        base_dir=base_dir,
     )
 
 
@@ -259,10 +278,14 @@ def load_spec(path_or_name: str | Path) -> ExperimentSpec:
         builtin = BUILTIN_DIR / f"{path_or_name}.toml"
         if builtin.is_file():
             path = builtin
+        elif path.exists():  # a folder, a device such as /dev/null, ...: say what it is
+            raise ConfigError(f"spec: {path_problem(path, 'spec file')}")
         else:
             raise ConfigError(f"no spec file {str(path_or_name)!r} and no built-in spec of that name; built-in: {builtin_specs()}")
     try:
         raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"{path}: not UTF-8 text (byte {exc.start} cannot be decoded); a spec file is UTF-8 TOML") from None
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{path}: not valid TOML: {exc}") from exc
     base = path.parent if path.parent != BUILTIN_DIR else Path.cwd()
