@@ -146,3 +146,13 @@ def _tiny_clip(folder: Path) -> Path:
     path = folder / "tiny.pt"
     torch.save(model.state_dict(), path)
     return path
+
+
+def test_a_loaded_onnx_encoder_survives_pickling(both, images) -> None:
+    # Sharded encoding (xrec.encoders.sharded) sends the encoder to Dask workers with cloudpickle.
+    import cloudpickle
+
+    onnx, _ = both
+    copy = cloudpickle.loads(cloudpickle.dumps(onnx))
+    assert copy.graph_.session is None
+    np.testing.assert_array_equal(copy.encode(images[:2]), onnx.encode(images[:2]))

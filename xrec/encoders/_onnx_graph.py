@@ -165,4 +165,10 @@ class OnnxGraph:
 
     def run(self, batch: np.ndarray) -> list[np.ndarray]:
         """The graph's outputs for one ``(n, ...)`` float32 batch."""
+        if self.session is None:  # after unpickling (e.g. on a Dask worker): reopen the kept file
+            self.session = self._session()
         return self.session.run(None, {self.input_name: np.ascontiguousarray(batch, dtype=np.float32)})
+
+    def __getstate__(self) -> dict[str, Any]:
+        # An ONNX Runtime session cannot be pickled; the graph file is reopened where it lands.
+        return {**self.__dict__, "session": None}
