@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 from collections import Counter
 
 import numpy as np
@@ -153,3 +154,18 @@ def test_builtin_encoder_swap_spec_on_the_demo_shop() -> None:
     assert images["top_lists"].mean > 0.99
     table = images["comparison"].table
     assert (table["difference"].abs() < 1e-9).all()
+
+
+def test_xrec_compare_reports_top_list_overlap(tmp_path, capsys) -> None:
+    from xrec.cli import main
+
+    base = _write_files_spec(tmp_path, name="base")
+    text = base.read_text(encoding="utf-8")
+    (tmp_path / "cand.toml").write_text(text.replace('name = "base"', 'name = "cand"').replace("pop = 0.2", "pop = 2.0"), encoding="utf-8")
+    assert main(["compare", str(base), str(tmp_path / "cand.toml"), "--overlap", "5", "-q"]) == 0
+    out = capsys.readouterr().out
+    assert "mean overlap@5" in out
+    assert main(["compare", str(base), str(tmp_path / "cand.toml"), "--overlap", "5", "--json"]) == 0
+    payload = json.loads(capsys.readouterr().out)
+    (change,) = payload["top_lists"].values()
+    assert change["k"] == 5 and 0.0 <= change["mean_overlap"] <= 1.0

@@ -307,8 +307,12 @@ def export_spec(spec: ExperimentSpec, output: str | Path, *, scorer: str | None 
     )
 
 
-def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progress: bool = False):
-    """Paired comparison of the primary scorers of two specs; both must use the same data and split."""
+def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progress: bool = False, overlap: int | None = None):
+    """Paired comparison of the primary scorers of two specs; both must use the same data and split.
+
+    With ``overlap`` (default: the baseline spec's ``evaluate.overlap``) the comparison's
+    ``top_lists`` also holds the candidate's top-K overlap with the baseline per user.
+    """
     from xrec.evaluate import compare
 
     # only each spec's primary scorer (and the sources it blends) is fitted and evaluated
@@ -327,7 +331,16 @@ def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progre
     if b_card.name == c_card.name:
         c_card.name = f"{c_card.name} ({candidate.name})"
         b_card.name = f"{b_card.name} ({baseline.name})"
-    return compare(b_card, c_card, seed=int(baseline.evaluate.get("seed", 0)))
+    comparison = compare(b_card, c_card, seed=int(baseline.evaluate.get("seed", 0)))
+    k = overlap if overlap is not None else int(baseline.evaluate.get("overlap", 0))
+    if k:
+        from xrec.evaluate.overlap import top_list_change
+
+        # both primaries were fitted on folds of the same data and split: the same users and items
+        comparison.top_lists[c_card.name] = top_list_change(
+            base.scorers[baseline.primary], cand.scorers[candidate.primary], base.split.test, k=k, names=(b_card.name, c_card.name)
+        )
+    return comparison
 
 
 def runtime_for_blend_file(path: str | Path, *, data_folder: str | None = None, progress: bool = False):

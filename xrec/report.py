@@ -44,6 +44,7 @@ def format_comparison(comparison: Any, metrics: tuple[str, ...] | None = None) -
             f"diff {r['difference']:+.4f} [{r['ci_low']:+.4f}, {r['ci_high']:+.4f}] ({verdict})  "
             f"p={r['p_value']:.4f} holm={r['p_holm']:.4f}"
         )
+    lines += [change.describe() for change in getattr(comparison, "top_lists", {}).values()]
     return "\n".join(lines)
 
 

@@ -45,12 +45,16 @@ class Comparison:
         and ``p_holm`` (Holm-adjusted over the candidates of that metric).
     settings
         ``n_resamples``, ``confidence``, ``seed``, ``n_users``.
+    top_lists
+        Candidate name -> :class:`~xrec.evaluate.overlap.TopListChange` against the
+        baseline, when the caller measured it (``xrec compare`` with an overlap cut-off).
     """
 
     baseline: str
     candidates: list[str]
     table: pd.DataFrame
     settings: dict = field(default_factory=dict)
+    top_lists: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         """Plain form (str/int/float/list/dict only) for JSON or TOML files."""
@@ -59,6 +63,7 @@ class Comparison:
             "candidates": list(self.candidates),
             "settings": plain(self.settings),
             "rows": [plain(r) for r in self.table.to_dict(orient="records")],
+            **({"top_lists": {name: change.to_dict() for name, change in self.top_lists.items()}} if self.top_lists else {}),
         }
 
     def title(self) -> str:
