@@ -243,6 +243,7 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
                    dataset_load):
     from xrec.blendfile import save_blend
     from xrec.notebook.charts import charts_to_html, comparison_chart, metric_bars, weight_profile
+    from xrec.notebook.segment_charts import segment_section
 
     payload = {
         "dataset": {"name": dataset.name, "fingerprint": dataset.fingerprint()},
@@ -261,6 +262,9 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
         "segments": segments.to_dict(orient="records"),
         "scorecards": {n: c.to_dict() for n, c in cards.items()},
     }
+    # Results by segment (held-out item new / tail / head, shopper history length, product type).
+    segment_sections, payload["by_segment"] = segment_section(
+        cards, split.test, best_single, ["learned blend", "gated blend"], ("item_segment", "user_segment", "product_type"))
     scorecard_path = out / "scorecards.json"
     tmp = scorecard_path.with_suffix(".json.tmp")
     tmp.write_text(json.dumps(payload, indent=1, default=json_default), encoding="utf-8")
@@ -307,6 +311,7 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
             "ALS carries most weight, so it under-ranks new items: serve new items with content-heavy weights "
             "(a popularity-gated blend, <code>GatedBlend</code>, learned on data that holds enough new items).</p>"
         ),
+        **segment_sections,
         "Scorecard of the learned blend": card,
         "Comparison vs popularity": vs_pop,
     }
