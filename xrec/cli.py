@@ -50,7 +50,12 @@ def _cmd_compare(args: argparse.Namespace) -> int:
     from xrec.spec import load_spec
 
     baseline, candidate = (_with_cluster_flags(load_spec(path), args) for path in (args.baseline, args.candidate))
-    comparison = compare_specs(baseline, candidate, progress=not args.quiet and not args.json, by=args.by or ())
+    if args.overlap is not None and args.overlap < 1:
+        from xrec.errors import ConfigError
+
+        raise ConfigError(f"--overlap: must be at least 1, got {args.overlap}")
+    comparison = compare_specs(baseline, candidate, progress=not args.quiet and not args.json, by=args.by or (),
+                               overlap=args.overlap)
     if args.json:
         _print_json(comparison.to_dict())
     else:
@@ -189,6 +194,9 @@ def build_parser() -> argparse.ArgumentParser:
         "differences with bootstrap confidence intervals and randomization p-values."))
     p.add_argument("baseline", help="baseline spec file or built-in name")
     p.add_argument("candidate", help="candidate spec file or built-in name")
+    p.add_argument("--overlap", type=int, default=None, metavar="K",
+                   help="also report the mean top-K overlap per user and the items that moved most "
+                        "(default: the baseline spec's evaluate.overlap, else off)")
     cluster(p)
     segments(p)
     common(p)

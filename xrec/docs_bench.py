@@ -224,6 +224,39 @@ def _dask_table(data: dict[str, dict]) -> str:
     return "\n".join(lines) + "\n"
 
 
+def _encoders_table(data: dict[str, dict]) -> str:
+    """Encoder paths (PyTorch eager vs ONNX Runtime images, float32 vs int8 text) at equal threads and batch."""
+    res = data["bench_encoders.json"]
+    rows = res["figures"]["rows"]
+    rate = {(r["what"], r["path"], r["threads"], r["batch"]): r for r in rows if "per_s" in r and "path" in r}
+    pairs = (("image forward only", "torch", "onnx", "img/s"), ("image", "torch", "onnx", "img/s"), ("text", "fp32", "int8", "texts/s"))
+    lines = ["| measurement | threads | batch | before | after | after / before | FLOP limit used, before → after |", "|---|---|---|---|---|---|---|"]
+    names = {"torch": "PyTorch eager", "onnx": "ONNX Runtime", "fp32": "float32", "int8": "int8"}
+    for what, slow, fast, unit in pairs:
+        keys = sorted((t, b) for (w, p, t, b) in rate if w == what and p == fast and (w, slow, t, b) in rate)
+        for t, b in keys:
+            a, z = rate[(what, slow, t, b)], rate[(what, fast, t, b)]
+            lines.append(
+                f"| {what} ({names[slow]} → {names[fast]}) | {t} | {b} | {a['per_s']:.1f} {unit} | {z['per_s']:.1f} {unit} | "
+                f"{z['per_s'] / a['per_s']:.2f}× | {100 * a['share']:.0f} % → {100 * z['share']:.0f} % |"
+            )
+    lines.append("")
+    notes = [f"`{res['run']['command']}` ({_load(res)}; the paths alternate in one process, so the ratios hold under load)"]
+    cold = next((r for r in rows if r.get("what") == "demo cold"), None)
+    if cold:
+        before, after = cold["before (PyTorch eager)"], cold["after (ONNX Runtime)"]
+        notes.append(f"{cold['n']} demo-shop items' images and texts into an empty cache: {before:.1f} s before, {after:.1f} s after ({before / after:.2f}×)")
+    q = next((r for r in rows if r.get("what") == "int8 quality"), None)
+    if q:
+        notes.append(
+            f"int8 text on {q['n']:,} demo-shop texts: cosine to float32 mean {q['cos_mean']:.3f} (5th percentile {q['cos_p05']:.3f}, "
+            f"minimum {q['cos_min']:.3f}); ridge bridge text → image recall@10 {q['bridge_recall_fp32']:.3f} (float32) against "
+            f"{q['bridge_recall_int8']:.3f} (int8)"
+        )
+    lines.append("; ".join(notes) + ".")
+    return "\n".join(lines) + "\n"
+
+
 #: The README's benchmark blocks.
 BENCH: dict[str, BenchBlock] = {
     "scale": BenchBlock(_SCALE_RUNS, _scale_table),

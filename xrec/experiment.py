@@ -220,7 +220,32 @@ def run_experiment(
         extras["segments"] = pd.concat(
             [card.by_segment(labels, seed=seed).assign(scorer=name) for name, card in scorecards.items()], ignore_index=True
         )
+    overlap_k = int(spec.evaluate.get("overlap", 0))
+    if comparison is not None and overlap_k:
+        from xrec.evaluate.overlap import top_list_change
+
+        # How much of each top-K list changes against the baseline (evaluate.overlap = K).
+        extras["top_lists"] = {
+            name: top_list_change(scorers[baseline], scorers[name], fold, k=overlap_k, names=(baseline, name))
+            for name in scorecards if name != baseline
+        }
+    if only is None and spec.evaluate.get("pairs"):
+        extras["pairs"] = _paired_runs(spec, scorers, scorecards, fold, overlap_k)
     return ExperimentResult(spec, dataset, split, scorers, scorecards, comparison, extras=extras)
+
+
+def _paired_runs(spec: ExperimentSpec, scorers: dict, scorecards: dict, fold: Any, overlap_k: int) -> list[dict[str, Any]]:
+    """``evaluate.pairs``: each (baseline, candidate) pair compared on its own, with top-list overlap."""
+    from xrec.evaluate import compare
+    from xrec.evaluate.overlap import top_list_change
+
+    runs = []
+    for base, cand in spec.evaluate["pairs"]:
+        run: dict[str, Any] = {"comparison": compare(scorecards[base], scorecards[cand], seed=int(spec.evaluate.get("seed", 0)))}
+        if overlap_k:
+            run["top_lists"] = top_list_change(scorers[base], scorers[cand], fold, k=overlap_k, names=(base, cand))
+        runs.append(run)
+    return runs
 
 
 def _blend_source_names(table: dict[str, Any], sources: dict[str, Source]) -> list[str]:
@@ -379,10 +404,14 @@ def export_spec(
     return written
 
 
-def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progress: bool = False, by: Sequence[str] = ()):
+def compare_specs(
+    baseline: ExperimentSpec, candidate: ExperimentSpec, *, progress: bool = False, by: Sequence[str] = (), overlap: int | None = None
+):
     """Paired comparison of the primary scorers of two specs; both must use the same data and split.
 
     ``by`` breaks the comparison down by segments too, as in :func:`run_experiment`.
+    With ``overlap`` (default: the baseline spec's ``evaluate.overlap``) the comparison's
+    ``top_lists`` also holds the candidate's top-K overlap with the baseline per user.
     """
     from xrec.evaluate import compare
     from xrec.evaluate.segments import segment_labels
@@ -404,7 +433,16 @@ def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progre
         c_card.name = f"{c_card.name} ({candidate.name})"
         b_card.name = f"{b_card.name} ({baseline.name})"
     labels = [segment_labels(base.split.test, name) for name in dict.fromkeys(by)]
-    return compare(b_card, c_card, seed=int(baseline.evaluate.get("seed", 0)), by=labels or None)
+    comparison = compare(b_card, c_card, seed=int(baseline.evaluate.get("seed", 0)), by=labels or None)
+    k = overlap if overlap is not None else int(baseline.evaluate.get("overlap", 0))
+    if k:
+        from xrec.evaluate.overlap import top_list_change
+
+        # both primaries were fitted on folds of the same data and split: the same users and items
+        comparison.top_lists[c_card.name] = top_list_change(
+            base.scorers[baseline.primary], cand.scorers[candidate.primary], base.split.test, k=k, names=(b_card.name, c_card.name)
+        )
+    return comparison
 
 
 def runtime_for_blend_file(path: str | Path, *, data_folder: str | None = None, progress: bool = False):

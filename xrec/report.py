@@ -44,6 +44,7 @@ def format_comparison(comparison: Any, metrics: tuple[str, ...] | None = None) -
             f"diff {r['difference']:+.4f} [{r['ci_low']:+.4f}, {r['ci_high']:+.4f}] ({verdict})  "
             f"p={r['p_value']:.4f} holm={r['p_holm']:.4f}"
         )
+    lines += [change.describe() for change in getattr(comparison, "top_lists", {}).values()]
     return "\n".join(lines)
 
 
@@ -71,6 +72,14 @@ def format_experiment(result: ExperimentResult) -> str:
         parts += ["", format_segments(result.extras["segments"], headline)]
         if result.comparison is not None:
             parts += ["", format_segment_comparison(result.comparison, headline)]
+    changes = result.extras.get("top_lists", {})
+    if changes:
+        parts += ["", "Top-list overlap with the baseline (share of each user's top-K kept):"]
+        parts += [change.describe() for change in changes.values()]
+    for run in result.extras.get("pairs", []):
+        parts += ["", format_comparison(run["comparison"], HEADLINE_METRICS)]
+        if "top_lists" in run:
+            parts.append(run["top_lists"].describe())
     return "\n".join(parts)
 
 
@@ -150,4 +159,8 @@ def experiment_payload(result: ExperimentResult) -> dict[str, Any]:
         # One row per (breakdown, segment, metric, scorer); small segments have no interval (null).
         rows = result.extras["segments"].astype(object).where(result.extras["segments"].notna(), None)
         out["segments"] = rows.to_dict(orient="records")
+    if result.extras.get("top_lists"):
+        out["top_lists"] = {name: change.to_dict() for name, change in result.extras["top_lists"].items()}
+    if result.extras.get("pairs"):
+        out["pairs"] = [{key: value.to_dict() for key, value in run.items()} for run in result.extras["pairs"]]
     return out

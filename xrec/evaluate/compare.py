@@ -52,6 +52,9 @@ class Comparison:
         With ``compare(..., by=...)``: the same comparison within every segment, one row per
         (breakdown, segment, metric, candidate) with ``n_users``, ``small`` and
         ``p_holm_segments`` (Holm over the segments of that breakdown); else empty.
+    top_lists
+        Candidate name -> :class:`~xrec.evaluate.overlap.TopListChange` against the
+        baseline, when the caller measured it (``xrec compare`` with an overlap cut-off).
     """
 
     baseline: str
@@ -59,6 +62,7 @@ class Comparison:
     table: pd.DataFrame
     settings: dict = field(default_factory=dict)
     segments: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=SEGMENT_TABLE_COLUMNS))
+    top_lists: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         """Plain form (str/int/float/list/dict only) for JSON or TOML files."""
@@ -70,6 +74,7 @@ class Comparison:
             # Small segments have no interval or test: their NaN fields are left out.
             **({"segments": [plain({k: v for k, v in r.items() if not (isinstance(v, float) and np.isnan(v))})
                              for r in self.segments.to_dict(orient="records")]} if len(self.segments) else {}),
+            **({"top_lists": {name: change.to_dict() for name, change in self.top_lists.items()}} if self.top_lists else {}),
         }
 
     def title(self) -> str:
