@@ -9,7 +9,7 @@ from typing import Any
 import pandas as pd
 
 from xrec.data.dataset import Dataset
-from xrec.errors import ConfigError, DataError
+from xrec.errors import ConfigError, DataError, XrecError
 from xrec.spec import ExperimentSpec
 from xrec.sources.base import Source, make_source
 
@@ -94,6 +94,14 @@ def build_sources(spec: ExperimentSpec, *, progress: bool = False) -> dict[str, 
     return out
 
 
+def fit_source(name: str, source: Source, fold: Any) -> Source:
+    """``source.fit(fold)``, with an xrec error's message prefixed by ``sources.NAME``."""
+    try:
+        return source.fit(fold)
+    except XrecError as exc:
+        raise type(exc)(f"sources.{name}: {exc}") from exc
+
+
 @dataclass
 class ExperimentResult:
     """Everything a spec run produced: the split, fitted scorers, scorecards and the comparison."""
@@ -156,7 +164,7 @@ def run_experiment(
         else:
             raise ConfigError(f"no source or blend named {only!r}; known: {sorted([*sources, *blends])}")
     for name, source in _progress(sources.items(), progress, "fitting sources"):
-        source.fit(fold)
+        fit_source(name, source, fold)
     scorers: dict[str, Any] = dict(sources) if only is None or only in sources else {}
     learned: dict[str, Any] = {}
     valid_sources: dict[str, Source] = {}
@@ -212,7 +220,7 @@ def _build_blend(spec, table, sources, split, valid_sources, learned, name, prog
     built = build_sources(spec, progress=progress)
     for n in names:
         if n not in valid_sources:
-            valid_sources[n] = built[n].fit(split.validation)
+            valid_sources[n] = fit_source(n, built[n], split.validation)
     metric = table.get("metric", "ndcg@10")
     try:
         k = int(metric.rpartition("@")[2])

@@ -192,6 +192,8 @@ def _fit(scorer: Any, fold: Fold, progress: bool) -> Any:
             scorer.sources[name].fit(fold)
         except ConfigError as exc:
             raise ConfigError(f"sources.{name}.params: {exc}") from exc
+        except DataError as exc:  # e.g. a factorization that fails on these data
+            raise DataError(f"sources.{name}: {exc}") from exc
     return scorer.fit(fold)  # every source is fitted: this keeps the fold's training matrix
 
 
