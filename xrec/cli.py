@@ -57,8 +57,13 @@ def _cmd_recommend(args: argparse.Namespace) -> int:
     from xrec.errors import ConfigError
     from xrec.experiment import runtime_for_blend_file
 
+    from xrec.blendfile import read_blend
+
     if args.k < 1:  # checked before the refit, which can take a while
         raise ConfigError(f"-k: must be at least 1, got {args.k}")
+    n_items = read_blend(args.blend_file).split_record.get("n_items")
+    if isinstance(n_items, int) and args.k > n_items:  # the catalog size the file records
+        raise ConfigError(f"-k: {args.k} exceeds the catalog's {n_items} items (split.record.n_items of the blend file)")
     runtime = runtime_for_blend_file(args.blend_file, data_folder=args.data, progress=not args.quiet and not args.json)
     frames = {user: runtime.recommend(user, k=args.k, unknown=args.unknown) for user in args.user}
     if args.json:

@@ -151,6 +151,7 @@ def run_experiment(
     from xrec.split import split_dataset
 
     dataset = dataset or load_spec_dataset(spec, progress=progress)
+    check_spec_sizes(spec, dataset.catalog.n_items)
     split = split_dataset(dataset, **spec.split)
     fold = split.test
     sources = build_sources(spec, progress=progress)
@@ -184,6 +185,21 @@ def run_experiment(
         others = [card for name, card in scorecards.items() if name != baseline]
         comparison = compare(scorecards[baseline], *others, seed=int(spec.evaluate.get("seed", 0)))
     return ExperimentResult(spec, dataset, split, scorers, scorecards, comparison, extras={"learned": learned})
+
+
+def check_spec_sizes(spec: ExperimentSpec, n_items: int) -> None:
+    """Refuse cut-offs longer than the catalog (``evaluate.ks``, a learned blend's ``metric``) before any fit.
+
+    A top-K list cannot hold more items than the catalog has, and a huge K would make
+    ``(users, K)`` arrays; raises :class:`ConfigError` naming the field.
+    """
+    from xrec.evaluate.evaluator import check_cutoffs
+
+    check_cutoffs(list(spec.ks), n_items, "evaluate.ks")
+    for name, table in spec.blends.items():
+        metric = table.get("metric")
+        if table.get("weights") == "learn" and isinstance(metric, str) and metric.rpartition("@")[2].isdigit():
+            check_cutoffs(int(metric.rpartition("@")[2]), n_items, f"blends.{name}.metric")
 
 
 def _blend_source_names(table: dict[str, Any], sources: dict[str, Source]) -> list[str]:

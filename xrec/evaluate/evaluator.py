@@ -76,6 +76,25 @@ def _check_ks(ks: Sequence[int] | int) -> tuple[int, ...]:
     return tuple(sorted({int(k) for k in ks}))
 
 
+def check_cutoffs(ks: Sequence[int] | int, n_items: int, field: str = "ks") -> tuple[int, ...]:
+    """``ks`` checked as positive integers no larger than the catalog, sorted and unique.
+
+    A top-K list cannot be longer than the catalog, so a cut-off above ``n_items`` is
+    refused (not clamped) with a :class:`ConfigError` naming ``field``; checked before any
+    ``(users, K)`` array is made.
+    """
+    try:
+        ks = _check_ks(ks)
+    except ConfigError as exc:
+        raise ConfigError(f"{field}: {exc}") from None
+    too_big = [k for k in ks if k > n_items]
+    if too_big:
+        raise ConfigError(
+            f"{field}: cut-off(s) {too_big} exceed the catalog's {n_items} items; a top-K list cannot be longer than the catalog"
+        )
+    return ks
+
+
 def _check_metrics(metrics: Sequence[str] | str) -> tuple[str, ...]:
     if isinstance(metrics, str):
         metrics = (metrics,)
@@ -115,7 +134,7 @@ def evaluate_blocks(
     users
         User indices to evaluate (unique); default: every user with a held-out item.
     ks
-        Cut-offs, each > 0.
+        Cut-offs, each > 0 and at most the number of items (larger ones are refused).
     metrics
         Any of ``hit_rate, ndcg, recall, mrr`` (per user) and ``coverage, popularity``
         (from top-K lists; computed only when asked).
@@ -139,7 +158,7 @@ def evaluate_blocks(
     Raises
     ------
     ConfigError
-        Bad ``ks``, metric names, chunk size or protocol.
+        Bad ``ks`` (or one larger than the catalog), metric names, chunk size or protocol.
     DataError
         Shape mismatches, users out of range, repeated, or without held-out items.
     """
@@ -155,6 +174,7 @@ def evaluate_blocks(
     if seen.shape != truth.shape:
         raise DataError(f"seen mask has shape {seen.shape} but held-out matrix has {truth.shape}")
     n_users, n_items = truth.shape
+    check_cutoffs(ks, n_items)
     seen = canonical_rows(seen, n_users, n_items, "seen mask")
     truth = canonical_rows(truth, n_users, n_items, "held-out matrix")
     n_rel = np.diff(truth.indptr)
@@ -261,7 +281,7 @@ def evaluate(
     fold
         Training interactions (the seen mask) and held-out interactions (the truth).
     ks
-        Cut-offs, each > 0.
+        Cut-offs, each > 0 and at most the number of catalog items (larger ones are refused).
     metrics
         Names among ``hit_rate, ndcg, recall, mrr, coverage, popularity``.
     protocol
