@@ -28,6 +28,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from xrec._files import write_text_atomic
 from xrec._jsonable import json_default
 from xrec.errors import ConfigError
 
@@ -260,10 +261,7 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
         "segments": segments.to_dict(orient="records"),
         "scorecards": {n: c.to_dict() for n, c in cards.items()},
     }
-    scorecard_path = out / "scorecards.json"
-    tmp = scorecard_path.with_suffix(".json.tmp")
-    tmp.write_text(json.dumps(payload, indent=1, default=json_default), encoding="utf-8")
-    tmp.replace(scorecard_path)
+    scorecard_path = write_text_atomic(out / "scorecards.json", json.dumps(payload, indent=1, default=json_default))
 
     card = cards["learned blend"]
     evidence = {
