@@ -144,3 +144,35 @@ def test_durable_write_syncs_the_file_and_its_folder(tmp_path: Path, monkeypatch
     synced.clear()
     _files.write_bytes_atomic(tmp_path / "e.vec", b"\0", durable=False)
     assert synced == []
+
+
+# --- reading text files ---------------------------------------------------------------------------
+
+
+def test_read_text_file_names_the_file_and_the_line_of_a_byte_that_is_not_utf8(tmp_path: Path) -> None:
+    from xrec.errors import ConfigError
+
+    bad = tmp_path / "spec.toml"
+    bad.write_bytes('name = "ok"\ntitle = "café"\n'.encode("latin-1"))  # é is 0xe9 in Latin-1
+    # Reference: Python's own decoder puts the first bad byte at the same offset.
+    with pytest.raises(UnicodeDecodeError) as ref:
+        bad.read_bytes().decode("utf-8")
+    with pytest.raises(ConfigError, match=rf"spec {bad} is not UTF-8 text: line 2, byte 0xe9 at offset {ref.value.start}"):
+        _files.read_text_file(bad, "spec")
+    with pytest.raises(ConfigError, match="spec not found"):
+        _files.read_text_file(tmp_path / "missing.toml", "spec")
+    with pytest.raises(ConfigError, match="is a folder"):
+        _files.read_text_file(tmp_path, "spec")
+    bom = tmp_path / "bom.toml"
+    bom.write_bytes(b"\xef\xbb\xbfx = 1\n")  # the UTF-8 byte-order mark (Unicode standard, section 23.8; from memory)
+    assert _files.read_text_file(bom, "spec") == "x = 1\n"
+
+
+def test_spec_that_is_not_utf8_is_a_config_error(tmp_path: Path) -> None:
+    from xrec.errors import ConfigError
+    from xrec.spec import load_spec
+
+    bad = tmp_path / "bad.toml"
+    bad.write_bytes(b'[data]\ndataset = "demo_shop"\n# \xff\n[sources.p]\nkind = "popularity"\n')
+    with pytest.raises(ConfigError, match=r"spec .*bad\.toml is not UTF-8 text: line 3"):
+        load_spec(bad)

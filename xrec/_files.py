@@ -159,3 +159,33 @@ def _mode_for(path: Path) -> int:
         umask = os.umask(0)
         os.umask(umask)
         return 0o666 & ~umask
+
+
+def read_text_file(path: str | os.PathLike, what: str) -> str:
+    """The UTF-8 text of a file xrec reads (a spec, a blend file), or a :class:`ConfigError` naming it.
+
+    ``what`` names the kind of file in the message (``"spec"``, ``"blend file"``). Bytes that
+    are not UTF-8 are reported with their offset; a missing file, a folder or an unreadable
+    file raise :class:`ConfigError` too. A leading UTF-8 byte-order mark (some editors write one)
+    is dropped.
+    """
+    from xrec.errors import ConfigError
+
+    path = Path(path)
+    try:
+        data = path.read_bytes()
+    except FileNotFoundError:
+        raise ConfigError(f"{what} not found: {path}") from None
+    except IsADirectoryError:
+        raise ConfigError(f"{what} {path} is a folder, not a file") from None
+    except OSError as exc:
+        raise ConfigError(f"{what} {path} cannot be read: {exc.strerror or exc}") from exc
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = data.count(b"\n", 0, exc.start) + 1
+        raise ConfigError(
+            f"{what} {path} is not UTF-8 text: line {line}, byte {data[exc.start]:#04x} at offset {exc.start} "
+            f"({exc.reason}); save it as UTF-8"
+        ) from None
+    return text.removeprefix("\ufeff")

@@ -57,6 +57,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from xrec._files import read_text_file
 from xrec.errors import ConfigError
 
 _DATASETS = ("movielens", "demo_shop", "files")
@@ -267,8 +268,9 @@ def load_spec(path_or_name: str | Path) -> ExperimentSpec:
             path = builtin
         else:
             raise ConfigError(f"no spec file {str(path_or_name)!r} and no built-in spec of that name; built-in: {builtin_specs()}")
+    text = read_text_file(path, "spec")
     try:
-        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+        raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{path}: not valid TOML: {exc}") from exc
     base = path.parent if path.parent != BUILTIN_DIR else Path.cwd()
