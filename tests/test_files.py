@@ -176,3 +176,19 @@ def test_spec_that_is_not_utf8_is_a_config_error(tmp_path: Path) -> None:
     bad.write_bytes(b'[data]\ndataset = "demo_shop"\n# \xff\n[sources.p]\nkind = "popularity"\n')
     with pytest.raises(ConfigError, match=r"spec .*bad\.toml is not UTF-8 text: line 3"):
         load_spec(bad)
+
+
+def test_every_file_xrec_writes_goes_through_the_one_writer() -> None:
+    import re
+
+    writes = re.compile(r"\.write_text\(|\.write_bytes\(|os\.replace\(|os\.rename\(|\bopen\([^)]*[\"'][wax]b?\+?[\"']|"
+                        r"\.to_csv\(|\.to_parquet\(|np\.save|tempfile\.mkstemp|save_file\(")
+    root = Path(__file__).resolve().parents[1] / "xrec"
+    found = [
+        f"{path.relative_to(root)}:{n}: {line.strip()}"
+        for path in sorted(root.rglob("*.py"))
+        if path.name != "_files.py"
+        for n, line in enumerate(path.read_text(encoding="utf-8").splitlines(), 1)
+        if writes.search(line) and not line.lstrip().startswith("#")
+    ]
+    assert found == [], "write through xrec._files.write_bytes_atomic / write_text_atomic:\n" + "\n".join(found)
