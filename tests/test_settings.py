@@ -66,3 +66,28 @@ def test_bridges_are_checked_too():
         make_bridge("ridge", alpha="1")
     # an annotation this check does not know (an array) is left to the bridge
     assert make_bridge("conse", class_vectors=None).top_t == 10
+
+
+def test_generated_setting_values_give_a_source_or_a_config_error():
+    from hypothesis import given, settings
+    from hypothesis import strategies as st
+
+    from xrec._settings import setting_names
+    from xrec.sources.base import source_class, source_kinds
+
+    scalars = st.one_of(st.none(), st.booleans(), st.integers(), st.floats(), st.text(max_size=5))
+    values = st.recursive(scalars, lambda inner: st.lists(inner, max_size=3) | st.dictionaries(st.text(max_size=3), inner, max_size=3), max_leaves=5)
+    pairs = st.sampled_from(source_kinds()).flatmap(
+        lambda kind: st.tuples(st.just(kind), st.sampled_from(sorted(setting_names(source_class(kind)))), values)
+    )
+
+    @settings(max_examples=300, deadline=None)
+    @given(pairs)
+    def check(pair):
+        kind, name, value = pair
+        try:
+            make_source(kind, **{name: value})
+        except ConfigError:
+            pass
+
+    check()
