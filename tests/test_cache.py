@@ -13,6 +13,7 @@ import pandas as pd
 import pytest
 
 from xrec.data.catalog import Catalog
+from xrec.encoders import _fill as fill_module
 from xrec.encoders import cache as cache_module
 from xrec.encoders.base import Encoder
 from xrec.encoders.cache import (
@@ -412,7 +413,7 @@ def test_empty_input_and_zero_vector_from_a_masking_encoder(cache):
 
 
 def test_large_requests_list_folders_instead_of_probing(cache, monkeypatch):
-    monkeypatch.setattr(cache_module, "_LIST_FROM", 1)  # take the listing path for this small case
+    monkeypatch.setattr(fill_module, "_LIST_FROM", 1)  # take the listing path for this small case
     enc = FakeEncoder()
     cache.encode(enc, TEXTS[:6])
     victim = cache.entry_path(enc, TEXTS[1])

@@ -34,8 +34,6 @@ from __future__ import annotations
 
 import math
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass
-from numbers import Real
 from typing import Any, Self
 
 import numpy as np
@@ -43,12 +41,15 @@ import pandas as pd
 from threadpoolctl import ThreadpoolController, threadpool_limits
 from tqdm.auto import tqdm
 
+from xrec.blend._dominance import DominancePruning
 from xrec.blend._rank import Candidates
+from xrec.blend._weighted_sum import WeightedSumKernels
 from xrec.blend.blend import check_normalizers
 from xrec.blend.normalize import normalize
 from xrec.errors import ConfigError, DataError
-from xrec.evaluate._metrics import RANK_METRICS, metrics_from_ranks
-from xrec.evaluate._ranking import UNRANKED, BlockRanks, _seen_flags, count_at_least, rank_heldout
+from xrec.evaluate._metrics import RANK_METRICS, metrics_from_ranks, parse_metric
+from xrec.evaluate._ranking import BlockRanks, _seen_flags
+from xrec.evaluate._sampling import UserSample, sample_users
 from xrec.fold import Fold
 
 __all__ = ["BlendEngine", "UserSample", "sample_users"]
@@ -58,142 +59,9 @@ _DTYPES = {"float32": np.float32, "float16": np.float16}
 _SUM_BYTES = 1 << 18
 # Users normalized together while preparing (bounds the raw-score scratch).
 _PREPARE_ROWS = 1024
-# Smallest positive weight for which the dominance shortcut is exact (below it, float32
-# products can underflow and rounding is no longer relative).
-_PRUNE_MIN_WEIGHT = 1e-12
 
 
-@dataclass(frozen=True)
-class UserSample:
-    """A stratified sample of a fold's evaluation users.
-
-    Attributes
-    ----------
-    users
-        Sampled user indices, ascending.
-    stratum
-        Stratum of each sampled user (``0 .. n_strata-1``, by training activity).
-    population
-        Number of evaluation users in each stratum.
-    edges
-        Training-interaction counts separating the strata (``n_strata - 1`` values; a user
-        with ``edges[h-1] <= count < edges[h]`` is in stratum ``h``).
-    seed
-        Seed of the draw.
-    """
-
-    users: np.ndarray
-    stratum: np.ndarray
-    population: np.ndarray
-    edges: np.ndarray
-    seed: int
-
-    @property
-    def n_strata(self) -> int:
-        """Number of strata the users were drawn from."""
-        return len(self.population)
-
-    def estimate(self, values: np.ndarray, level: float = 0.95) -> tuple[float, float, float]:
-        """Stratified mean of per-user ``values`` (aligned with ``users``) and its interval.
-
-        ``mean = Σ_h W_h ȳ_h`` and ``var = Σ_h W_h² (1 - n_h/N_h) s_h² / n_h`` with
-        ``W_h = N_h / N`` (Cochran, *Sampling Techniques*, 3rd ed. 1977, eqs. 5.1 and 5.6;
-        from memory); the interval is ``mean ± z·sqrt(var)`` (normal approximation).
-
-        Returns
-        -------
-        (mean, low, high)
-        """
-        from scipy.stats import norm
-
-        values = np.asarray(values, dtype=np.float64)
-        if values.shape != self.users.shape:
-            raise DataError(f"values has shape {values.shape}, the sample has {self.users.shape} users")
-        total = float(self.population.sum())
-        mean = 0.0
-        var = 0.0
-        for h in range(self.n_strata):
-            y = values[self.stratum == h]
-            n_h, big_n = len(y), float(self.population[h])
-            if n_h == 0:
-                continue
-            w_h = big_n / total
-            mean += w_h * float(y.mean())
-            if n_h > 1:
-                var += w_h**2 * (1.0 - n_h / big_n) * float(y.var(ddof=1)) / n_h
-        half = float(norm.ppf(0.5 + level / 2.0)) * math.sqrt(max(var, 0.0))
-        return mean, mean - half, mean + half
-
-
-def sample_users(fold: Fold, n: int = 1000, *, n_strata: int = 4, seed: int = 0) -> UserSample:
-    """Draw ``n`` evaluation users, stratified by their number of training interactions.
-
-    Strata are activity quantiles of the evaluation users (light to heavy users behave
-    differently, so a sample balanced over activity gives a tighter estimate); each stratum
-    gets a share of ``n`` proportional to its size (at least 2 users when it has them).
-
-    Parameters
-    ----------
-    fold
-        Fold whose ``eval_users`` are sampled.
-    n
-        Sample size; all evaluation users when ``n`` is at least their number.
-    n_strata
-        Number of activity strata (>= 1).
-    seed
-        Seed of the draw.
-    """
-    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
-        raise ConfigError(f"n must be a positive integer, got {n!r}")
-    if isinstance(n_strata, bool) or not isinstance(n_strata, (int, np.integer)) or n_strata < 1:
-        raise ConfigError(f"n_strata must be a positive integer, got {n_strata!r}")
-    users = fold.eval_users
-    if len(users) == 0:
-        raise DataError("the fold has no evaluation users (no held-out interactions)")
-    activity = np.diff(fold.train_matrix.indptr)[users]
-    edges = np.unique(np.quantile(activity, np.linspace(0, 1, n_strata + 1)[1:-1], method="higher"))
-    stratum = np.searchsorted(edges, activity, side="right")
-    n_h = np.bincount(stratum, minlength=len(edges) + 1)
-    keep = n_h > 0
-    # Renumber strata so that empty ones disappear; a stratum's lower edge goes with it.
-    remap = np.cumsum(keep) - 1
-    stratum = remap[stratum]
-    lower = np.concatenate([[-1], edges.astype(np.int64)])[keep]  # -1: the first stratum has no lower edge
-    edges = lower[1:]
-    population = n_h[keep]
-    rng = np.random.default_rng(seed)
-    if n >= len(users):
-        chosen = np.arange(len(users))
-    else:
-        share = population / population.sum() * n
-        alloc = np.minimum(population, np.maximum(np.floor(share).astype(np.int64), np.minimum(2, population)))
-        # Hand out what rounding left over to the largest remainders.
-        for h in np.argsort(-(share - np.floor(share)), kind="stable"):
-            if alloc.sum() >= n:
-                break
-            if alloc[h] < population[h]:
-                alloc[h] += 1
-        parts = [rng.choice(np.flatnonzero(stratum == h), size=int(alloc[h]), replace=False) for h in range(len(population))]
-        chosen = np.sort(np.concatenate(parts))
-    return UserSample(
-        users=users[chosen].astype(np.int64),
-        stratum=stratum[chosen].astype(np.int64),
-        population=population.astype(np.int64),
-        edges=edges.astype(np.int64),
-        seed=int(seed),
-    )
-
-
-def _parse_metric(metric: str, ks: tuple[int, ...]) -> tuple[str, int]:
-    name, _, k = str(metric).rpartition("@")
-    if name not in RANK_METRICS or not k.isdigit():
-        raise ConfigError(f"metric: expected '<name>@<k>' with name in {list(RANK_METRICS)}, got {metric!r}")
-    if int(k) not in ks:
-        raise ConfigError(f"metric: cut-off {k} of {metric!r} is not among ks={list(ks)}")
-    return name, int(k)
-
-
-class BlendEngine:
+class BlendEngine(DominancePruning, WeightedSumKernels):
     """Evaluate many weight vectors of one blend on a fixed set of users, fast.
 
     Parameters
@@ -304,7 +172,7 @@ class BlendEngine:
         if bad:
             raise ConfigError(f"metrics: the engine computes rank metrics {list(RANK_METRICS)} only, got {bad}")
         self._metrics = metrics
-        self._main = _parse_metric(self.metric, self._ks)
+        self._main = parse_metric(self.metric, self._ks)
         if self._main[0] not in metrics:
             raise ConfigError(f"metric {self.metric!r} is not among the computed metrics {list(metrics)}")
         if self.dtype not in _DTYPES:
@@ -431,290 +299,12 @@ class BlendEngine:
         self.prepared_ = True
         return self
 
-    def _build_pruning(self, progress: bool) -> None:
-        """Split each user's candidates by dominance against the held-out item.
-
-        For non-negative scalar weights, summing in float32 is monotone in every term
-        (rounding is monotone), so a candidate scoring at least the held-out item's value in
-        *every* source is placed above it for *any* weights ("always above"), and one scoring
-        below it in every source by more than the rounding error of the sums is never placed
-        above it. Only the rest ("undecided") needs the weighted sum. A user with at least
-        ``max(ks)`` always-above candidates misses at every cut-off whatever the weights,
-        and is not summed at all. Applies to users with exactly one held-out item, all
-        sources stored as blocks; exact (the same numbers as the dense path) as long as
-        positive weights are not tiny (>= ``_PRUNE_MIN_WEIGHT``).
-        """
-        self.pruned_ = False
-        if self.prune is False or self.factors_ or len(self._multi) or not self._single.any():
-            return
-        if self.prune not in (True, "auto"):
-            raise ConfigError(f"prune must be True, False or 'auto', got {self.prune!r}")
-        n_rows, n_items = len(self.users_), self._n_items
-        kmax = max(self._ks)
-        n_src = len(self.names_)
-        # Rounding error bound of a float32 sum of n_src products, relative to the summed
-        # magnitudes (Higham 2002, ch. 3: gamma_{n+1}; from memory), with a 4x safety factor.
-        rel = 4.0 * (n_src + 1) * 2.0**-24
-        always = np.zeros(n_rows, dtype=np.int64)
-        rows_out: list[np.ndarray] = []
-        items_out: list[np.ndarray] = []
-        step = max(1, (1 << 22) // max(n_items, 1))
-        rows_all = np.arange(n_rows)
-        # Summing a gathered undecided cell costs several times a dense one: past ~15 % of
-        # the cells the dense path is faster (measured in benchmarks/bench_blend.py).
-        budget = 0.15 * n_rows * n_items if self.prune == "auto" else np.inf
-        kept = 0
-        for lo in tqdm(range(0, n_rows, step), desc="sorting candidates by dominance", unit="chunk", disable=not progress):
-            hi = min(lo + step, n_rows)
-            r = rows_all[lo:hi]
-            ok = self._single[lo:hi]
-            t_items = self._target[lo:hi]
-            ge = np.ones((hi - lo, n_items), dtype=bool)
-            below = np.ones((hi - lo, n_items), dtype=bool)
-            finite = np.ones((hi - lo, n_items), dtype=bool)
-            for name in self.names_:
-                b = self.blocks_[name][lo:hi].astype(np.float32, copy=False)
-                t = b[r - lo, t_items][:, None].astype(np.float32)
-                finite &= np.isfinite(b)
-                ge &= b >= t
-                margin = rel * (np.abs(b) + np.abs(t)) + 1e-30
-                with np.errstate(invalid="ignore"):
-                    below &= (t - b) > margin
-            finite[r - lo, t_items] = False  # the held-out item itself
-            finite[~ok] = False
-            a = ge & finite
-            always[lo:hi] = a.sum(axis=1)
-            undecided = finite & ~a & ~below
-            undecided[always[lo:hi] >= kmax] = False
-            ur, ui = np.nonzero(undecided)
-            kept += len(ur)
-            if kept > budget:
-                return
-            rows_out.append(ur + lo)
-            items_out.append(ui)
-        p_rows = np.concatenate(rows_out) if rows_out else np.zeros(0, dtype=np.int64)
-        p_items = np.concatenate(items_out) if items_out else np.zeros(0, dtype=np.int64)
-        self._p_rows = p_rows.astype(np.int64)
-        self._p_vals = [np.ascontiguousarray(self.blocks_[n][p_rows, p_items], dtype=np.float32) for n in self.names_]
-        live = self._single & (always < kmax)
-        self._p_live = np.flatnonzero(live)
-        self._p_tvals = [self.blocks_[n][self._p_live, self._target[self._p_live]].astype(np.float32) for n in self.names_]
-        self._p_always = always
-        self._p_kmax = kmax
-        self.pruned_ = True
-
-    def _run_pruned(self, weights: dict[str, float | np.ndarray]) -> np.ndarray | None:
-        """Ranks by the dominance shortcut, or ``None`` when it does not apply to ``weights``."""
-        if not getattr(self, "pruned_", False):
-            return None
-        values = [weights[n] for n in self.names_]
-        if any(isinstance(w, np.ndarray) for w in values):
-            return None  # per-item weights: dominance between items no longer holds
-        if any(0 < w < _PRUNE_MIN_WEIGHT for w in values):
-            return None
-        idx = [j for j, w in enumerate(values) if w > 0]
-
-        def summed(columns: list[np.ndarray]) -> np.ndarray:
-            # Same operations in the same order as the dense path (and Blend.score).
-            out = np.multiply(columns[idx[0]], np.float32(values[idx[0]]))
-            for j in idx[1:]:
-                out += np.multiply(columns[j], np.float32(values[j]))
-            return out
-
-        ranks = np.full(len(self._truth.indices), UNRANKED, dtype=np.int64)
-        single = np.flatnonzero(self._single)
-        # Users with at least max(ks) always-above candidates: a miss at every cut-off.
-        ranks[self._truth.indptr[single]] = self._p_always[single] + 1
-        live = self._p_live
-        if len(live):
-            t = summed(self._p_tvals)
-            pos = np.empty(len(self.users_), dtype=np.int64)
-            pos[live] = np.arange(len(live))
-            if len(self._p_rows):
-                above = summed(self._p_vals) >= t[pos[self._p_rows]]
-                extra = np.bincount(pos[self._p_rows], weights=above, minlength=len(live)).astype(np.int64)
-            else:
-                extra = np.zeros(len(live), dtype=np.int64)
-            ranks[self._truth.indptr[live]] = 1 + self._p_always[live] + extra
-        return ranks
 
     # ------------------------------------------------------------------ weights
     def _check_prepared(self) -> None:
         if not getattr(self, "prepared_", False):
             raise RuntimeError("BlendEngine is not prepared: call prepare() first")
 
-    def _check_weights(self, weights: Mapping[str, Any] | Sequence[float] | np.ndarray) -> dict[str, float | np.ndarray]:
-        """One non-negative weight (number or ``(n_items,)`` vector) per source, in source order."""
-        item_weights = getattr(weights, "item_weights", None)
-        if callable(item_weights):
-            # A fitted Blend / GatedBlend over (some of) these sources: its own per-item weights.
-            given = item_weights()
-            weights = {n: given.get(n, 0.0) for n in self.names_} | {n: w for n, w in given.items() if n not in self.names_}
-        if not isinstance(weights, Mapping):
-            values = np.asarray(weights, dtype=np.float64)
-            if values.shape != (len(self.names_),):
-                raise ConfigError(f"weights: expected a mapping or {len(self.names_)} numbers (one per source {self.names_})")
-            weights = dict(zip(self.names_, values.tolist(), strict=True))
-        unknown = [n for n in weights if n not in self._sources]
-        if unknown:
-            raise ConfigError(f"weights: {unknown} are not sources of this engine; its sources are {self.names_}")
-        missing = [n for n in self.names_ if n not in weights]
-        if missing:
-            raise ConfigError(f"weights: no weight for source(s) {missing} (give 0 to leave a source out)")
-        out: dict[str, float | np.ndarray] = {}
-        for name in self.names_:
-            w = weights[name]
-            if isinstance(w, np.ndarray) and w.ndim == 1:
-                if w.shape != (self._n_items,):
-                    raise ConfigError(f"weights.{name}: a per-item weight vector needs {self._n_items} entries, got {w.shape}")
-                if not np.all(np.isfinite(w)) or np.any(w < 0):
-                    raise ConfigError(f"weights.{name}: per-item weights must be finite and >= 0")
-                out[name] = w.astype(np.float32)
-                continue
-            if isinstance(w, (bool, np.bool_)) or not isinstance(w, (Real, np.floating, np.integer)):
-                raise ConfigError(f"weights.{name}: must be a number, got {w!r}")
-            w = float(w)
-            if not math.isfinite(w) or w < 0:
-                raise ConfigError(f"weights.{name}: must be a finite number >= 0, got {w!r}")
-            out[name] = w
-        if not any(np.any(np.asarray(w) > 0) for w in out.values()):
-            raise ConfigError(f"weights: all weights are zero; at least one source needs a positive weight ({out})")
-        return out
-
-    # ------------------------------------------------------------------ kernels
-    def _source_rows(self, name: str, lo: int, hi: int) -> np.ndarray:
-        block = self.blocks_.get(name)
-        if block is not None:
-            return block[lo:hi]
-        uf, vt = self.factors_[name]
-        return uf[lo:hi] @ vt
-
-    def _mask_rows(self, out: np.ndarray, lo: int, hi: int) -> None:
-        a, b = self._seen.indptr[lo], self._seen.indptr[hi]
-        out[self._seen_rows[a:b] - lo, self._seen.indices[a:b]] = -np.inf
-
-    def _widen(self, rows: np.ndarray, out: np.ndarray) -> np.ndarray:
-        """float16 rows as float32 in ``out``, through a table of all 65,536 float16 values
-        (exact, and several times faster than numpy's own float16 cast here)."""
-        np.take(self._half_table, rows.view(np.uint16), out=out)
-        return out
-
-    def _terms(self, weights: dict[str, float | np.ndarray]) -> list[tuple[str, np.ndarray]]:
-        """``(name, float32 weight)`` of the sources that take part (some weight > 0), in order."""
-        return [(n, np.asarray(weights[n], dtype=np.float32)) for n in self.names_ if np.any(np.asarray(weights[n]) > 0)]
-
-    def _weighted_sum(
-        self, terms: list[tuple[str, np.ndarray]], lo: int, hi: int, out: np.ndarray, tmp: np.ndarray, conv: np.ndarray | None = None
-    ) -> None:
-        """``out = Σ_s w_s · block_s[lo:hi]`` in float32, in the same operation order as ``Blend.score``.
-
-        Call under ``np.errstate(invalid="ignore")``: a zero per-item weight times a seen
-        item's ``-inf`` is NaN, which is never counted either.
-        """
-        any_block = False
-        for i, (name, w32) in enumerate(terms):
-            rows = self._source_rows(name, lo, hi)
-            if rows.dtype != np.float32:
-                conv = np.empty(rows.shape, np.float32) if conv is None else conv[: hi - lo]
-                rows = self._widen(rows, conv)
-            any_block |= name in self.blocks_
-            if i == 0:
-                np.multiply(rows, w32, out=out)
-            else:
-                np.multiply(rows, w32, out=tmp)
-                np.add(out, tmp, out=out)
-        if not any_block:
-            self._mask_rows(out, lo, hi)
-
-    def _rank_rows(self, acc: np.ndarray, lo: int, hi: int, ranks: np.ndarray) -> None:
-        """Ranks of the single-target rows ``lo:hi`` from their summed scores ``acc``."""
-        single = self._single[lo:hi]
-        if not single.any():
-            return
-        local = np.arange(hi - lo)
-        targets = acc[local, self._target[lo:hi]]
-        targets = np.where(single, targets, np.nan)
-        # The target counts itself once: count = 1 + candidates placed above it.
-        counts = count_at_least(acc, None, targets)
-        idx = self._truth.indptr[lo:hi][single]
-        ranks[idx] = np.where(np.isneginf(targets[single]), UNRANKED, counts[single])
-
-    def _rank_multi(self, acc: np.ndarray, rows: np.ndarray, ranks: np.ndarray) -> None:
-        """Ranks of rows with several held-out items, by the evaluator's general path."""
-        if len(rows) == 0:
-            return
-        br = rank_heldout(acc, self._seen[rows], self._truth[rows])
-        starts = self._truth.indptr[rows]
-        pos = np.repeat(starts, np.diff(br.indptr)) + (np.arange(len(br.items)) - np.repeat(br.indptr[:-1], np.diff(br.indptr)))
-        ranks[pos] = br.ranks
-
-    def _run(self, weights: dict[str, float | np.ndarray], *, delta: tuple[str, float] | None = None, keep_sum: bool = False) -> np.ndarray:
-        """Ranks of every held-out item (aligned with the truth CSR) for ``weights``.
-
-        With ``delta=(name, dw)`` the kept running sum is updated in place by ``dw × block``
-        instead of being recomputed; with ``keep_sum`` the full sum is stored for later deltas.
-        """
-        n_rows, n_items = len(self.users_), self._n_items
-        ranks = np.full(len(self._truth.indices), UNRANKED, dtype=np.int64)
-        step = self._step
-        multi_set = np.zeros(n_rows, dtype=bool)
-        multi_set[self._multi] = True
-        if keep_sum and self._sum is None:
-            self._sum = np.empty((n_rows, n_items), dtype=np.float32)
-        terms = self._terms(weights)
-
-        def work(lo_all: int, hi_all: int) -> None:
-            tmp = np.empty((step, n_items), dtype=np.float32)
-            own = np.empty((step, n_items), dtype=np.float32)
-            conv = np.empty((step, n_items), dtype=np.float32) if self.dtype != "float32" else None
-            multi_rows: list[int] = []
-            multi_acc: list[np.ndarray] = []
-            for lo in range(lo_all, hi_all, step):
-                hi = min(lo + step, hi_all)
-                m = hi - lo
-                if delta is not None:
-                    acc = self._sum[lo:hi]
-                    name, dw = delta
-                    rows = self._source_rows(name, lo, hi)
-                    if conv is not None and rows.dtype != np.float32:
-                        rows = self._widen(rows, conv[:m])
-                    # -inf × dw and -inf + inf at seen items give NaN, which is never counted.
-                    np.multiply(rows, np.float32(dw), out=tmp[:m])
-                    np.add(acc, tmp[:m], out=acc)
-                else:
-                    acc = self._sum[lo:hi] if keep_sum else own[:m]
-                    self._weighted_sum(terms, lo, hi, acc, tmp[:m], conv)
-                self._rank_rows(acc, lo, hi, ranks)
-                if multi_set[lo:hi].any():
-                    local = np.flatnonzero(multi_set[lo:hi])
-                    multi_rows.extend((local + lo).tolist())
-                    multi_acc.append(acc[local].copy())
-                    if sum(len(a) for a in multi_acc) >= 256:
-                        self._rank_multi(np.concatenate(multi_acc), np.asarray(multi_rows), ranks)
-                        multi_rows, multi_acc = [], []
-            if multi_acc:
-                self._rank_multi(np.concatenate(multi_acc), np.asarray(multi_rows), ranks)
-
-        def guarded(lo_all: int, hi_all: int) -> None:
-            with np.errstate(invalid="ignore"):
-                work(lo_all, hi_all)
-
-        # Limiting BLAS threads only matters for factor products; the limiter itself costs
-        # milliseconds, so it is skipped when every source is stored.
-        limit = self._blas.limit(limits=1 if self.threads > 1 else self.threads, user_api="blas") if self.factors_ else None
-        try:
-            if self.threads > 1 and n_rows >= 2 * step:
-                from concurrent.futures import ThreadPoolExecutor
-
-                bounds = np.linspace(0, n_rows, self.threads + 1).astype(int)
-                with ThreadPoolExecutor(self.threads) as pool:
-                    list(pool.map(lambda i: guarded(bounds[i], bounds[i + 1]), range(self.threads)))
-            else:
-                guarded(0, n_rows)
-        finally:
-            if limit is not None:
-                limit.restore_original_limits()
-        return ranks
 
     def _per_user(self, ranks: np.ndarray) -> dict[str, np.ndarray]:
         br = BlockRanks(self._truth.indptr.astype(np.int64), self._truth.indices.astype(np.int64), ranks, self._n_cand)

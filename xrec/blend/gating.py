@@ -34,6 +34,7 @@ import numpy as np
 import pandas as pd
 
 from xrec.blend._base import check_sources
+from xrec.blend._search import DEFAULT_GRID, LearnResult, Tracker, ascend, coordinate_ascent, simplex
 from xrec.blend.blend import Blend, check_normalizers, check_one_per_source, check_weight
 from xrec.errors import ConfigError
 from xrec.fold import Fold
@@ -269,8 +270,6 @@ def learn_gated_weights(
         ``best_single`` holds ``("ungated start", its validation score)`` and
         ``best_single_test`` its test score, so the gain of gating shows on both folds.
     """
-    from xrec.blend.learn import DEFAULT_GRID, LearnResult, _ascend, _simplex, _Tracker, coordinate_ascent
-
     names = list(engine.names_)
     n_src = len(names)
     counts = engine.fold.item_train_counts
@@ -286,19 +285,19 @@ def learn_gated_weights(
         base = coordinate_ascent(engine, n_restarts=1, seed=seed, progress=progress)
         start_w = np.array([base.weights[n] for n in names])
     else:
-        start_w = _simplex([start[n] for n in names])
+        start_w = simplex([start[n] for n in names])
     labels = [f"{b}.{n}" for b in BANDS for n in names]
-    track = _Tracker(engine, progress, "gated coordinate ascent", to_weights=to_weights, labels=labels)
+    track = Tracker(engine, progress, "gated coordinate ascent", to_weights=to_weights, labels=labels)
     coords = [i for i in range(len(labels)) if present[i // n_src]]
     rng = np.random.default_rng(seed)
     first = np.tile(start_w, len(BANDS))
     start_score = track(first, "ungated start")
     starts = [first] + [np.tile(rng.dirichlet(np.ones(n_src)), len(BANDS)) * rng.uniform(0.5, 1.5, len(BANDS)).repeat(n_src) for _ in range(n_restarts)]
-    finals = _ascend(track, starts, coords, grid or DEFAULT_GRID, refine, max_sweeps, 1e-12, rng)
+    finals = ascend(track, starts, coords, grid or DEFAULT_GRID, refine, max_sweeps, 1e-12, rng)
     best = max(finals, key=lambda t: (t[0], -t[1]))
     v, score = best[2], best[0]
     if score < start_score:
-        v, score = _simplex(first), start_score
+        v, score = simplex(first), start_score
     band_weights = _flat_to_band_weights(v, names)
     result = LearnResult(
         method="gated_coordinate_ascent",

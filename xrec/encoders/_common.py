@@ -7,6 +7,7 @@ Nothing here imports torch at module level, so the text encoder stays importable
 from __future__ import annotations
 
 import contextlib
+import hashlib
 import importlib.util
 from collections.abc import Iterator, Sequence
 from pathlib import Path
@@ -83,3 +84,13 @@ def text_problems(contents: Sequence[Any]) -> dict[int, str]:
         elif not text.strip():
             problems[i] = f"empty text ({text!r:.40})"
     return problems
+
+
+def file_sha256(path: Path) -> str:
+    """sha256 hex of a file's bytes, read in 1 MiB pieces."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            digest.update(chunk)
+    return digest.hexdigest()
+

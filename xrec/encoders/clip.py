@@ -18,17 +18,16 @@ from typing import Any
 
 import numpy as np
 
-from xrec.encoders._common import OnError, check_batching, check_on_error, text_problems, torch_threads
-from xrec.encoders.base import Encoder
-from xrec.encoders.image import (
+from xrec.encoders._common import OnError, check_batching, check_on_error, file_sha256, text_problems, torch_threads
+from xrec.encoders._image_io import (
     DEFAULT_MAX_PIXELS,
-    _BadImage,
-    _check_contents,
-    _decode,
-    _file_sha256,
-    _report,
+    BadImage,
+    check_contents,
+    decode_checked,
     image_problems,
+    report_problems,
 )
+from xrec.encoders.base import Encoder
 from xrec.errors import ConfigError, DataError
 
 _EXAMPLE_TAG = {"ViT-B-32": "laion2b_s34b_b79k", "ViT-B-16": "laion2b_s34b_b88k"}
@@ -170,7 +169,7 @@ class ClipEncoders:
         self._check_settings()
         if self.weights is not None:
             if not hasattr(self, "weights_sha256_"):
-                self.weights_sha256_ = _file_sha256(Path(self.weights))
+                self.weights_sha256_ = file_sha256(Path(self.weights))
             return f"open_clip:{self.model_name}:{self.weights_sha256_[:16]}"
         return f"open_clip:{self.model_name}:tag={self.pretrained_tag}"
 
@@ -277,7 +276,7 @@ class _ClipPart(Encoder):
         n = len(contents)
         problems = self.problems(contents) if policy == "raise" else {}
         what = f"{self.modality}s"
-        _report(problems, n, policy, who, what)
+        report_problems(problems, n, policy, who, what)
         out = np.zeros((n, parent.dim), dtype=np.float32)
         ok = np.zeros(n, dtype=bool)
         with tqdm(total=n, disable=not progress, unit=self.modality[:3], desc=who) as bar, torch_threads(parent.num_threads):
@@ -290,7 +289,7 @@ class _ClipPart(Encoder):
                     out[rows] = torch.nn.functional.normalize(vectors.float(), dim=1).numpy()
                     ok[rows] = True
                 bar.update(stop - start)
-        _report(problems, n, policy, who, what)
+        report_problems(problems, n, policy, who, what)
         return out, ok
 
 
@@ -306,11 +305,11 @@ class ClipImageEncoder(_ClipPart):
     version = "1"
 
     def _contents(self, contents: Any, who: str) -> list[Any]:
-        return _check_contents(contents, who)
+        return check_contents(contents, who)
 
     def problems(self, contents: Sequence[Any]) -> dict[int, str]:
         """Images refused by the cheap header checks, with reasons."""
-        return image_problems(_check_contents(contents, "clip image encoder"), max_pixels=self.parent.max_pixels)
+        return image_problems(check_contents(contents, "clip image encoder"), max_pixels=self.parent.max_pixels)
 
     def _prepare(self, contents: list[Any], rows: range, problems: dict[int, str]) -> tuple[list[int], Any]:
         import torch
@@ -319,8 +318,8 @@ class ClipImageEncoder(_ClipPart):
         kept, tensors = [], []
         for i in rows:
             try:
-                img = _decode(contents[i], parent.max_pixels, 2 * parent._image_size())
-            except _BadImage as exc:
+                img = decode_checked(contents[i], parent.max_pixels, 2 * parent._image_size())
+            except BadImage as exc:
                 problems[i] = str(exc)
                 continue
             kept.append(i)

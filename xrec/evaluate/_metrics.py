@@ -6,6 +6,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
+from xrec.errors import ConfigError
 from xrec.evaluate._ranking import BlockRanks
 
 #: Metrics computed from held-out ranks (one value per user).
@@ -17,6 +18,16 @@ ALL_METRICS = RANK_METRICS + LIST_METRICS
 
 def metric_column(metric: str, k: int) -> str:
     return f"{metric}@{k}"
+
+
+def parse_metric(metric: str, ks: tuple[int, ...]) -> tuple[str, int]:
+    """``"<name>@<k>"`` -> ``(name, k)`` for a rank metric whose cut-off is among ``ks``."""
+    name, _, k = str(metric).rpartition("@")
+    if name not in RANK_METRICS or not k.isdigit():
+        raise ConfigError(f"metric: expected '<name>@<k>' with name in {list(RANK_METRICS)}, got {metric!r}")
+    if int(k) not in ks:
+        raise ConfigError(f"metric: cut-off {k} of {metric!r} is not among ks={list(ks)}")
+    return name, int(k)
 
 
 def metrics_from_ranks(ranks: BlockRanks, ks: Sequence[int], metrics: Sequence[str] = RANK_METRICS) -> dict[str, np.ndarray]:

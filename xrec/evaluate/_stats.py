@@ -1,4 +1,4 @@
-"""Resampling statistics over per-user values: bootstrap means, sign-flip test, Holm.
+"""Statistics over per-user values: bootstrap means, sign-flip test, Holm, normal and Wilson intervals.
 
 Functions take one column of per-user values or several side by side (``n_users × m``);
 every column sees the same resamples, so results for a column do not depend on which
@@ -6,6 +6,8 @@ other columns are passed with it.
 """
 
 from __future__ import annotations
+
+import math
 
 import numpy as np
 
@@ -84,3 +86,48 @@ def holm(pvalues: np.ndarray) -> np.ndarray:
     adjusted = np.empty(m)
     adjusted[order] = np.maximum.accumulate(scaled)
     return adjusted
+
+
+def wilson_interval(hits: np.ndarray, n: np.ndarray, confidence: float = 0.95) -> tuple[np.ndarray, np.ndarray]:
+    """Wilson score interval of a binomial proportion (Wilson, JASA 22, 1927), vectorized.
+
+    ``n == 0`` gives NaN bounds.
+
+    Parameters
+    ----------
+    hits, n
+        Successes and trials (arrays of the same shape).
+    confidence
+        Two-sided level of the interval.
+
+    Returns
+    -------
+    (np.ndarray, np.ndarray)
+        Lower and upper bounds.
+    """
+    from scipy.stats import norm
+
+    hits = np.asarray(hits, dtype=np.float64)
+    n = np.asarray(n, dtype=np.float64)
+    z = float(norm.ppf(0.5 + confidence / 2.0))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        p = hits / n
+        denom = 1.0 + z**2 / n
+        centre = (p + z**2 / (2 * n)) / denom
+        half = z * np.sqrt(p * (1 - p) / n + z**2 / (4 * n**2)) / denom
+    return centre - half, centre + half
+
+
+def normal_interval(values: np.ndarray, confidence: float = 0.95) -> tuple[float, float, float]:
+    """Mean and normal-approximation interval ``mean ± z·s/√n`` of per-user values (NaN ignored)."""
+    from scipy.stats import norm
+
+    v = np.asarray(values, dtype=np.float64)
+    v = v[~np.isnan(v)]
+    if len(v) == 0:
+        return math.nan, math.nan, math.nan
+    mean = float(v.mean())
+    if len(v) < 2:
+        return mean, mean, mean
+    half = float(norm.ppf(0.5 + confidence / 2.0)) * float(v.std(ddof=1)) / math.sqrt(len(v))
+    return mean, mean - half, mean + half

@@ -7,25 +7,26 @@ same charts serve the notebook (rendered by the front end) and static reports
 
 from __future__ import annotations
 
-import functools
-import html
-import json
 import math
-import os
 from collections.abc import Mapping, Sequence
-from pathlib import Path
 from typing import Any
 
 import altair as alt
 import numpy as np
 import pandas as pd
 
-from xrec._files import write_text_atomic
 from xrec.errors import ConfigError, DataError
+from xrec.evaluate._stats import wilson_interval
+from xrec.evaluate.segments import SEGMENT_COLUMNS, segment_hit_rates
+from xrec.notebook.frames import DIFFERENCE_COLUMNS, SUMMARY_COLUMNS, comparison_frame, summary_frame, verdicts
+from xrec.notebook.html_page import charts_to_html
 
 __all__ = [
     "BASELINE_COLOR",
+    "DIFFERENCE_COLUMNS",
     "OTHER_COLOR",
+    "SEGMENT_COLUMNS",
+    "SUMMARY_COLUMNS",
     "charts_to_html",
     "comparison_chart",
     "comparison_frame",
@@ -43,235 +44,6 @@ OTHER_COLOR = "#4c78a8"
 BETTER_COLOR = "#54a24b"
 UNCLEAR_COLOR = "#9d9d9d"
 _PANELS_PER_ROW = 2
-SUMMARY_COLUMNS = ["scorer", "metric", "mean", "ci_low", "ci_high", "n_users"]
-DIFFERENCE_COLUMNS = ["candidate", "metric", "difference", "ci_low", "ci_high", "verdict"]
-SEGMENT_COLUMNS = ["scorer", "segment", "hits", "n", "hit_rate", "ci_low", "ci_high"]
-
-
-# ---------------------------------------------------------------------------------------
-# tidy frames
-# ---------------------------------------------------------------------------------------
-
-
-def _summary_rows(name: str, summary: pd.DataFrame) -> pd.DataFrame:
-    frame = summary.reset_index()
-    if "metric" not in frame.columns:
-        frame = frame.rename(columns={frame.columns[0]: "metric"})
-    missing = [c for c in ("mean", "ci_low", "ci_high") if c not in frame.columns]
-    if missing:
-        raise DataError(f"summary of {name!r} lacks column(s) {missing}; expected Scorecard.summary() output")
-    frame["scorer"] = name
-    if "n_users" not in frame.columns:
-        frame["n_users"] = np.nan
-    return frame[SUMMARY_COLUMNS]
-
-
-def summary_frame(
-    scorecards_or_summary: Any,
-    *,
-    confidence: float = 0.95,
-    seed: int = 0,
-    n_resamples: int = 2000,
-) -> pd.DataFrame:
-    """One row per (scorer, metric): mean and confidence interval.
-
-    Parameters
-    ----------
-    scorecards_or_summary
-        A :class:`~xrec.evaluate.Scorecard`, a sequence of them, a mapping name ->
-        Scorecard or name -> ``Scorecard.summary()`` frame, or an already tidy frame with
-        columns ``scorer, metric, mean, ci_low, ci_high``.
-    confidence, seed, n_resamples
-        Passed to ``Scorecard.summary`` (bootstrap percentile intervals).
-
-    Returns
-    -------
-    DataFrame
-        Columns ``scorer, metric, mean, ci_low, ci_high, n_users``, scorers in the order given.
-    """
-    from xrec.evaluate.scorecard import Scorecard
-
-    obj = scorecards_or_summary
-    if isinstance(obj, pd.DataFrame):
-        missing = [c for c in ("scorer", "metric", "mean", "ci_low", "ci_high") if c not in obj.columns]
-        if missing:
-            raise DataError(f"summary frame lacks column(s) {missing}; it has {list(obj.columns)}")
-        out = obj.copy()
-        if "n_users" not in out.columns:
-            out["n_users"] = np.nan
-        return out[SUMMARY_COLUMNS].reset_index(drop=True)
-    if isinstance(obj, Scorecard):
-        obj = [obj]
-    if isinstance(obj, Mapping):
-        items = list(obj.items())
-    elif isinstance(obj, Sequence) and not isinstance(obj, str):
-        items = [(getattr(card, "name", str(i)), card) for i, card in enumerate(obj)]
-    else:
-        raise ConfigError(
-            f"expected Scorecard(s), a mapping of name -> Scorecard / summary, or a tidy frame; got {type(obj).__name__}"
-        )
-    if not items:
-        raise ConfigError("no scorecards given")
-    names = [str(n) for n, _ in items]
-    if len(set(names)) != len(names):
-        raise ConfigError(f"scorer names repeat: {names}; pass a mapping with unique names")
-    parts = []
-    for name, value in items:
-        if isinstance(value, Scorecard):
-            value = value.summary(confidence=confidence, seed=seed, n_resamples=n_resamples)
-        if not isinstance(value, pd.DataFrame):
-            raise ConfigError(f"{name!r}: expected a Scorecard or a summary frame, got {type(value).__name__}")
-        parts.append(_summary_rows(str(name), value))
-    return pd.concat(parts, ignore_index=True)
-
-
-def comparison_frame(comparison: Any, *, alpha: float = 0.05) -> pd.DataFrame:
-    """Differences against the baseline as a tidy frame (one row per candidate and metric).
-
-    ``verdict`` is ``"higher"`` / ``"lower"`` when the interval excludes 0 and the
-    Holm-adjusted p-value is below ``alpha``, else ``"unclear"``.
-    """
-    table = getattr(comparison, "table", comparison)
-    if not isinstance(table, pd.DataFrame):
-        raise ConfigError(f"expected a Comparison or its table, got {type(comparison).__name__}")
-    missing = [c for c in ("candidate", "metric", "difference", "ci_low", "ci_high") if c not in table.columns]
-    if missing:
-        raise DataError(f"comparison table lacks column(s) {missing}")
-    out = table.copy()
-    p = out["p_holm"] if "p_holm" in out.columns else out.get("p_value", pd.Series(0.0, index=out.index))
-    out["verdict"] = _verdict(out["ci_low"].to_numpy(), out["ci_high"].to_numpy(), p.to_numpy(dtype=float) < alpha)
-    return out[DIFFERENCE_COLUMNS + [c for c in ("p_value", "p_holm") if c in out.columns]].reset_index(drop=True)
-
-
-def _verdict(lo: np.ndarray, hi: np.ndarray, significant: np.ndarray | None = None) -> list[str]:
-    sig = np.ones(len(lo), dtype=bool) if significant is None else np.asarray(significant, dtype=bool)
-    out = []
-    for a, b, s in zip(lo, hi, sig):
-        if s and a > 0:
-            out.append("higher")
-        elif s and b < 0:
-            out.append("lower")
-        else:
-            out.append("unclear")
-    return out
-
-
-def wilson_interval(hits: np.ndarray, n: np.ndarray, confidence: float = 0.95) -> tuple[np.ndarray, np.ndarray]:
-    """Wilson score interval of a binomial proportion (Wilson, JASA 22, 1927), vectorized.
-
-    ``n == 0`` gives NaN bounds.
-
-    Parameters
-    ----------
-    hits, n
-        Successes and trials (arrays of the same shape).
-    confidence
-        Two-sided level of the interval.
-
-    Returns
-    -------
-    (np.ndarray, np.ndarray)
-        Lower and upper bounds.
-    """
-    from scipy.stats import norm
-
-    hits = np.asarray(hits, dtype=np.float64)
-    n = np.asarray(n, dtype=np.float64)
-    z = float(norm.ppf(0.5 + confidence / 2.0))
-    with np.errstate(invalid="ignore", divide="ignore"):
-        p = hits / n
-        denom = 1.0 + z**2 / n
-        centre = (p + z**2 / (2 * n)) / denom
-        half = z * np.sqrt(p * (1 - p) / n + z**2 / (4 * n**2)) / denom
-    return centre - half, centre + half
-
-
-def _segment_labels(edges: Sequence[int]) -> list[str]:
-    labels = []
-    bounds = [0, *edges]
-    for i, lo in enumerate(bounds):
-        hi = bounds[i + 1] if i + 1 < len(bounds) else None
-        if hi is None:
-            labels.append(f"{lo}+")
-        elif hi - lo == 1:
-            labels.append("0 (cold)" if lo == 0 else f"{lo}")
-        else:
-            labels.append(f"{lo}-{hi - 1}")
-    return labels
-
-
-def segment_hit_rates(
-    scorers: Mapping[str, Any],
-    fold: Any,
-    *,
-    k: int = 10,
-    edges: Sequence[int] = (1,),
-    users: np.ndarray | None = None,
-    confidence: float = 0.95,
-    chunk_size: int = 1024,
-) -> pd.DataFrame:
-    """Hit rate at ``k`` of held-out items, split by the items' training popularity.
-
-    Every held-out (user, item) pair is ranked among the user's candidates with the
-    evaluator's ranking (same tie rule); a pair is a hit when its rank is at most ``k``.
-    Pairs are grouped by the item's number of training interactions: with ``edges=(1,)``
-    into *cold* (0) and ``1+``; with ``edges=(1, 20)`` into 0, 1-19 and 20+.
-
-    Parameters
-    ----------
-    scorers
-        Name -> anything :func:`xrec.evaluate.evaluate` accepts (source, blend, array, callable).
-    fold
-        The fold whose held-out items are ranked.
-    k
-        Cut-off.
-    edges
-        Increasing positive training counts that start each segment after the first.
-    users
-        Users to include; default ``fold.eval_users``.
-    confidence
-        Level of the Wilson score interval of each hit rate.
-    chunk_size
-        Users scored per block.
-
-    Returns
-    -------
-    DataFrame
-        Columns ``scorer, segment, hits, n, hit_rate, ci_low, ci_high``; segments (labelled
-        by training count: ``"0 (cold)"``, ``"1-19"``, ``"20+"``) in popularity order (a segment without held-out pairs has ``n = 0`` and NaN rates).
-    """
-    from xrec.evaluate import as_score_fn, rank_heldout
-
-    if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 1:
-        raise ConfigError(f"k must be a positive integer, got {k!r}")
-    edges = [int(e) for e in edges]
-    if any(e < 1 for e in edges) or any(b <= a for a, b in zip(edges, edges[1:])):
-        raise ConfigError(f"edges must be increasing positive integers, got {edges}")
-    if not isinstance(scorers, Mapping) or not scorers:
-        raise ConfigError("scorers must be a non-empty mapping of name -> scorer")
-    labels = _segment_labels(edges)
-    segment_of_item = np.searchsorted(np.asarray(edges), fold.item_train_counts, side="right")
-    users = fold.eval_users if users is None else np.asarray(users, dtype=np.int64)
-    seen_all = fold.train_matrix
-    truth_all = fold.heldout_matrix
-    rows = []
-    for name, scorer in scorers.items():
-        score = as_score_fn(scorer, fold.n_users, fold.n_items)
-        hits = np.zeros(len(labels), dtype=np.int64)
-        total = np.zeros(len(labels), dtype=np.int64)
-        for start in range(0, len(users), chunk_size):
-            chunk = users[start : start + chunk_size]
-            seen, truth = seen_all[chunk], truth_all[chunk]
-            ranks = rank_heldout(np.asarray(score(chunk)), seen, truth)
-            seg = segment_of_item[ranks.items]
-            total += np.bincount(seg, minlength=len(labels))
-            hits += np.bincount(seg, weights=(ranks.ranks <= k), minlength=len(labels)).astype(np.int64)
-        lo, hi = wilson_interval(hits, total, confidence)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            rate = hits / np.where(total > 0, total, np.nan)
-        for j, label in enumerate(labels):
-            rows.append((str(name), label, int(hits[j]), int(total[j]), float(rate[j]), float(lo[j]), float(hi[j])))
-    return pd.DataFrame(rows, columns=SEGMENT_COLUMNS)
 
 
 # ---------------------------------------------------------------------------------------
@@ -340,7 +112,7 @@ def metric_bars(
     data = prepare_summary(frame[frame["metric"].isin(metrics)], baseline)
     if title is None:
         title = f"{metrics[0]} ({confidence:.0%} CI)" if len(metrics) == 1 else f"Metrics ({confidence:.0%} CI)"
-    return _metric_bars_spec(data, metrics, names, baseline, title=title, width=width)
+    return metric_bars_spec(data, metrics, names, baseline, title=title, width=width)
 
 
 def prepare_summary(frame: pd.DataFrame, baseline: str | None) -> pd.DataFrame:
@@ -350,7 +122,7 @@ def prepare_summary(frame: pd.DataFrame, baseline: str | None) -> pd.DataFrame:
     return data
 
 
-def _metric_bars_spec(
+def metric_bars_spec(
     data: pd.DataFrame | alt.Data, metrics: Sequence[str], names: Sequence[str], baseline: str | None, *, title: str, width: int
 ) -> alt.TopLevelMixin:
     """Metric bars over one data source (a frame, or named data filled in later), one panel per metric."""
@@ -481,14 +253,14 @@ def difference_bars(frame: pd.DataFrame, *, baseline: str = "baseline", title: s
         raise DataError(f"difference frame lacks column(s) {missing}")
     data = frame.copy()
     if "verdict" not in data.columns:
-        data["verdict"] = _verdict(data["ci_low"].to_numpy(), data["ci_high"].to_numpy())
+        data["verdict"] = verdicts(data["ci_low"].to_numpy(), data["ci_high"].to_numpy())
     metrics = list(dict.fromkeys(data["metric"]))
     names = list(dict.fromkeys(data["candidate"]))
     extras = [c for c in ("p_value", "p_holm") if c in data.columns]
-    return _difference_spec(data, metrics, names, baseline, extras, title=title or f"Difference vs {baseline}", width=width)
+    return difference_spec(data, metrics, names, baseline, extras, title=title or f"Difference vs {baseline}", width=width)
 
 
-def _difference_spec(
+def difference_spec(
     data: pd.DataFrame | alt.Data, metrics: Sequence[str], names: Sequence[str], baseline: str, extras: Sequence[str], *, title: str, width: int
 ) -> alt.TopLevelMixin:
     color = alt.Color(
@@ -541,134 +313,3 @@ def comparison_chart(comparison: Any, metric: str | Sequence[str] | None = None,
     if title is None:
         title = f"Difference vs {baseline} ({settings.get('confidence', 0.95):.0%} paired-bootstrap CI)"
     return difference_bars(data, baseline=baseline, title=title)
-
-
-# ---------------------------------------------------------------------------------------
-# offline HTML page
-# ---------------------------------------------------------------------------------------
-
-_PAGE = """<!DOCTYPE html>
-<html lang="en">
-<head>
-<meta charset="utf-8">
-<title>{title}</title>
-<style>
-body {{ font-family: system-ui, -apple-system, "Segoe UI", sans-serif; margin: 2em auto; max-width: 1100px; color: #222; padding: 0 1em; }}
-h1 {{ font-size: 1.6em; }} h2 {{ font-size: 1.2em; margin-top: 2em; }}
-table {{ border-collapse: collapse; font-size: 0.9em; }} th, td {{ border: 1px solid #ddd; padding: 3px 8px; text-align: right; }}
-.xrec-chart {{ margin: 1em 0; }}
-</style>
-{head_script}
-</head>
-<body>
-<h1>{title}</h1>
-{intro}
-{body}
-{tail_script}
-</body>
-</html>
-"""
-
-
-@functools.lru_cache(maxsize=1)
-def _bundle() -> str:
-    """The Vega, Vega-Lite and Vega-Embed libraries as one script (built once per process)."""
-    import vl_convert as vlc
-
-    version = alt.SCHEMA_VERSION.lstrip("v")
-    major_minor = ".".join(version.split(".")[:2])
-    if major_minor in vlc.get_vegalite_versions():
-        return vlc.javascript_bundle(vl_version=major_minor)
-    return vlc.javascript_bundle()
-
-
-def _script_json(value: Any) -> str:
-    # "</" would close the <script> element early; "<\/" means the same inside a JS string.
-    return json.dumps(value).replace("</", "<\\/")
-
-
-def _as_items(charts: Any) -> list[tuple[str | None, Any]]:
-    if isinstance(charts, Mapping):
-        return [(str(k), v) for k, v in charts.items()]
-    if isinstance(charts, (alt.TopLevelMixin, str)):
-        charts = [charts]
-    items: list[tuple[str | None, Any]] = []
-    for entry in charts:
-        if isinstance(entry, tuple) and len(entry) == 2:
-            items.append((None if entry[0] is None else str(entry[0]), entry[1]))
-        else:
-            items.append((None, entry))
-    return items
-
-
-def charts_to_html(
-    charts: Any,
-    title: str,
-    path: str | os.PathLike,
-    intro_html: str = "",
-    *,
-    mode: str = "script",
-) -> Path:
-    """Write one self-contained HTML page holding several charts (no network needed to view it).
-
-    Parameters
-    ----------
-    charts
-        A chart, a sequence of entries, or a mapping heading -> entry. An entry is an altair
-        chart, an object with ``_repr_html_`` (e.g. a Scorecard or Comparison, shown as its
-        table), a raw HTML string, or a ``(heading, entry)`` pair.
-    title
-        Page title and top heading (escaped).
-    path
-        File to write (its folder must exist); written atomically.
-    intro_html
-        HTML placed under the title (not escaped: pass trusted markup).
-    mode
-        ``"script"``: interactive charts, with the Vega, Vega-Lite and Vega-Embed libraries
-        inlined once (about 0.9 MB) from ``vl-convert-python``; ``"svg"``: static SVG drawn
-        by ``vl-convert-python`` (no script at all).
-
-    Returns
-    -------
-    Path
-        The file written.
-    """
-    if mode not in ("script", "svg"):
-        raise ConfigError(f"mode must be 'script' or 'svg', got {mode!r}")
-    path = Path(path)
-    if not path.parent.is_dir():
-        raise ConfigError(f"path: folder {str(path.parent)!r} does not exist")
-    body: list[str] = []
-    specs: list[tuple[str, dict]] = []
-    for i, (heading, entry) in enumerate(_as_items(charts)):
-        if heading:
-            body.append(f"<h2>{html.escape(heading)}</h2>")
-        if isinstance(entry, alt.TopLevelMixin):
-            spec = entry.to_dict()
-            if mode == "svg":
-                import vl_convert as vlc
-
-                body.append(f'<div class="xrec-chart">{vlc.vegalite_to_svg(spec)}</div>')
-            else:
-                div = f"xrec-chart-{i}"
-                body.append(f'<div class="xrec-chart" id="{div}"></div>')
-                specs.append((div, spec))
-        elif isinstance(entry, str):
-            body.append(entry)
-        elif hasattr(entry, "_repr_html_"):
-            body.append(entry._repr_html_())
-        else:
-            raise ConfigError(f"charts: cannot place a {type(entry).__name__} on the page (give a chart, HTML text or a scorecard)")
-    head_script = tail_script = ""
-    if specs:
-        head_script = f'<script type="text/javascript">\n{_bundle()}\n</script>'
-        # The "actions" menu would link to the online Vega editor; keep only local exports.
-        options = {"actions": {"export": True, "source": False, "compiled": False, "editor": False}}
-        calls = "\n".join(
-            f"vegaEmbed('#{div}', {_script_json(spec)}, {_script_json(options)}).catch(console.error);" for div, spec in specs
-        )
-        tail_script = f'<script type="text/javascript">\n{calls}\n</script>'
-    page = _PAGE.format(
-        title=html.escape(title), intro=intro_html, body="\n".join(body), head_script=head_script, tail_script=tail_script
-    )
-    return write_text_atomic(path, page)

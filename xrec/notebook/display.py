@@ -144,14 +144,14 @@ def offline_charts(display_libraries: bool = True) -> None:
     """
     import altair as alt
 
-    from xrec.notebook.charts import _bundle
+    from xrec.notebook.html_page import vega_bundle
 
     alt.renderers.register(OFFLINE_RENDERER, _offline_renderer)
     alt.renderers.enable(OFFLINE_RENDERER)
     if display_libraries:
         from IPython.display import HTML, display
 
-        display(HTML(f'<script type="text/javascript">{_bundle()}</script><small>xrec: chart libraries loaded (offline).</small>'))
+        display(HTML(f'<script type="text/javascript">{vega_bundle()}</script><small>xrec: chart libraries loaded (offline).</small>'))
 
 
 def _formatters(ipython: Any) -> Any:

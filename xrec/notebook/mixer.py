@@ -19,9 +19,10 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-
 from xrec.errors import ConfigError, DataError, XrecError
+from xrec.evaluate._stats import normal_interval
 from xrec.fold import Fold
+from xrec.notebook.frames import interval_frame
 
 __all__ = ["WeightMixer", "interval_frame"]
 
@@ -42,35 +43,6 @@ def _records(frame: pd.DataFrame) -> list[dict]:
             clean[key] = value
         out.append(clean)
     return out
-
-
-def _normal_interval(values: np.ndarray, confidence: float) -> tuple[float, float, float]:
-    """Mean and normal-approximation interval ``mean ± z·s/√n`` of per-user values (NaN ignored)."""
-    from scipy.stats import norm
-
-    v = np.asarray(values, dtype=np.float64)
-    v = v[~np.isnan(v)]
-    if len(v) == 0:
-        return math.nan, math.nan, math.nan
-    mean = float(v.mean())
-    if len(v) < 2:
-        return mean, mean, mean
-    half = float(norm.ppf(0.5 + confidence / 2.0)) * float(v.std(ddof=1)) / math.sqrt(len(v))
-    return mean, mean - half, mean + half
-
-
-def interval_frame(per_user: Mapping[str, pd.DataFrame], columns: Sequence[str], confidence: float = 0.95) -> pd.DataFrame:
-    """Tidy ``scorer, metric, mean, ci_low, ci_high, n_users`` rows from per-user metric frames.
-
-    Intervals are normal approximations over users (``mean ± z·s/√n``), cheap enough to
-    recompute on every slider move.
-    """
-    rows = []
-    for name, frame in per_user.items():
-        for col in columns:
-            mean, lo, hi = _normal_interval(frame[col].to_numpy(), confidence)
-            rows.append((name, col, mean, lo, hi, int(frame[col].notna().sum())))
-    return pd.DataFrame(rows, columns=["scorer", "metric", "mean", "ci_low", "ci_high", "n_users"])
 
 
 class WeightMixer:
@@ -416,7 +388,7 @@ class WeightMixer:
 
     # ------------------------------------------------------------------ drawing
     def _frames(self) -> tuple[pd.DataFrame, pd.DataFrame]:
-        from xrec.notebook.charts import _verdict
+        from xrec.notebook.frames import verdicts
 
         k = self.k
         cols = [f"{m}@{k}" for m in self.metrics]
@@ -425,25 +397,25 @@ class WeightMixer:
         rows = []
         for col in cols:
             diff = current[col].to_numpy(dtype=np.float64) - self._baseline_frame[col].to_numpy(dtype=np.float64)
-            mean, lo, hi = _normal_interval(diff, self.confidence)
+            mean, lo, hi = normal_interval(diff, self.confidence)
             rows.append(("blend", col, mean, lo, hi))
         diffs = pd.DataFrame(rows, columns=["candidate", "metric", "difference", "ci_low", "ci_high"])
-        diffs["verdict"] = _verdict(diffs["ci_low"].to_numpy(), diffs["ci_high"].to_numpy())
+        diffs["verdict"] = verdicts(diffs["ci_low"].to_numpy(), diffs["ci_high"].to_numpy())
         return summary, diffs
 
     def _template(self) -> dict:
         """Vega-Lite spec of the live chart with named, empty data (built and validated once per K and baseline)."""
         import altair as alt
 
-        from xrec.notebook.charts import _difference_spec, _metric_bars_spec
+        from xrec.notebook.charts import difference_spec, metric_bars_spec
 
         key = (self.k, self.baseline_name_)
         spec = self._templates.get(key)
         if spec is None:
             cols = [f"{m}@{self.k}" for m in self.metrics]
             names = [self.baseline_name_, "blend"]
-            bars = _metric_bars_spec(alt.Data(name=_SUMMARY_DATA), cols, names, self.baseline_name_, title=f"Blend vs {self.baseline_name_}", width=240)
-            delta = _difference_spec(
+            bars = metric_bars_spec(alt.Data(name=_SUMMARY_DATA), cols, names, self.baseline_name_, title=f"Blend vs {self.baseline_name_}", width=240)
+            delta = difference_spec(
                 alt.Data(name=_DIFF_DATA), cols, ["blend"], self.baseline_name_, [], title="Paired difference (blend − baseline)", width=240
             )
             # The two panels colour by different fields (role, verdict): keep their scales apart.

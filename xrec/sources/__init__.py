@@ -4,7 +4,9 @@ from xrec.sources.base import LowRankSource, Source, make_source, source_kinds
 from xrec.sources.popularity import PopularitySource
 from xrec.sources.collaborative import ALSSource, BPRSource, ItemKNNSource
 from xrec.sources.attributes import AttributeSource
-from xrec.sources.content import CrossModalSource, EarlyFusionSource, ImageSource, TextSource
+from xrec.sources.content import ImageSource, TextSource
+from xrec.sources.cross_modal import CrossModalSource
+from xrec.sources.early_fusion import EarlyFusionSource
 
 __all__ = [
     "ALSSource",

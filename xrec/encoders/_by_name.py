@@ -1,0 +1,79 @@
+"""Encoders by name: the plain values a spec or blend file holds, one loaded model per process."""
+
+from __future__ import annotations
+
+from xrec.encoders.base import Encoder
+from xrec.errors import ConfigError
+
+__all__ = ["IMAGE_ENCODERS", "TEXT_ENCODERS", "make_image_encoder", "make_text_encoder"]
+
+TEXT_ENCODERS = ("minilm",)
+IMAGE_ENCODERS = ("efficientnet_lite0",)
+# One encoder (one loaded model) per name and error policy for the whole process: several
+# content sources fitted side by side would otherwise each load the same weights.
+_SHARED: dict[tuple[str, str, str], Encoder] = {}
+
+def make_text_encoder(name: str = "minilm", *, on_error: str = "skip") -> Encoder:
+    """The text encoder a setting names.
+
+    Parameters
+    ----------
+    name
+        ``"minilm"``: :class:`~xrec.encoders.text.MiniLMTextEncoder` (all-MiniLM-L6-v2, 384-d).
+    on_error
+        Passed to the encoder: ``"skip"`` gives blank texts a zero row and a warning.
+
+    Returns
+    -------
+    Encoder
+        Shared by every caller in this process that asks for the same name and policy,
+        so its model is loaded once.
+
+    Raises
+    ------
+    ConfigError
+        For an unknown name.
+    """
+    key = ("text", name, on_error)
+    if key in _SHARED:
+        return _SHARED[key]
+    if name == "minilm":
+        from xrec.encoders.text import MiniLMTextEncoder
+
+        return _SHARED.setdefault(key, MiniLMTextEncoder(on_error=on_error))  # type: ignore[arg-type]
+    raise ConfigError(f"text encoder {name!r} is unknown; known: {list(TEXT_ENCODERS)} (CLIP: use kind 'cross_modal' with bridge='clip')")
+
+
+def make_image_encoder(name: str = "efficientnet_lite0", *, on_error: str = "skip", crop: float = 1.0) -> Encoder:
+    """The image encoder a setting names.
+
+    Parameters
+    ----------
+    name
+        ``"efficientnet_lite0"``: :class:`~xrec.encoders.image.EfficientNetLite0Encoder`
+        (ImageNet-1k, 1,280-d pooled features).
+    on_error
+        Passed to the encoder: ``"skip"`` gives unreadable images a zero row and a warning.
+    crop
+        Share of each side kept around the centre (see the encoder's ``crop``).
+
+    Returns
+    -------
+    Encoder
+        Shared within the process, like :func:`make_text_encoder`'s.
+
+    Raises
+    ------
+    ConfigError
+        For an unknown name.
+    """
+    key = ("image", name, on_error, crop)
+    if key in _SHARED:
+        return _SHARED[key]
+    if name == "efficientnet_lite0":
+        from xrec.encoders.image import EfficientNetLite0Encoder
+
+        encoder = EfficientNetLite0Encoder(on_error=on_error, crop=crop)  # type: ignore[arg-type]
+        encoder._check_settings()  # a bad crop fails here, before the encoder is shared
+        return _SHARED.setdefault(key, encoder)
+    raise ConfigError(f"image encoder {name!r} is unknown; known: {list(IMAGE_ENCODERS)}")
