@@ -15,7 +15,7 @@ import tomli_w
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from xrec._blend_seal import seal, unseal
+from xrec.blendfile._seal import seal, unseal
 from xrec.blendfile import read_blend
 from xrec.errors import ConfigError, XrecError
 
@@ -75,3 +75,33 @@ def test_any_change_above_the_end_line_is_refused(body, data):
     new = data.draw(st.characters().filter(lambda c: c != body[at]))
     with pytest.raises(ConfigError):
         unseal(sealed[:at] + new + sealed[at + 1 :], "f")
+
+
+@pytest.fixture(scope="module")
+def blend_bytes(tmp_path_factory) -> bytes:
+    from test_blendfile import fitted_blend, tiny_dataset  # the blend-file tests' toy blend
+    from xrec.blendfile import save_blend
+    from xrec.split import split_dataset
+
+    ds = tiny_dataset()
+    split = split_dataset(ds, "leave_last", seed=0)
+    return save_blend(tmp_path_factory.mktemp("b") / "blend.toml", fitted_blend(split.test), dataset=ds).read_bytes()
+
+
+@_SETTINGS
+@given(data=st.data())
+def test_a_real_blend_file_cut_anywhere_is_refused(tmp_path_factory, blend_bytes, data):
+    at = data.draw(st.integers(0, len(blend_bytes) - 2))  # dropping only the final newline is harmless
+    path = tmp_path_factory.mktemp("b") / "blend.toml"
+    assert isinstance(_read(path, blend_bytes[:at]), ConfigError)
+
+
+@_SETTINGS
+@given(data=st.data())
+def test_a_real_blend_file_with_any_byte_changed_is_refused(tmp_path_factory, blend_bytes, data):
+    body_end = blend_bytes.rindex(b"\n# xrec blend file ends here") + 1
+    at = data.draw(st.integers(0, body_end - 1))
+    new = data.draw(st.integers(0, 255).filter(lambda b: b != blend_bytes[at]))
+    changed = blend_bytes[:at] + bytes([new]) + blend_bytes[at + 1 :]
+    path = tmp_path_factory.mktemp("b") / "blend.toml"
+    assert isinstance(_read(path, changed), ConfigError)

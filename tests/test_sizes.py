@@ -99,12 +99,15 @@ def test_runtime_recommend_k_is_bounded(exported):
 @pytest.mark.parametrize(("key", "value", "limit"), [("k", HUGE, "40 items"), ("users", HUGE, "40 users"), ("k", 41, "40 items")])
 def test_blend_file_check_sizes_are_bounded_before_the_refit(exported, key, value, limit, monkeypatch):
     import xrec.runtime
+    from xrec.blendfile._seal import seal, unseal
     from xrec.experiment import load_spec_dataset
     from xrec.spec import parse_spec
 
-    raw = tomllib.loads(exported.read_text(encoding="utf-8"))
+    raw = tomllib.loads(unseal(exported.read_text(encoding="utf-8"), "f"))
     raw["check"][key] = value
-    exported.write_text(tomli_w.dumps(raw), encoding="utf-8")
+    # Without the recorded sizes the reader cannot bound it; the runtime bounds it by the data.
+    del raw["split"]["record"]["n_items"], raw["split"]["record"]["n_users"]
+    exported.write_text(seal(tomli_w.dumps(raw)), encoding="utf-8")
 
     def refuse(*args, **kwargs):
         raise AssertionError("sources refitted before the check table was bounded")
@@ -113,3 +116,14 @@ def test_blend_file_check_sizes_are_bounded_before_the_refit(exported, key, valu
     dataset = load_spec_dataset(parse_spec({"data": raw["dataset"]["load"], "sources": {"p": {"kind": "popularity"}}}))
     with pytest.raises(ConfigError, match=rf"check\.{key}: {value} exceeds the {limit}"):
         xrec.runtime.load_blend(exported, dataset)
+
+
+def test_blend_file_check_sizes_are_bounded_by_the_recorded_split_on_reading(exported):
+    from xrec.blendfile import read_blend
+    from xrec.blendfile._seal import seal, unseal
+
+    raw = tomllib.loads(unseal(exported.read_text(encoding="utf-8"), "f"))
+    raw["check"]["k"] = HUGE
+    exported.write_text(seal(tomli_w.dumps(raw)), encoding="utf-8")
+    with pytest.raises(ConfigError, match=r"check\.k: 100000000 exceeds split\.record\.n_items = 40"):
+        read_blend(exported)

@@ -7,7 +7,7 @@ The main names are re-exported here; each subpackage documents its own:
 """
 
 from xrec.blend import Blend, CombMNZ, CombSum, ReciprocalRankFusion
-from xrec.blendfile import read_blend, save_blend
+from xrec.blendfile import read_blend, reseal_blend, save_blend
 from xrec.data import Catalog, CatalogSchema, Dataset, Interactions, load_movielens
 from xrec.data.demo import load_demo_shop
 from xrec.errors import ConfigError, DataError, FingerprintMismatch, XrecError
@@ -48,6 +48,7 @@ __all__ = [
     "load_movielens",
     "make_source",
     "read_blend",
+    "reseal_blend",
     "save_blend",
     "source_kinds",
     "split_dataset",

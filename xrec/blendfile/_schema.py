@@ -16,7 +16,7 @@ from xrec.errors import ConfigError, FingerprintMismatch
 __all__ = ["CHECK_K", "CHECK_USERS", "FOLDS", "FORMAT", "FORMAT_VERSION", "METHODS", "BlendSpec", "SourceSpec"]
 
 FORMAT = "xrec-blend"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 METHODS: tuple[str, ...] = ("weighted", "gated", *FUSION_METHODS)
 FOLDS = ("test", "validation")
 

@@ -49,7 +49,7 @@ def unseal(text: str, label: str) -> str:
     label
         How to name the file in messages (its path).
     """
-    body, last = _split_last_line(text)
+    body, last = split_last_line(text)
     match = _END_LINE.match(last)
     if match is None:
         if END_PREFIX in text:
@@ -69,7 +69,7 @@ def unseal(text: str, label: str) -> str:
     return body
 
 
-def _split_last_line(text: str) -> tuple[str, str]:
+def split_last_line(text: str) -> tuple[str, str]:
     """``(everything before the last line, the last line without its newline)``."""
     stripped = text[:-1] if text.endswith("\n") else text
     cut = stripped.rfind("\n") + 1
