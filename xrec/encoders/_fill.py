@@ -79,6 +79,29 @@ def _rows_ok(vectors: np.ndarray) -> np.ndarray:
     finite = np.isfinite(vectors).all(axis=1)
     return finite & (np.abs(np.where(np.isfinite(vectors), vectors, 0)).sum(axis=1) > 0)
 
+def _read_entry(path: Path) -> tuple[bytes | None, str]:
+    """An entry file's bytes, or ``None`` and why it is unusable (``""`` when there is none)."""
+    try:
+        with open(path, "rb") as fh:
+            return fh.read(), ""
+    except FileNotFoundError:
+        return None, ""
+    except IsADirectoryError:
+        return None, "a folder, not an entry file"
+    except OSError as exc:  # permissions, a dangling or looping link, an I/O error
+        return None, f"unreadable: {exc.strerror or exc}"
+
+
+def _clear_entry(path: Path) -> None:
+    """Remove what stands where an entry file goes (a folder or a link), so the new entry can be renamed there."""
+    import shutil
+
+    if path.is_symlink() or not path.is_dir():
+        path.unlink(missing_ok=True)
+    else:
+        shutil.rmtree(path)
+
+
 def _read_if_path(content: Any) -> Any:
     """Bytes of the file a path names; anything else (or an unreadable path) unchanged."""
     if isinstance(content, (str, os.PathLike)):
@@ -172,24 +195,24 @@ def encode_through_cache(
     # Look each content up once; later duplicates reuse the first lookup.
     folder = cache.folder(encoder) if cache is not None else None
     stored = _stored_names(folder, sum(k is not None for k in keys)) if folder is not None else set()
+    if folder is not None:
+        cache._sweep_once(folder)  # type: ignore[union-attr]
     found: dict[str, np.ndarray] = {}
     missing: dict[str, int] = {}  # content hash -> first input position
+    in_the_way: set[Path] = set()  # damaged entries that are not plain files (a folder, a link)
     for i, key in enumerate(keys):
         if key is None or key in found or key in missing:
             continue
         vector = None
         if folder is not None and (stored is None or key in stored):
             path = entry_file(folder, key)
-            try:
-                with open(path, "rb") as fh:
-                    data = fh.read()
-            except FileNotFoundError:
-                data = None
+            data, why = _read_entry(path)
             if data is not None:
                 vector, why = unpack_entry(key, data, dim)
-                if vector is None:
-                    stats.corrupt += 1
-                    stats.corrupt_paths.append(f"{path} ({why})")
+            if why:
+                stats.corrupt += 1
+                stats.corrupt_paths.append(f"{path} ({why})")
+                in_the_way.add(path)
         if vector is None:
             missing[key] = i
         else:
@@ -254,6 +277,8 @@ def encode_through_cache(
                         if folder is not None:
                             path = entry_file(folder, key)
                             cache._mkdir(path.parent)  # type: ignore[union-attr]
+                            if path in in_the_way:
+                                _clear_entry(path)
                             try:
                                 write_bytes_atomic(path, pack_entry(key, vector), durable=False, sweep=False)
                             except FileNotFoundError:  # folder removed meanwhile (e.g. clear() elsewhere)

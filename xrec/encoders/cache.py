@@ -10,8 +10,11 @@ Each entry file is a 24-byte header — magic ``XRV1``, the vector length (uint3
 little-endian), a 16-byte BLAKE2b digest of (content hash, vector bytes) — followed by
 the float32 little-endian vector. Entries are written to a temporary file in the same
 folder and renamed over the final name (``os.replace``), so a reader sees either no
-entry or a whole one; a damaged entry (disk fault, a copy cut short) fails its digest,
-is reported in a warning naming the file and is recomputed. Changing an encoder's
+entry or a whole one; a damaged entry (disk fault, a copy cut short, a folder or an
+unreadable file where the entry should be) fails its digest or its read, is reported in a
+warning naming the file and is recomputed (what stood in its place is replaced). Entries
+are not ``fsync``-ed (they are checked on every read); temporary files left by a process
+killed mid-write are swept the first time a process uses an encoder's folder. Changing an encoder's
 identity or version moves it to another folder: other encoders' entries stay valid.
 No pickle anywhere.
 """
@@ -28,7 +31,7 @@ from typing import Any
 
 import numpy as np
 
-from xrec._files import write_bytes_atomic
+from xrec._files import sweep_temp_files, write_bytes_atomic
 from xrec.encoders._entry_file import content_hash, entry_file
 from xrec.encoders._fill import CacheCorruptionWarning, CacheStats, encode_through_cache
 from xrec.encoders.base import Encoder
@@ -49,6 +52,19 @@ __all__ = [
 
 ENV_VAR = "XREC_CACHE_DIR"
 DEFAULT_DIR = ".xrec-cache"
+_SWEPT: set[Path] = set()  # encoder folders already swept by this process
+
+
+def _sweep_tree(folder: Path) -> list[Path]:
+    """Stale temporary files removed from an encoder folder and its two-letter fan-out folders."""
+    if not folder.is_dir():
+        return []
+    removed = sweep_temp_files(folder)
+    with os.scandir(folder) as subs:
+        for sub in subs:
+            if len(sub.name) == 2 and sub.is_dir(follow_symlinks=False):
+                removed += sweep_temp_files(sub.path)
+    return removed
 
 
 class EmbeddingCache:
@@ -118,6 +134,27 @@ class EmbeddingCache:
                 shutil.rmtree(folder, ignore_errors=True)
         self._made.clear()
         return removed
+
+    def sweep_temp_files(self, encoder: Encoder | None = None) -> list[Path]:
+        """Remove stale temporary files left by writers killed mid-write; return them.
+
+        Looks in ``encoder``'s folder (or every encoder folder under the root) and its
+        fan-out subfolders; only xrec's own temporary names are touched, and only when
+        stale (see :func:`xrec._files.sweep_temp_files`). Done automatically the first time
+        a process uses a folder.
+        """
+        folders = [self.folder(encoder)] if encoder is not None else [p.parent for p in self.root.glob("*/encoder.json")]
+        removed: list[Path] = []
+        for folder in folders:
+            removed += _sweep_tree(folder)
+            _SWEPT.add(folder.resolve())
+        return removed
+
+    def _sweep_once(self, folder: Path) -> None:
+        key = folder.resolve()
+        if key not in _SWEPT:
+            _SWEPT.add(key)
+            _sweep_tree(folder)
 
     def _mkdir(self, path: Path) -> None:
         if path not in self._made:
