@@ -133,11 +133,15 @@ def _stored_names(folder: Path, n_lookups: int) -> set[str] | None:
     return names
 
 
-def _call_encoder(encoder: Encoder, batch: list[Any]) -> tuple[np.ndarray, np.ndarray, list[str]]:
-    """Encode ``batch``; vectors, ok mask and the encoder's warning texts (kept for our own report)."""
+def _call_encoder(encoder: Encoder, batch: list[Any]) -> tuple[np.ndarray, np.ndarray, list[str], dict[int, str]]:
+    """Encode ``batch``; vectors, ok mask, the encoder's warning texts (kept for our own report)
+    and, from an encoder with ``encode_with_problems``, the reason each failed item failed (by batch position)."""
+    problems: dict[int, str] = {}
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        if callable(getattr(encoder, "encode_with_mask", None)):
+        if callable(getattr(encoder, "encode_with_problems", None)):
+            vectors, ok, problems = encoder.encode_with_problems(batch, progress=False)  # type: ignore[attr-defined]
+        elif callable(getattr(encoder, "encode_with_mask", None)):
             vectors, ok = encoder.encode_with_mask(batch, progress=False)  # type: ignore[attr-defined]
         else:
             vectors = encoder.encode(batch, progress=False)
@@ -155,7 +159,7 @@ def _call_encoder(encoder: Encoder, batch: list[Any]) -> tuple[np.ndarray, np.nd
     others = [w for w in caught if not issubclass(w.category, UserWarning)]
     for w in others:
         warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
-    return vectors, ok, notes
+    return vectors, ok, notes, dict(problems)
 
 
 def encode_through_cache(
@@ -260,7 +264,7 @@ def encode_through_cache(
             for start in range(0, len(todo), step):
                 chunk = todo[start : start + step]
                 try:
-                    vectors, chunk_ok, chunk_notes = _call_encoder(encoder, [contents[i] for _, i in chunk])
+                    vectors, chunk_ok, chunk_notes, chunk_problems = _call_encoder(encoder, [contents[i] for _, i in chunk])
                 except DataError as exc:
                     where = ", ".join(
                         f"#{j} = {labels[i] if labels is not None else '#' + str(i)}" for j, (_, i) in enumerate(chunk[:20])
@@ -269,9 +273,16 @@ def encode_through_cache(
                         f"{exc} [the encoder numbered a batch of {len(chunk)} uncached items; in your input: {where}"
                         + (" ...]" if len(chunk) > 20 else "]")
                     ) from exc
+                if chunk_problems and policy == "raise":  # the encoder tried every item; name them by input
+                    bad = {chunk[j][1]: reason for j, reason in chunk_problems.items()}
+                    raise DataError(
+                        f"{encoder.modality or 'encoder'} {encoder.cache_key}: cannot encode "
+                        + _describe(sorted(bad), bad, labels, n)
+                        + "; pass on_error='skip' to the encoder to skip them"
+                    )
                 notes.extend(chunk_notes)
                 stats.encoded += len(chunk)
-                for (key, i), vector, good in zip(chunk, vectors, chunk_ok):
+                for j, ((key, i), vector, good) in enumerate(zip(chunk, vectors, chunk_ok)):
                     if good:
                         found[key] = vector
                         if folder is not None:
@@ -286,7 +297,7 @@ def encode_through_cache(
                                 write_bytes_atomic(path, pack_entry(key, vector), durable=False, sweep=False)
                             stats.written += 1
                     else:
-                        failed_reasons[i] = "the encoder could not encode it"
+                        failed_reasons[i] = chunk_problems.get(j, "the encoder could not encode it")
                 bar.update(len(chunk))
         finally:
             bar.close()

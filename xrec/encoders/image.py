@@ -269,6 +269,7 @@ class EfficientNetLite0Encoder(Encoder):
         *,
         progress: bool = False,
         on_error: OnError | None = None,
+        warn: bool = True,
     ) -> ImageBatchResult:
         """Vectors and ImageNet class probabilities from one forward pass.
 
@@ -280,6 +281,9 @@ class EfficientNetLite0Encoder(Encoder):
             Show a progress bar over the images.
         on_error
             Overrides the encoder's ``on_error`` for this call.
+        warn
+            With ``on_error="skip"``, warn about the skipped images (default). ``False``
+            leaves the reporting to the caller, which finds every reason in ``problems``.
 
         Returns
         -------
@@ -328,8 +332,21 @@ class EfficientNetLite0Encoder(Encoder):
                         probs[rows] = torch.softmax(logits, dim=1).numpy()
                     ok[rows] = True
                 bar.update(min(start + self.batch_size, n) - start)
-        report_problems(problems, n, policy, who)
+        if warn or policy == "raise":
+            report_problems(problems, n, policy, who)
         return ImageBatchResult(vectors=vectors, probs=probs, ok=ok, problems=problems)
+
+    def encode_with_problems(
+        self, contents: Sequence[Any], *, progress: bool = False
+    ) -> tuple[np.ndarray, np.ndarray, dict[int, str]]:
+        """Vectors, ``ok`` mask and the decode error of each image that failed (by position).
+
+        Every image is tried, whatever ``on_error`` says; nothing is raised or warned for a
+        bad image: the caller (the embedding cache) applies ``on_error`` and reports each
+        failure by item id.
+        """
+        result = self.encode_with_probs(contents, progress=progress, on_error="skip", warn=False)
+        return result.vectors, result.ok, dict(result.problems)
 
     def encode_with_mask(self, contents: Sequence[Any], *, progress: bool = False) -> tuple[np.ndarray, np.ndarray]:
         """Vectors ``(n, 1280)`` and the ``ok`` mask (see :meth:`encode_with_probs`)."""
