@@ -127,3 +127,14 @@ def test_blend_file_check_sizes_are_bounded_by_the_recorded_split_on_reading(exp
     exported.write_text(seal(tomli_w.dumps(raw)), encoding="utf-8")
     with pytest.raises(ConfigError, match=r"check\.k: 100000000 exceeds split\.record\.n_items = 40"):
         read_blend(exported)
+
+
+def test_blend_engine_refuses_a_cutoff_longer_than_the_catalog():
+    from _synthetic import FixedScores, pairs_frame, synthetic_fold
+
+    from xrec.blend.engine import BlendEngine
+
+    fold = synthetic_fold(3, 5, pairs_frame([(0, 0), (1, 1), (2, 2)]), pairs_frame([(0, 1), (1, 2), (2, 3)]))
+    source = FixedScores(np.arange(15, dtype=np.float32).reshape(3, 5)).fit(fold)
+    with pytest.raises(ConfigError, match=r"^ks: cut-off\(s\) \[100000000\] exceed the catalog's 5 items"):
+        BlendEngine({"s": source}, fold, "none", ks=(5, HUGE), metric="ndcg@5").prepare()

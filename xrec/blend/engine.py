@@ -160,13 +160,13 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
     # ------------------------------------------------------------------ preparation
     def _check_settings(self) -> None:
         from xrec.blend._base import check_sources
-        from xrec.evaluate.evaluator import _check_ks, _check_metrics
+        from xrec.evaluate.evaluator import _check_metrics, check_cutoffs
 
         if not isinstance(self.fold, Fold):
             raise ConfigError(f"fold must be an xrec Fold, got {type(self.fold).__name__}")
         self._sources = check_sources(self.sources)
         self._normalizers = check_normalizers(self.normalizers, self._sources)
-        self._ks = _check_ks(self.ks)
+        self._ks = check_cutoffs(self.ks, self.fold.n_items)  # K beyond the catalog: refused, not clamped
         metrics = _check_metrics(self.metrics)
         bad = [m for m in metrics if m not in RANK_METRICS]
         if bad:
