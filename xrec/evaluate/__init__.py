@@ -1,5 +1,7 @@
 """Offline evaluation: full-ranking metrics, scorecards, paired comparisons."""
 
+from xrec.evaluate._candidates import CandidateEvaluation, evaluate_candidates, top_n_items
+from xrec.evaluate._chunked import evaluate_blend_chunked
 from xrec.evaluate._metrics import ALL_METRICS, metrics_from_ranks
 from xrec.evaluate._ranking import UNRANKED, BlockRanks, count_at_least, rank_heldout, top_k_items
 from xrec.evaluate.compare import Comparison, compare
@@ -11,6 +13,7 @@ __all__ = [
     "ALL_METRICS",
     "UNRANKED",
     "BlockRanks",
+    "CandidateEvaluation",
     "Comparison",
     "FullRanking",
     "SampledNegatives",
@@ -19,8 +22,11 @@ __all__ = [
     "compare",
     "count_at_least",
     "evaluate",
+    "evaluate_blend_chunked",
     "evaluate_blocks",
+    "evaluate_candidates",
     "metrics_from_ranks",
     "rank_heldout",
     "top_k_items",
+    "top_n_items",
 ]

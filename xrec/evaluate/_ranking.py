@@ -94,6 +94,36 @@ def canonical_rows(m: sp.spmatrix | sp.sparray, n_rows: int, n_items: int, what:
     return m
 
 
+def check_users(users: np.ndarray | None, truth: sp.csr_matrix) -> np.ndarray:
+    """Evaluated user indices as int64 (default: every user with a held-out item), checked.
+
+    Raises :class:`~xrec.errors.DataError` for a non-1-D or non-integer array, no users,
+    indices out of range, repeated users, or users without held-out items.
+    """
+    from xrec.errors import DataError
+
+    n_users = truth.shape[0]
+    n_rel = np.diff(truth.indptr)
+    if users is None:
+        users = np.flatnonzero(n_rel > 0)
+    users = np.asarray(users)
+    if users.ndim != 1 or (users.size and users.dtype.kind not in "iu"):
+        raise DataError(f"users must be a 1-D array of user indices, got dtype {users.dtype} shape {users.shape}")
+    users = users.astype(np.int64)
+    if users.size == 0:
+        raise DataError("no users to evaluate (none has a held-out item)")
+    out_of_range = users[(users < 0) | (users >= n_users)]
+    if out_of_range.size:
+        raise DataError(f"user indices out of range [0, {n_users}): {out_of_range[:5].tolist()}")
+    uniq, cnt = np.unique(users, return_counts=True)
+    if (cnt > 1).any():
+        raise DataError(f"users repeated: {uniq[cnt > 1][:5].tolist()}")
+    empty = users[n_rel[users] == 0]
+    if empty.size:
+        raise DataError(f"{empty.size} users have no held-out items, first: {empty[:5].tolist()}")
+    return users
+
+
 def _no_nan(values: np.ndarray) -> np.ndarray:
     values = np.asarray(values)
     if values.dtype.kind == "f":

@@ -12,7 +12,7 @@ from tqdm.auto import tqdm
 
 from xrec.errors import ConfigError, DataError
 from xrec.evaluate._metrics import ALL_METRICS, LIST_METRICS, RANK_METRICS, metric_column, metrics_from_ranks, popularity_of_lists
-from xrec.evaluate._ranking import canonical_rows, rank_heldout, top_k_items
+from xrec.evaluate._ranking import canonical_rows, check_users, rank_heldout, top_k_items
 from xrec.evaluate.protocols import SAMPLED_WARNING, FullRanking, SampledNegatives
 from xrec.evaluate.scorecard import Scorecard
 from xrec.fold import Fold
@@ -177,24 +177,7 @@ def evaluate_blocks(
     check_cutoffs(ks, n_items)
     seen = canonical_rows(seen, n_users, n_items, "seen mask")
     truth = canonical_rows(truth, n_users, n_items, "held-out matrix")
-    n_rel = np.diff(truth.indptr)
-    if users is None:
-        users = np.flatnonzero(n_rel > 0)
-    users = np.asarray(users)
-    if users.ndim != 1 or (users.size and users.dtype.kind not in "iu"):
-        raise DataError(f"users must be a 1-D array of user indices, got dtype {users.dtype} shape {users.shape}")
-    users = users.astype(np.int64)
-    if users.size == 0:
-        raise DataError("no users to evaluate (none has a held-out item)")
-    out_of_range = users[(users < 0) | (users >= n_users)]
-    if out_of_range.size:
-        raise DataError(f"user indices out of range [0, {n_users}): {out_of_range[:5].tolist()}")
-    uniq, cnt = np.unique(users, return_counts=True)
-    if (cnt > 1).any():
-        raise DataError(f"users repeated: {uniq[cnt > 1][:5].tolist()}")
-    empty = users[n_rel[users] == 0]
-    if empty.size:
-        raise DataError(f"{empty.size} users have no held-out items, first: {empty[:5].tolist()}")
+    users = check_users(users, truth)
     if isinstance(protocol, SampledNegatives):
         warnings.warn(SAMPLED_WARNING, UserWarning, stacklevel=3)
 

@@ -1,0 +1,258 @@
+"""Cost of evaluating a 4-source blend as the problem grows: time, peak memory, cells per second.
+
+Problems come from the seeded generator :mod:`xrec.evaluate._synthetic_scale` (ALS-like
+factors, two item-vector sources scored as user profile × item vectors, popularity; one
+held-out item per user). The blend is z-score normalized and weighted
+(``als 1.0, text 0.5, image 0.3, popularity 0.2``).
+
+Every (case, engine) pair runs in its own subprocess, so peak memory is that case's alone:
+
+* ``wall_s``: evaluation time (the problem's generation is not counted, it is reported apart);
+* ``peak_rss_gb``: the process's peak resident memory during the evaluation (sampled every
+  20 ms with psutil) and ``max_rss_gb`` over the whole process (generation included);
+* ``cells_per_s``: evaluated users × items / ``wall_s``.
+
+Engines (pluggable: ``ENGINES[name] = fn(problem, users, case) -> dict``; another script can
+import this module, add its own engines and call ``main()``; the per-case subprocesses re-run
+that script, so its engines exist there too): ``evaluate-blend`` (the general path,
+``evaluate(Blend(...), fold)``, as a baseline), ``chunked`` (full ranking, :func:`evaluate_blend_chunked`,
+one worker thread per CPU), ``chunked-1`` (one thread), ``candidates-faiss`` and
+``candidates-numpy`` (:func:`evaluate_candidates`, top-100 per source).
+
+Cases (``--cases``): ``ml-1m``, ``ml-20m``, the growth sweep ``grow-1`` … ``grow-5`` (users ×
+items from 2·10^7 to 3.7·10^9 cells) and ``catalog-1m`` (10^6 items × 10^5 users). On the
+10^6-item catalog both modes are run on the same sample of ``--sample`` users and their
+times extrapolated linearly to all users (the work per user does not depend on the other
+users); the report says so.
+
+Run: ``python benchmarks/bench_scale.py [--cases ml-1m ml-20m ...] [--engines ...]``; results
+go to ``benchmarks/results/bench_scale.json`` and ``.md``. Absolute times depend on the
+machine and its load (the uptime load average is recorded with each row).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import threading
+import time
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[1]
+RESULTS = ROOT / "benchmarks" / "results"
+KS = (10,)
+
+#: name -> (users, items, training items per user, users evaluated or None for all)
+CASES: dict[str, tuple[int, int, int, int | None]] = {
+    "ml-1m": (6_040, 3_706, 165, None),
+    "grow-1": (10_000, 2_000, 40, None),
+    "grow-2": (20_000, 5_000, 60, None),
+    "grow-3": (40_000, 10_000, 80, None),
+    "grow-4": (80_000, 15_000, 100, None),
+    "ml-20m": (138_493, 26_744, 144, None),
+    "catalog-1m": (100_000, 1_000_000, 50, 2_000),
+}
+GROWTH = ("grow-1", "grow-2", "grow-3", "grow-4", "ml-20m")
+#: engines run per case when --engines is not given (others: ["chunked"])
+DEFAULT_ENGINES = {
+    "ml-1m": ["evaluate-blend", "chunked", "chunked-1"],
+    "catalog-1m": ["chunked", "candidates-faiss", "candidates-numpy"],
+}
+
+
+def _chunked(threads: int | None) -> Callable:
+    def run(problem, users, case):
+        from xrec.evaluate import evaluate_blend_chunked
+
+        card = evaluate_blend_chunked(
+            problem.sources, problem.weights, problem.train, problem.heldout, users=users, ks=KS, threads=threads
+        )
+        return {"ndcg@10": float(card.per_user["ndcg@10"].mean()), "hit_rate@10": float(card.per_user["hit_rate@10"].mean())}
+
+    return run
+
+
+def _candidates(backend: str, top_n: int = 100) -> Callable:
+    def run(problem, users, case):
+        from xrec.evaluate import evaluate_candidates
+
+        res = evaluate_candidates(
+            problem.sources, problem.weights, problem.train, problem.heldout, users=users, ks=KS, top_n=top_n, backend=backend
+        )
+        summary = res.summary()
+        return {
+            "top_n": top_n,
+            "certified_share": res.certified_share,
+            "exact_share@10": res.exact_share(10),
+            "ndcg@10 (exact users)": float(summary.loc["ndcg@10", "exact_mean"]),
+            "ndcg@10 (certified users)": float(summary.loc["ndcg@10", "certified_mean"]),
+        }
+
+    return run
+
+
+def _evaluate_blend(problem, users, case):
+    """The general path, as a baseline: ``evaluate(Blend(...), fold)``."""
+    from xrec.blend import Blend
+    from xrec.evaluate import evaluate
+
+    fold = problem.fold
+    card = evaluate(Blend(problem.sources, problem.weights).fit(fold), fold, ks=KS, metrics=("hit_rate", "ndcg"), users=users)
+    return {"ndcg@10": float(card.per_user["ndcg@10"].mean()), "hit_rate@10": float(card.per_user["hit_rate@10"].mean())}
+
+
+#: engine name -> fn(problem, users, case) -> dict of extra columns
+ENGINES: dict[str, Callable] = {
+    "evaluate-blend": _evaluate_blend,
+    "chunked": _chunked(None),
+    "chunked-1": _chunked(1),
+    "candidates-faiss": _candidates("faiss"),
+    "candidates-numpy": _candidates("numpy"),
+}
+
+
+class _PeakSampler:
+    """Largest resident set size of this process while running (psutil, every 20 ms)."""
+
+    def __init__(self) -> None:
+        import psutil
+
+        self._proc = psutil.Process()
+        self.peak = self._proc.memory_info().rss
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._loop, daemon=True)
+
+    def _loop(self) -> None:
+        while not self._stop.wait(0.02):
+            self.peak = max(self.peak, self._proc.memory_info().rss)
+
+    def __enter__(self):
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._stop.set()
+        self._thread.join()
+        self.peak = max(self.peak, self._proc.memory_info().rss)
+
+
+def run_case(case: str, engine: str) -> dict:
+    """Generate ``case``'s problem and evaluate it with ``engine``, in this process."""
+    import resource
+
+    from xrec.evaluate._synthetic_scale import make_scale_problem
+
+    n_users, n_items, per_user, sample = CASES[case]
+    t0 = time.perf_counter()
+    problem = make_scale_problem(n_users, n_items, per_user, seed=0)
+    gen_s = time.perf_counter() - t0
+    users = None if sample is None else np.sort(np.random.default_rng(1).choice(n_users, sample, replace=False))
+    n_eval = n_users if users is None else len(users)
+    load = os.getloadavg()[0]
+    with _PeakSampler() as mem:
+        t0 = time.perf_counter()
+        extra = ENGINES[engine](problem, users, {"name": case})
+        wall = time.perf_counter() - t0
+    row = {
+        "case": case,
+        "engine": engine,
+        "users": n_users,
+        "items": n_items,
+        "train_rows": int(problem.train.nnz),
+        "evaluated_users": n_eval,
+        "wall_s": wall,
+        "cells_per_s": n_eval * n_items / wall,
+        "peak_rss_gb": mem.peak / 1e9,
+        "max_rss_gb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024 / 1e9,
+        "generate_s": gen_s,
+        "load_1min": load,
+    }
+    if sample is not None:
+        row["wall_all_users_s"] = wall * n_users / n_eval  # extrapolated, linear in users
+    row.update(extra)
+    return row
+
+
+def _subprocess(case: str, engine: str, extra_args: list[str]) -> dict:
+    # Re-run the script that was started (it may be another module that added engines).
+    script = getattr(sys.modules["__main__"], "__file__", None) or __file__
+    cmd = [sys.executable, str(script), "--one", case, engine, *extra_args]
+    env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    out = subprocess.run(cmd, check=True, capture_output=True, text=True, env=env, cwd=ROOT)
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def growth_exponent(rows: list[dict], engine: str) -> float | None:
+    """Least-squares slope of log(time) against log(users × items) over the growth cases."""
+    pts = [(r["evaluated_users"] * r["items"], r["wall_s"]) for r in rows if r["engine"] == engine and r["case"] in GROWTH]
+    if len(pts) < 4:
+        return None
+    x, y = np.log([p[0] for p in pts]), np.log([p[1] for p in pts])
+    return float(np.polyfit(x, y, 1)[0])
+
+
+def to_markdown(rows: list[dict], exponents: dict[str, float | None]) -> str:
+    lines = [
+        "| case | engine | users × items | evaluated users | wall s | cells/s | peak RSS GB (eval) | max RSS GB (process) | notes |",
+        "|---|---|---|---|---|---|---|---|---|",
+    ]
+    for r in rows:
+        notes = [f"load {r['load_1min']:.1f}"]
+        if "wall_all_users_s" in r:
+            notes.append(f"all {r['users']:,} users ≈ {r['wall_all_users_s']:,.0f} s (extrapolated)")
+        if "certified_share" in r:
+            notes.append(f"top-{r['top_n']}: certified {r['certified_share']:.1%}, exact@10 {r['exact_share@10']:.1%}")
+        if "ndcg@10" in r:
+            notes.append(f"ndcg@10 {r['ndcg@10']:.4f}")
+        elif "ndcg@10 (exact users)" in r:
+            notes.append(f"ndcg@10 over exact users {r['ndcg@10 (exact users)']:.4f}")
+        lines.append(
+            f"| {r['case']} | {r['engine']} | {r['users']:,} × {r['items']:,} | {r['evaluated_users']:,} | {r['wall_s']:.2f} | "
+            f"{r['cells_per_s']:.3g} | {r['peak_rss_gb']:.2f} | {r['max_rss_gb']:.2f} | {'; '.join(notes)} |"
+        )
+    for engine, b in exponents.items():
+        if b is not None:
+            lines.append(f"\nGrowth exponent of time in users × items ({engine}, cases {', '.join(GROWTH)}): **{b:.2f}**")
+    return "\n".join(lines) + "\n"
+
+
+def main(argv: list[str] | None = None) -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--cases", nargs="+", default=["ml-1m", *GROWTH[:-1], "ml-20m", "catalog-1m"], choices=sorted(CASES))
+    parser.add_argument("--engines", nargs="+", default=None, help="default: DEFAULT_ENGINES per case, else chunked")
+    parser.add_argument("--sample", type=int, default=None, help="users evaluated on catalog-1m (default 2000)")
+    parser.add_argument("--out", default=str(RESULTS / "bench_scale"))
+    parser.add_argument("--one", nargs=2, metavar=("CASE", "ENGINE"), help=argparse.SUPPRESS)
+    args = parser.parse_args(argv)
+    if args.sample is not None:
+        users, items, per_user, _ = CASES["catalog-1m"]
+        CASES["catalog-1m"] = (users, items, per_user, args.sample)
+    if args.one:
+        print(json.dumps(run_case(*args.one)))
+        return
+    extra = [] if args.sample is None else ["--sample", str(args.sample)]
+    rows = []
+    for case in args.cases:
+        engines = args.engines or DEFAULT_ENGINES.get(case, ["chunked"])
+        for engine in engines:
+            row = _subprocess(case, engine, extra)
+            rows.append(row)
+            print(f"{case:>11} {engine:>17}: {row['wall_s']:8.2f} s, {row['cells_per_s']:.3g} cells/s, peak {row['peak_rss_gb']:.2f} GB", flush=True)
+    exponents = {e: growth_exponent(rows, e) for e in dict.fromkeys(r["engine"] for r in rows)}
+    out = Path(args.out)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    from xrec._files import write_text_atomic
+
+    write_text_atomic(out.with_suffix(".json"), json.dumps({"rows": rows, "growth_exponent": exponents}, indent=2))
+    write_text_atomic(out.with_suffix(".md"), to_markdown(rows, exponents))
+    print(to_markdown(rows, exponents))
+
+
+if __name__ == "__main__":
+    main()
