@@ -138,3 +138,13 @@ def test_blend_engine_refuses_a_cutoff_longer_than_the_catalog():
     source = FixedScores(np.arange(15, dtype=np.float32).reshape(3, 5)).fit(fold)
     with pytest.raises(ConfigError, match=r"^ks: cut-off\(s\) \[100000000\] exceed the catalog's 5 items"):
         BlendEngine({"s": source}, fold, "none", ks=(5, HUGE), metric="ndcg@5").prepare()
+
+
+def test_chunked_and_candidate_evaluators_refuse_a_cutoff_longer_than_the_catalog():
+    from xrec.evaluate import evaluate_blend_chunked, evaluate_candidates
+    from xrec.evaluate._synthetic_scale import make_scale_problem
+
+    p = make_scale_problem(30, 50, 4, seed=1)
+    for run in (evaluate_blend_chunked, evaluate_candidates):
+        with pytest.raises(ConfigError, match=r"^ks: cut-off\(s\) \[100000000\] exceed the catalog's 50 items"):
+            run(p.sources, p.weights, p.train, p.heldout, ks=(10, HUGE))
