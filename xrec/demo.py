@@ -180,9 +180,9 @@ def run_demo(
         valid_engine = BlendEngine(valid_sources, split.validation, "zscore", ks=(10,), metric=METRIC).prepare()
         test_engine = BlendEngine(test_sources, split.test, "zscore", ks=(10,), metric=METRIC).prepare()
         options = {"n_restarts": 1, "max_sweeps": 3} if quick else {"n_restarts": 4}
-        learned = learn_weights(valid_engine, method="coordinate_ascent", seed=seed, test_fold=split.test,
+        learned = learn_weights(valid_engine, method="coordinate_ascent", seed=seed, test_fold=split.test, progress=progress,
                                 test_sources=test_sources, **options)
-        gated = learn_gated_weights(valid_engine, start=learned.weights, seed=seed, test_engine=test_engine,
+        gated = learn_gated_weights(valid_engine, start=learned.weights, seed=seed, test_engine=test_engine, progress=progress,
                                     **({"n_restarts": 0, "max_sweeps": 2} if quick else {}))
 
     with clock.step("evaluating on the test split (full ranking)"):

@@ -168,7 +168,7 @@ def run_experiment(
         fit_source(name, source, fold)
     scorers: dict[str, Any] = dict(sources) if only is None or only in sources else {}
     learned: dict[str, Any] = {}
-    valid_sources: dict[str, Source] = {}
+    valid_sources: dict[Any, Any] = {}  # sources fitted on the validation split, and searches done on them
     for name, table in blends.items():
         try:
             scorers[name] = _build_blend(spec, table, sources, split, valid_sources, learned, name, progress)
@@ -243,9 +243,15 @@ def _build_blend(spec, table, sources, split, valid_sources, learned, name, prog
     except ValueError:
         raise ConfigError(f"metric: expected '<name>@<k>', got {metric!r}") from None
     seed = int(table.get("seed", 0))
-    engine = BlendEngine({n: valid_sources[n] for n in names}, split.validation, normalizer, ks=(k,), metric=metric)
-    engine.prepare(progress=progress)
-    result = learn_weights(engine, method=table.get("method", "coordinate_ascent"), seed=seed, progress=progress)
+    # Blends over the same sources, normalizers, metric, method and seed share the engine and
+    # the ungated search (a gated blend starts from it), so neither is paid for twice.
+    method = table.get("method", "coordinate_ascent")
+    key = ("search", tuple(names), repr(normalizer), metric, method, seed)
+    if key not in valid_sources:
+        engine = BlendEngine({n: valid_sources[n] for n in names}, split.validation, normalizer, ks=(k,), metric=metric)
+        engine.prepare(progress=progress)
+        valid_sources[key] = (engine, learn_weights(engine, method=method, seed=seed, progress=progress))
+    engine, result = valid_sources[key]
     record = {"method": result.method, "metric": result.metric, "weights": result.weights, "validation": result.valid_score,
               "best_single": result.best_single[0] if result.best_single else None,
               "best_single_validation": result.best_single[1] if result.best_single else None}

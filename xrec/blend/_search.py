@@ -207,6 +207,8 @@ def coordinate_ascent(
     tol: float = 1e-12,
     seed: int = 0,
     progress: bool = False,
+    search: str = "fast",
+    **fast_options: Any,
 ) -> LearnResult:
     """Coordinate ascent on the simplex (Metzler & Croft, Information Retrieval 2007).
 
@@ -228,8 +230,23 @@ def coordinate_ascent(
     seed
         Seed of the random starts.
     progress
-        Show a progress bar over evaluations.
+        Show a progress bar.
+    search
+        ``"fast"`` (default): every share of a line in one pass over the blocks, starts
+        screened on stratified user samples by successive halving, sweeps stopped when the
+        gain is within the sample's noise (:func:`xrec.blend._fast_search.fast_coordinate_ascent`;
+        ``fast_options``: ``sample``, ``min_users``, ``stop_z``). ``"exhaustive"``: every
+        start climbs on all users, one engine evaluation per share, until nothing improves.
     """
+    if search == "fast":
+        from xrec.blend._fast_search import fast_coordinate_ascent
+
+        return fast_coordinate_ascent(engine, n_restarts=n_restarts, grid=grid, refine=refine, max_sweeps=max_sweeps, tol=tol,
+                                      seed=seed, progress=progress, **fast_options)
+    if search != "exhaustive":
+        raise ConfigError(f"search must be 'fast' or 'exhaustive', got {search!r}")
+    if fast_options:
+        raise ConfigError(f"options {sorted(fast_options)} apply to search='fast' only")
     if isinstance(n_restarts, bool) or not isinstance(n_restarts, (int, np.integer)) or n_restarts < 0:
         raise ConfigError(f"n_restarts must be an integer >= 0, got {n_restarts!r}")
     track = Tracker(engine, progress, "coordinate ascent")

@@ -241,6 +241,8 @@ def learn_gated_weights(
     seed: int = 0,
     test_engine: Any = None,
     progress: bool = False,
+    search: str = "fast",
+    **fast_options: Any,
 ) -> Any:
     """Learn band × source weights jointly by coordinate ascent on the validation metric.
 
@@ -257,9 +259,12 @@ def learn_gated_weights(
         evaluated, so the gated result is never below it on the validation users.
     head_share
         See :class:`PopularityBands`.
-    n_restarts, grid, refine, max_sweeps, seed, progress
+    n_restarts, grid, refine, max_sweeps, seed, progress, search
         As for :func:`~xrec.blend.learn.coordinate_ascent`; coordinates are the
-        (band, source) pairs of bands that hold at least one candidate item.
+        (band, source) pairs of bands that hold at least one candidate item. The fast
+        search moves a (band, source) weight over that band's items in one pass per line.
+    **fast_options
+        ``sample``, ``min_users``, ``stop_z`` of the fast search.
     test_engine
         Prepared engine of the test fold, to report the test score beside the validation one.
 
@@ -281,33 +286,48 @@ def learn_gated_weights(
         table = v.reshape(len(BANDS), n_src).astype(np.float32)
         return {n: table[item_band, j] for j, n in enumerate(names)}
 
+    if search not in ("fast", "exhaustive"):
+        raise ConfigError(f"search must be 'fast' or 'exhaustive', got {search!r}")
     if start is None:
-        base = coordinate_ascent(engine, n_restarts=1, seed=seed, progress=progress)
+        base = coordinate_ascent(engine, n_restarts=1, seed=seed, progress=progress, search=search, **fast_options)
         start_w = np.array([base.weights[n] for n in names])
     else:
         start_w = simplex([start[n] for n in names])
     labels = [f"{b}.{n}" for b in BANDS for n in names]
-    track = Tracker(engine, progress, "gated coordinate ascent", to_weights=to_weights, labels=labels)
     coords = [i for i in range(len(labels)) if present[i // n_src]]
     rng = np.random.default_rng(seed)
     first = np.tile(start_w, len(BANDS))
-    start_score = track(first, "ungated start")
     starts = [first] + [np.tile(rng.dirichlet(np.ones(n_src)), len(BANDS)) * rng.uniform(0.5, 1.5, len(BANDS)).repeat(n_src) for _ in range(n_restarts)]
-    finals = ascend(track, starts, coords, grid or DEFAULT_GRID, refine, max_sweeps, 1e-12, rng)
-    best = max(finals, key=lambda t: (t[0], -t[1]))
-    v, score = best[2], best[0]
-    if score < start_score:
-        v, score = simplex(first), start_score
-    band_weights = _flat_to_band_weights(v, names)
+    details = {"head_min": bands.head_min, "band_sizes": np.bincount(item_band, minlength=3).tolist(), "seed": seed}
+    if search == "fast":
+        from xrec.blend._fast_search import gated_climb
+
+        moves = [(names[i % n_src], item_band == i // n_src) for i in range(len(labels))]
+        v, score, start_score, history, plan = gated_climb(
+            engine, to_weights, moves, labels, starts, coords, grid=DEFAULT_GRID if grid is None else grid, refine=refine,
+            max_sweeps=max_sweeps, seed=seed, progress=progress, **fast_options,
+        )
+        details.update(plan)
+    else:
+        if fast_options:
+            raise ConfigError(f"options {sorted(fast_options)} apply to search='fast' only")
+        track = Tracker(engine, progress, "gated coordinate ascent", to_weights=to_weights, labels=labels)
+        start_score = track(first, "ungated start")
+        finals = ascend(track, starts, coords, DEFAULT_GRID if grid is None else grid, refine, max_sweeps, 1e-12, rng)
+        best = max(finals, key=lambda t: (t[0], -t[1]))
+        v, score = best[2], best[0]
+        if score < start_score:
+            v, score = simplex(first), start_score
+        history = track.history()
     result = LearnResult(
         method="gated_coordinate_ascent",
         metric=engine.metric,
         weights=dict(zip(labels, np.asarray(v).tolist(), strict=True)),
         valid_score=float(score),
         best_single=("ungated start", float(start_score)),
-        history=track.history(),
-        band_weights=band_weights,
-        details={"head_min": bands.head_min, "band_sizes": np.bincount(item_band, minlength=3).tolist(), "seed": seed},
+        history=history,
+        band_weights=_flat_to_band_weights(v, names),
+        details=details,
     )
     if test_engine is not None:
         titem = bands.assign(test_engine.fold.item_train_counts)
