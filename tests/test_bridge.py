@@ -274,19 +274,44 @@ def demo_pairs(request: pytest.FixtureRequest) -> dict[str, np.ndarray]:
         catalog = load_demo_shop().catalog
     except DataError as exc:
         pytest.skip(f"demo shop not available: {exc}")
-    # pytest's cross-run cache: the first run encodes ~1,000 images and texts, later runs read them
+    # pytest's cross-run cache: the first run encodes ~1,000 images and texts (the same
+    # entries tests/test_demo.py and the notebooks read), later runs read them
     cache = os.environ.get("XREC_CACHE_DIR") or str(request.config.cache.mkdir("xrec-bridge-embeddings"))
     text, text_ok = text_vectors(catalog, cache_dir=cache)
     features, probs, image_ok = image_features_and_probs(catalog, cache_dir=cache)
-    # the product sits in the middle of a patterned background: the central 40% shows the emoji
-    _, probs_centre, centre_ok = image_features_and_probs(catalog, crop=0.4, cache_dir=cache)
-    ok = text_ok & image_ok & centre_ok
+    ok = text_ok & image_ok
     return {  # type: ignore[return-value]
         "text": text[ok],
         "features": features[ok],
         "probs": probs[ok],
-        "probs_centre": probs_centre[ok],
+        "catalog": catalog,
+        "rows": np.flatnonzero(ok),
         "cache": cache,
+    }
+
+
+# Items of the crop check: a seeded sample of the demo shop, so that only these are encoded a
+# second time (at the central crop) instead of the whole catalog.
+CROP_SAMPLE = 120
+
+
+@pytest.fixture(scope="module")
+def crop_pairs(demo_pairs: dict) -> dict[str, np.ndarray]:
+    from xrec.encoders.bridge import make_image_encoder
+    from xrec.encoders.cache import EmbeddingCache
+
+    take = np.sort(np.random.default_rng(0).choice(len(demo_pairs["rows"]), CROP_SAMPLE, replace=False))
+    catalog = demo_pairs["catalog"]
+    images = [catalog.image_path(int(i)).read_bytes() for i in demo_pairs["rows"][take]]
+    # the product sits in the middle of a patterned background: the central 40% shows the emoji
+    centre = ImageNetProbsEncoder(make_image_encoder("efficientnet_lite0", on_error="skip", crop=0.4))
+    probs_centre, ok = EmbeddingCache(demo_pairs["cache"]).encode_with_mask(centre, images)
+    assert ok.all()
+    return {
+        "text": demo_pairs["text"][take],
+        "probs": demo_pairs["probs"][take],
+        "probs_centre": probs_centre,
+        "cache": demo_pairs["cache"],
     }
 
 
@@ -304,23 +329,52 @@ def _conse_mean_lift(pairs: dict, probs: str, *, prior_correction: bool, center:
     return float(np.mean([r["lift"] for r in runs]))
 
 
+def _conse_lift_over_all_pairs(pairs: dict, probs: str, *, prior_correction: bool, center: bool, k: int = 10) -> float:
+    """Text -> image recall@k over every pair of the sample, over random (k / n).
+
+    ConSE learns nothing from pairs (its class prior is the sample's mean prediction, as the
+    content sources take the catalog's), so no pair needs holding out: every item queries.
+    """
+    bridge = ConSEBridge(prior_correction=prior_correction, cache_dir=pairs["cache"]).fit(pairs[probs])
+    queries = bridge.transform_text(pairs["text"]).astype(np.float64)
+    targets = bridge.transform(pairs[probs]).astype(np.float64)
+    if center:
+        queries -= queries.mean(axis=0)
+        targets -= targets.mean(axis=0)
+    queries /= np.linalg.norm(queries, axis=1, keepdims=True)
+    targets /= np.linalg.norm(targets, axis=1, keepdims=True)
+    sims = queries @ targets.T
+    rank = (sims >= np.diag(sims)[:, None]).sum(axis=1)  # ties never favour the bridge
+    return float(np.mean(rank <= k)) / (k / len(rank))
+
+
 @pytest.mark.slow
-def test_conse_prior_correction_centring_and_crop_sharpen_demo_shop_retrieval(demo_pairs: dict) -> None:
+def test_conse_prior_correction_and_centring_sharpen_demo_shop_retrieval(demo_pairs: dict) -> None:
     plain = _conse_mean_lift(demo_pairs, "probs", prior_correction=False, center=False)
-    # measured, seeds 0-4: plain 1.22x random; corrected and centred 2.12x; the same on the
-    # central 40% of each image 5.2x (plain ConSE on that crop 3.6x)
+    # measured, seeds 0-4: plain 1.22x random; corrected and centred 2.12x
     assert _conse_mean_lift(demo_pairs, "probs", prior_correction=True, center=True) >= 1.4 * plain
-    assert _conse_mean_lift(demo_pairs, "probs_centre", prior_correction=True, center=True) >= 3.0 * plain
 
 
 @pytest.mark.slow
-# Measured (seeds 0-4, recall@10 over ~308 held-out items): plain ConSE 1.2x random; the best
-# settings found (central 40% crop, catalog class prior removed, both sides centred) 5.2x at
-# T = 10, 5.6x at T = 30. Upper bound with ImageNet-1k classifiers: the bare emoji glyphs at
-# 224 px on white, no frame or background, reach 7.6x (EfficientNet-Lite0) and 8.0x (Lite1;
-# Lite2 7.6x; seeds 0-9), so the 10x goal needs a classifier whose classes cover emoji art.
+def test_central_crop_sharpens_conse_on_a_demo_shop_sample(crop_pairs: dict) -> None:
+    plain = _conse_lift_over_all_pairs(crop_pairs, "probs", prior_correction=False, center=False)
+    centre = _conse_lift_over_all_pairs(crop_pairs, "probs_centre", prior_correction=True, center=True)
+    # measured on this sample: plain ConSE on whole images 0.8x random, corrected and centred
+    # on the central 40% 3.4x (other seeded samples of 120: 0.8-1.4x and 2.7-3.9x; on the whole
+    # catalog with held-out pairs, 1.2x and 5.2x)
+    assert centre >= 2.0
+    assert centre >= 2.0 * plain
+
+
+@pytest.mark.slow
+# Measured (seeds 0-4, recall@10 over ~308 held-out items): plain ConSE 1.2x random; corrected
+# and centred 2.1x on whole images; the best settings found (central 40% crop, catalog class
+# prior removed, both sides centred) 5.2x at T = 10, 5.6x at T = 30. Upper bound with
+# ImageNet-1k classifiers: the bare emoji glyphs at 224 px on white, no frame or background,
+# reach 7.6x (EfficientNet-Lite0) and 8.0x (Lite1; Lite2 7.6x; seeds 0-9), so the 10x goal
+# needs a classifier whose classes cover emoji art.
 @pytest.mark.xfail(strict=True, reason="ImageNet classes do not describe emoji artwork: ConSE measured 5.2x random at best here")
 def test_conse_retrieves_demo_shop_images_from_descriptions(demo_pairs: dict) -> None:
     bridge = ConSEBridge(prior_correction=True, cache_dir=demo_pairs["cache"])
-    out = bridge_recall(bridge, demo_pairs["probs_centre"], demo_pairs["text"], k=10, test_fraction=0.3, seed=0, center=True)
+    out = bridge_recall(bridge, demo_pairs["probs"], demo_pairs["text"], k=10, test_fraction=0.3, seed=0, center=True)
     assert out["lift"] >= 10.0, out

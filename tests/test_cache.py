@@ -14,7 +14,6 @@ import pytest
 
 from xrec.data.catalog import Catalog
 from xrec.encoders import _fill as fill_module
-from xrec.encoders import cache as cache_module
 from xrec.encoders.base import Encoder
 from xrec.encoders.cache import (
     CacheCorruptionWarning,
@@ -209,7 +208,9 @@ def test_stale_temporary_files_of_killed_writers_are_swept_once_per_folder(cache
     old = time.time() - MIN_AGE - 60
     for p in (stale, foreign):
         os.utime(p, (old, old))
-    cache_module._SWEPT.clear()  # a new process
+    from xrec.encoders import _store
+
+    _store._SWEPT.clear()  # a new process
     cache.encode(enc, TEXTS[:3])
     assert not stale.exists() and fresh.exists() and foreign.exists()
     os.utime(fresh, (old, old))
@@ -240,10 +241,10 @@ def test_interrupted_write_leaves_no_visible_entry(cache, monkeypatch):
             raise KeyboardInterrupt
         real_replace(src, dst)
 
-    monkeypatch.setattr(cache_module.os, "replace", dying_replace)
+    monkeypatch.setattr(os, "replace", dying_replace)
     with pytest.raises(KeyboardInterrupt):
         cache.encode(enc, TEXTS)
-    monkeypatch.setattr(cache_module.os, "replace", real_replace)
+    monkeypatch.setattr(os, "replace", real_replace)
     folder = cache.folder(enc)
     assert len(_entries(cache, enc)) == 2
     assert list(folder.rglob("*.tmp")) == []  # the half-written temp file was removed

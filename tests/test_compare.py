@@ -11,7 +11,7 @@ from scipy import stats
 
 from xrec.errors import ConfigError, DataError
 from xrec.evaluate import Comparison, Scorecard, compare
-from xrec.evaluate._stats import holm, sign_flip_pvalue
+from xrec.evaluate._stats import holm, normal_interval, sign_flip_pvalue
 
 
 def card(name, values: dict[str, np.ndarray], users=None, protocol=None) -> Scorecard:
@@ -158,3 +158,14 @@ def test_scorecards_of_different_folds_are_refused():
         compare(a, b, n_resamples=10)
     b.fold_settings = dict(a.fold_settings)
     assert len(compare(a, b, n_resamples=10).table) == 1
+
+
+def test_normal_interval_matches_scipy_norm_interval():
+    values = np.random.default_rng(3).random(200)
+    # Source: scipy.stats.norm.interval(confidence, loc=mean, scale=standard error of the mean)
+    # is the normal-approximation interval mean ± z·s/√n.
+    ref = stats.norm.interval(0.9, loc=values.mean(), scale=stats.sem(values))
+    mean, lo, hi = normal_interval(np.append(values, np.nan), 0.9)  # NaN (users without a value) left out
+    assert mean == pytest.approx(values.mean()) and (lo, hi) == pytest.approx(ref)
+    assert normal_interval(np.array([0.5]), 0.95) == (0.5, 0.5, 0.5)
+    assert all(np.isnan(normal_interval(np.array([np.nan]), 0.95)))

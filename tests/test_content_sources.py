@@ -284,10 +284,10 @@ TINY_CLIP = "xrec-content-test-tiny-clip"
 def test_cross_modal_clip_scores_history_images_against_item_texts(catalog: Catalog, fold: Fold, tmp_path: Path) -> None:
     # No CLIP weights exist offline: a tiny random CLIP registered through open_clip's public
     # add_model_config, saved, and loaded back through the same path a real file takes.
-    import open_clip
-    import torch
+    from xrec.encoders.clip import ClipEncoders  # first: it lets torchvision import beside the CPU torch
 
-    from xrec.encoders.clip import ClipEncoders
+    import open_clip  # noqa: E402
+    import torch  # noqa: E402
 
     config = {
         "embed_dim": 8,

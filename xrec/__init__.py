@@ -10,7 +10,7 @@ from xrec.blend import Blend, CombMNZ, CombSum, ReciprocalRankFusion
 from xrec.blendfile import read_blend, reseal_blend, save_blend
 from xrec.data import Catalog, CatalogSchema, Dataset, Interactions, load_movielens
 from xrec.data.demo import load_demo_shop
-from xrec.errors import ConfigError, DataError, FingerprintMismatch, XrecError
+from xrec.errors import ConfigError, DataError, FingerprintMismatch, NotFittedError, XrecError
 # The evaluate() function is not re-exported: the name is the xrec.evaluate subpackage.
 from xrec.evaluate import Comparison, FullRanking, SampledNegatives, Scorecard, compare
 from xrec.fold import Fold
@@ -32,6 +32,7 @@ __all__ = [
     "DataError",
     "Dataset",
     "FingerprintMismatch",
+    "NotFittedError",
     "Fold",
     "FullRanking",
     "Interactions",

@@ -84,7 +84,7 @@ def _fit_sources(fold, cache_dir: str | None, progress: bool) -> dict[str, Any]:
 
 def _taste_hit_rates(cards: dict[str, Any], fold, truth: dict, k: int = 10) -> pd.DataFrame:
     """Hit rate@k per planted taste kind: each test user's held-out purchase has a known reason."""
-    from xrec.notebook.charts import wilson_interval
+    from xrec.evaluate._stats import wilson_interval
 
     held = fold.heldout[["user_idx", "item_idx"]].copy()
     held["user"] = fold.user_ids[held["user_idx"].to_numpy()]

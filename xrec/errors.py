@@ -17,3 +17,10 @@ class ConfigError(XrecError, ValueError):
 
 class FingerprintMismatch(ConfigError):
     """A blend file was produced on different data than the data it is applied to."""
+
+
+class NotFittedError(XrecError, RuntimeError):
+    """An estimator was used before ``fit`` (or a blend engine before ``prepare``).
+
+    Also a :class:`RuntimeError`, which is what xrec raised here before this class existed.
+    """

@@ -6,6 +6,7 @@ from typing import Any
 
 import pandas as pd
 
+from xrec._validation import parse_metric_column
 from xrec.experiment import ExperimentResult, evaluation_options
 
 
@@ -34,8 +35,8 @@ def format_comparison(comparison: Any, metrics: tuple[str, ...] | None = None) -
     """
     t = comparison.table
     if metrics is not None:
-        t = t[t["metric"].str.rpartition("@")[0].isin(metrics)]
-    lines = [comparison._title()]
+        t = t[t["metric"].map(lambda m: parse_metric_column(m)[0]).isin(metrics)]
+    lines = [comparison.title()]
     for _, r in t.iterrows():
         verdict = "excludes 0" if (r["ci_low"] > 0 or r["ci_high"] < 0) else "includes 0"
         lines.append(

@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 
+from xrec._validation import check_int
 from xrec.blendfile import BlendSpec, ranking_digest, read_blend
 from xrec.data.dataset import Dataset
 from xrec.errors import ConfigError, DataError, FingerprintMismatch
@@ -130,11 +131,10 @@ class BlendRuntime:
 
 
 def _check_k(k: Any, n_items: int) -> int:
-    if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 1:
-        raise ConfigError(f"k must be a positive integer, got {k!r}")
+    k = check_int(k, "k", low=1)
     if k > n_items:
         raise ConfigError(f"k: {k} exceeds the catalog's {n_items} items; a list cannot be longer than the catalog")
-    return int(k)
+    return k
 
 
 def check_blend_sizes(spec: BlendSpec, n_users: int, n_items: int) -> None:

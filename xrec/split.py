@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 
 from xrec.data.dataset import Dataset
+from xrec._validation import check_int, check_number
 from xrec.errors import ConfigError
 from xrec.fold import Fold
 
@@ -151,8 +152,8 @@ def split_dataset(
         raise ConfigError(f"rule must be one of {SPLIT_RULES}, got {rule!r}")
     if not isinstance(validation, (bool, np.bool_)):
         raise ConfigError(f"validation must be True or False, got {validation!r}")
-    seed = _check_int("seed", seed, 0)
-    min_train = _check_int("min_train", min_train, 1)
+    seed = check_int(seed, "seed", low=0)
+    min_train = check_int(min_train, "min_train", low=1, expected="an integer >= 1")
     test_fraction = _check_fraction("test_fraction", test_fraction)
     cold_fraction = _check_fraction("cold_fraction", cold_fraction)
     if cutoff is not None and rule != "time_cutoff":
@@ -196,16 +197,8 @@ def split_dataset(
 # --- parameter checks ---------------------------------------------------------------------------
 
 
-def _check_int(name: str, value, lowest: int) -> int:
-    if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Integral) or value < lowest:
-        raise ConfigError(f"{name} must be an integer >= {lowest}, got {value!r}")
-    return int(value)
-
-
 def _check_fraction(name: str, value) -> float:
-    if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Real) or not 0.0 < float(value) < 1.0:
-        raise ConfigError(f"{name} must be a number strictly between 0 and 1, got {value!r}")
-    return float(value)
+    return check_number(value, name, low=0.0, high=1.0, low_open=True, high_open=True, expected="a number strictly between 0 and 1")
 
 
 def _parse_cutoff(cutoff, test_fraction: float) -> tuple[str, float]:

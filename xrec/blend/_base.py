@@ -8,6 +8,7 @@ from typing import Any, Self
 import numpy as np
 import scipy.sparse as sp
 
+from xrec._validation import check_fitted
 from xrec.blend._rank import Candidates
 from xrec.errors import ConfigError, DataError
 from xrec.fold import Fold
@@ -66,8 +67,7 @@ class Combiner:
         return self
 
     def _check_fitted(self) -> None:
-        if not getattr(self, "fitted_", False):
-            raise RuntimeError(f"{type(self).__name__} is not fitted: call fit(fold) first")
+        check_fitted(self, how="call fit(fold) first")
 
     def _copy_fitted_state(self, other: Combiner) -> None:
         for attr in ("train_matrix_", "n_items_", "fold_settings_", "fitted_"):

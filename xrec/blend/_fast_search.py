@@ -32,6 +32,7 @@ import numpy as np
 from tqdm.auto import tqdm
 
 from xrec.blend._line import LineEvaluator
+from xrec.blend._result import DEFAULT_GRID, LearnResult
 from xrec.blend.engine import sample_users
 from xrec.errors import ConfigError
 
@@ -286,8 +287,6 @@ def fast_coordinate_ascent(
         ``method="coordinate_ascent"``; ``details["rungs"]`` lists the users and starts of
         each halving round.
     """
-    from xrec.blend._search import DEFAULT_GRID, LearnResult
-
     if isinstance(n_restarts, bool) or not isinstance(n_restarts, (int, np.integer)) or n_restarts < 0:
         raise ConfigError(f"n_restarts must be an integer >= 0, got {n_restarts!r}")
     names = list(engine.names_)

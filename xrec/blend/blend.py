@@ -4,11 +4,11 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping
-from numbers import Real
 from typing import Any
 
 import numpy as np
 
+from xrec._validation import is_number
 from xrec.blend._base import Combiner, check_sources
 from xrec.blend.normalize import check_normalizer, normalize
 from xrec.errors import ConfigError
@@ -16,7 +16,7 @@ from xrec.errors import ConfigError
 
 def check_weight(value: object, field: str) -> float:
     """A finite, non-negative weight as float, else :class:`ConfigError` naming ``field``."""
-    if isinstance(value, bool) or not isinstance(value, Real):
+    if not is_number(value):
         raise ConfigError(f"{field}: must be a number, got {value!r}")
     value = float(value)
     if not math.isfinite(value):

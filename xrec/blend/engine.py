@@ -28,11 +28,15 @@ that work is repeated. :class:`BlendEngine` does it once for a fixed set of user
 Users can be all of a fold's evaluation users (final numbers) or a stratified sample
 (:func:`sample_users`, strata by training activity) whose metric comes with a confidence
 interval, for interactive use.
+
+Layout: this module holds preparation and the public methods; the weight checks and summing
+kernels are :class:`~xrec.blend._weighted_sum.WeightedSumKernels` and the dominance shortcut
+:class:`~xrec.blend._dominance.DominancePruning`, both mixed into :class:`BlendEngine`;
+user samples live in :mod:`xrec.evaluate._sampling`.
 """
 
 from __future__ import annotations
 
-import math
 from collections.abc import Iterable, Mapping, Sequence
 from typing import Any, Self
 
@@ -41,15 +45,17 @@ import pandas as pd
 from threadpoolctl import ThreadpoolController, threadpool_limits
 from tqdm.auto import tqdm
 
+from xrec._validation import check_choice, check_fitted, check_int, parse_metric_column
 from xrec.blend._dominance import DominancePruning
 from xrec.blend._rank import Candidates
 from xrec.blend._weighted_sum import WeightedSumKernels
 from xrec.blend.blend import check_normalizers
 from xrec.blend.normalize import normalize
-from xrec.errors import ConfigError, DataError
-from xrec.evaluate._metrics import RANK_METRICS, metrics_from_ranks, parse_metric
-from xrec.evaluate._ranking import BlockRanks, _seen_flags
+from xrec.errors import ConfigError, DataError, NotFittedError
+from xrec.evaluate._metrics import RANK_METRICS, check_cutoffs, check_metrics, metrics_from_ranks
+from xrec.evaluate._ranking import BlockRanks, seen_flags
 from xrec.evaluate._sampling import UserSample, sample_users
+from xrec.evaluate._stats import normal_interval
 from xrec.fold import Fold
 
 __all__ = ["BlendEngine", "UserSample", "sample_users"]
@@ -160,27 +166,23 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
     # ------------------------------------------------------------------ preparation
     def _check_settings(self) -> None:
         from xrec.blend._base import check_sources
-        from xrec.evaluate.evaluator import _check_metrics, check_cutoffs
 
         if not isinstance(self.fold, Fold):
             raise ConfigError(f"fold must be an xrec Fold, got {type(self.fold).__name__}")
         self._sources = check_sources(self.sources)
         self._normalizers = check_normalizers(self.normalizers, self._sources)
         self._ks = check_cutoffs(self.ks, self.fold.n_items)  # K beyond the catalog: refused, not clamped
-        metrics = _check_metrics(self.metrics)
+        metrics = check_metrics(self.metrics)
         bad = [m for m in metrics if m not in RANK_METRICS]
         if bad:
             raise ConfigError(f"metrics: the engine computes rank metrics {list(RANK_METRICS)} only, got {bad}")
         self._metrics = metrics
-        self._main = parse_metric(self.metric, self._ks)
+        self._main = parse_metric_column(self.metric, names=RANK_METRICS, ks=self._ks)
         if self._main[0] not in metrics:
             raise ConfigError(f"metric {self.metric!r} is not among the computed metrics {list(metrics)}")
-        if self.dtype not in _DTYPES:
-            raise ConfigError(f"dtype must be one of {list(_DTYPES)}, got {self.dtype!r}")
-        if isinstance(self.threads, bool) or not isinstance(self.threads, (int, np.integer)) or self.threads < 1:
-            raise ConfigError(f"threads must be a positive integer, got {self.threads!r}")
-        if self.chunk_rows is not None and (not isinstance(self.chunk_rows, (int, np.integer)) or self.chunk_rows < 1):
-            raise ConfigError(f"chunk_rows must be a positive integer or None, got {self.chunk_rows!r}")
+        check_choice(self.dtype, "dtype", _DTYPES)
+        check_int(self.threads, "threads", low=1)
+        check_int(self.chunk_rows, "chunk_rows", low=1, allow_none=True)
 
     def _factorized_names(self, n_rows: int, n_items: int) -> set[str]:
         eligible = {
@@ -274,7 +276,7 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
         seen_flag = np.zeros(n_rows, dtype=bool)
         rows_single = np.flatnonzero(single)
         if len(rows_single):
-            seen_flag[rows_single] = _seen_flags(seen, rows_single, target[rows_single], n_items)
+            seen_flag[rows_single] = seen_flags(seen, rows_single, target[rows_single], n_items)
         self.names_ = list(self._sources)
         self.users_ = users
         self.blocks_ = blocks
@@ -302,8 +304,7 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
 
     # ------------------------------------------------------------------ weights
     def _check_prepared(self) -> None:
-        if not getattr(self, "prepared_", False):
-            raise RuntimeError("BlendEngine is not prepared: call prepare() first")
+        check_fitted(self, attribute="prepared_", message="BlendEngine is not prepared: call prepare() first")
 
 
     def _per_user(self, ranks: np.ndarray) -> dict[str, np.ndarray]:
@@ -316,6 +317,16 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
         return {col: float(np.mean(v)) for col, v in per_user.items()}
 
     # ------------------------------------------------------------------ public
+    @property
+    def seen_(self) -> Any:
+        """Training rows of the engine's users (CSR; row ``r`` is user ``users_[r]``): what each has seen."""
+        return self._seen
+
+    @property
+    def truth_(self) -> Any:
+        """Held-out rows of the engine's users (CSR with sorted indices, aligned with ``users_``)."""
+        return self._truth
+
     def evaluate(self, weights: Mapping[str, Any] | Sequence[float]) -> dict[str, float]:
         """Mean of every metric over the engine's users for ``weights`` (full recomputation).
 
@@ -356,7 +367,7 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
         if weights is not None:
             self.evaluate(weights)
         if self._last is None:
-            raise RuntimeError("no weights evaluated yet: pass weights")
+            raise NotFittedError("no weights evaluated yet: pass weights")
         order = [f"{m}@{k}" for m in self._metrics for k in self._ks]
         return pd.DataFrame({"user": self.users_, **{c: self._last[c] for c in order}})
 
@@ -382,11 +393,7 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
         values = frame[col].to_numpy()
         if isinstance(self.users, UserSample):
             return self.users.estimate(values, level)
-        from scipy.stats import norm
-
-        mean = float(values.mean())
-        half = float(norm.ppf(0.5 + level / 2.0)) * float(values.std(ddof=1)) / math.sqrt(len(values)) if len(values) > 1 else 0.0
-        return mean, mean - half, mean + half
+        return normal_interval(values, level)
 
     def set_weight(self, name: str, weight: float) -> dict[str, float]:
         """Change one source's weight and re-rank by adding ``Δw × block`` to the kept sum.
@@ -407,7 +414,7 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
         if name not in self._sources:
             raise ConfigError(f"set_weight: {name!r} is not a source; sources are {self.names_}")
         if self.weights_ is None:
-            raise RuntimeError("set_weight needs starting weights: call evaluate(weights) first")
+            raise NotFittedError("set_weight needs starting weights: call evaluate(weights) first")
         if any(isinstance(w, np.ndarray) for w in self.weights_.values()):
             raise ConfigError("set_weight works on scalar weights; evaluate per-item weight vectors with evaluate()")
         new = dict(self.weights_)

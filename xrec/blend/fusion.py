@@ -28,13 +28,12 @@ CombMNZ (Fox & Shaw, TREC-2, 1994)
 from __future__ import annotations
 
 import inspect
-import math
 from collections.abc import Mapping
-from numbers import Integral, Real
 from typing import Any
 
 import numpy as np
 
+from xrec._validation import check_int, check_number
 from xrec.blend._base import Combiner, check_sources, fill_seen_with_row_min
 from xrec.blend._rank import average_ranks, within_depth
 from xrec.blend.normalize import check_normalizer, normalize
@@ -44,11 +43,7 @@ FUSION_METHODS: tuple[str, ...] = ("rrf", "combsum", "combmnz")
 
 
 def _check_depth(depth: object, field: str, *, optional: bool) -> int | None:
-    if depth is None and optional:
-        return None
-    if isinstance(depth, bool) or not isinstance(depth, Integral) or depth < 1:
-        raise ConfigError(f"{field}: must be a positive integer{' or None' if optional else ''}, got {depth!r}")
-    return int(depth)
+    return check_int(depth, f"{field}:", low=1, allow_none=optional)
 
 
 class Fusion(Combiner):
@@ -82,9 +77,7 @@ class ReciprocalRankFusion(Fusion):
 
     def __init__(self, sources: Mapping[str, Any], k: float = 60.0, depth: int | None = None) -> None:
         self.sources = check_sources(sources)
-        if isinstance(k, bool) or not isinstance(k, Real) or not math.isfinite(k) or k <= 0:
-            raise ConfigError(f"k: must be a finite number > 0, got {k!r}")
-        self.k = float(k)
+        self.k = check_number(k, "k:", low=0, low_open=True)
         self.depth = _check_depth(depth, "depth", optional=True)
 
     def get_params(self) -> dict[str, Any]:

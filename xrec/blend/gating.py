@@ -33,6 +33,7 @@ from typing import Any, Self
 import numpy as np
 import pandas as pd
 
+from xrec._validation import check_int, check_number
 from xrec.blend._base import check_sources
 from xrec.blend._search import DEFAULT_GRID, LearnResult, Tracker, ascend, coordinate_ascent, simplex
 from xrec.blend.blend import Blend, check_normalizers, check_one_per_source, check_weight
@@ -58,8 +59,7 @@ class PopularityBands:
     head_min: int
 
     def __post_init__(self) -> None:
-        if isinstance(self.head_min, bool) or not isinstance(self.head_min, (int, np.integer)) or self.head_min < 1:
-            raise ConfigError(f"head_min: must be an integer >= 1, got {self.head_min!r}")
+        check_int(self.head_min, "head_min:", low=1, expected="an integer >= 1")
 
     @classmethod
     def from_counts(cls, counts: np.ndarray, head_share: float = 0.2) -> PopularityBands:
@@ -72,8 +72,7 @@ class PopularityBands:
         head_share
             Share of all training interactions held by the head items, in ``(0, 1]``.
         """
-        if isinstance(head_share, bool) or not isinstance(head_share, (int, float)) or not 0 < head_share <= 1:
-            raise ConfigError(f"head_share: must be a number in (0, 1], got {head_share!r}")
+        check_number(head_share, "head_share:", low=0, low_open=True, high=1, expected="a number in (0, 1]")
         counts = np.sort(np.asarray(counts, dtype=np.int64))[::-1]
         total = int(counts.sum())
         if total == 0:

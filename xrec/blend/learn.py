@@ -37,6 +37,7 @@ from typing import Any
 
 import numpy as np
 
+from xrec._validation import check_int, parse_metric_column
 from xrec.blend._search import DEFAULT_GRID, LearnResult, Tracker, coordinate_ascent, simplex
 from xrec.blend.engine import BlendEngine
 from xrec.blend.gating import learn_gated_weights
@@ -56,8 +57,7 @@ def tpe_search(engine: BlendEngine, *, n_trials: int = 100, seed: int = 0, progr
     """
     import optuna
 
-    if isinstance(n_trials, bool) or not isinstance(n_trials, (int, np.integer)) or n_trials < 1:
-        raise ConfigError(f"n_trials must be a positive integer, got {n_trials!r}")
+    check_int(n_trials, "n_trials", low=1)
     names = engine.names_
     n = len(names)
     track = Tracker(engine, progress, "TPE search")
@@ -95,7 +95,7 @@ def tpe_search(engine: BlendEngine, *, n_trials: int = 100, seed: int = 0, progr
 
 def _pairs(engine: BlendEngine, n_negatives: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
     """(positive, negative) per-source score rows: each reachable held-out item vs sampled candidates."""
-    seen, truth, n_items = engine._seen, engine._truth, engine._n_items
+    seen, truth, n_items = engine.seen_, engine.truth_, engine.fold.n_items
     pos_rows, pos_items, neg_items = [], [], []
     for r in range(len(engine.users_)):
         rel = truth.indices[truth.indptr[r] : truth.indptr[r + 1]]
@@ -133,8 +133,7 @@ def pairwise_logistic(engine: BlendEngine, *, n_negatives: int = 20, C: float = 
     """
     from sklearn.linear_model import LogisticRegression
 
-    if isinstance(n_negatives, bool) or not isinstance(n_negatives, (int, np.integer)) or n_negatives < 1:
-        raise ConfigError(f"n_negatives must be a positive integer, got {n_negatives!r}")
+    check_int(n_negatives, "n_negatives", low=1)
     if not (isinstance(C, (int, float)) and math.isfinite(C) and C > 0):
         raise ConfigError(f"C must be a positive number, got {C!r}")
     names = engine.names_
@@ -231,16 +230,14 @@ def learn_weights(
         engine = sources
         if not getattr(engine, "prepared_", False):
             engine.prepare(progress=progress)
-        src_map, normalizers = engine._sources, engine._normalizers
-        ks_used = engine._ks
+        src_map, normalizers = engine.sources, engine.normalizers
+        ks_used = engine.ks
         metric = engine.metric
     else:
         if valid_fold is None:
             raise ConfigError("valid_fold: required when sources are given")
-        kstr = str(metric).rpartition("@")[2]
-        if not kstr.isdigit():
-            raise ConfigError(f"metric: expected '<name>@<k>', got {metric!r}")
-        ks_used = tuple(ks) if ks is not None else (int(kstr),)
+        k = parse_metric_column(metric)[1]
+        ks_used = tuple(ks) if ks is not None else (k,)
         engine = BlendEngine(sources, valid_fold, normalizers, users=users, ks=ks_used, metric=metric).prepare(progress=progress)
         src_map = sources
     if method == "gated":

@@ -94,9 +94,10 @@ import tomli_w
 from xrec._files import read_text_file, write_text_atomic
 from xrec.blend.blend import Blend
 from xrec.blend.fusion import Fusion
+from xrec.blendfile._blend_spec import BlendSpec
 from xrec.blendfile._describe import ranking_digest, spec_from_scorer
+from xrec.blendfile._schema import CHECK_K, CHECK_USERS, FOLDS, FORMAT, FORMAT_VERSION, METHODS, SourceSpec
 from xrec.blendfile._seal import END_PREFIX, seal, split_last_line, unseal
-from xrec.blendfile._schema import CHECK_K, CHECK_USERS, FOLDS, FORMAT, FORMAT_VERSION, METHODS, BlendSpec, SourceSpec
 from xrec.data.dataset import Dataset
 from xrec.errors import ConfigError, FingerprintMismatch
 

@@ -12,7 +12,8 @@ from xrec._toml_tables import plain
 from xrec.blend.blend import Blend
 from xrec.blend.fusion import Fusion
 from xrec.blend.gating import BANDS
-from xrec.blendfile._schema import SPLIT_TYPES, CHECK_K, CHECK_USERS, FOLDS, METHODS, BlendSpec, SourceSpec
+from xrec.blendfile._blend_spec import BlendSpec
+from xrec.blendfile._schema import CHECK_K, CHECK_USERS, FOLDS, METHODS, SPLIT_TYPES, SourceSpec
 from xrec.data.dataset import Dataset
 from xrec.errors import ConfigError, FingerprintMismatch
 

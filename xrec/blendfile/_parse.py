@@ -1,4 +1,4 @@
-"""Validation of a parsed blend file, field by field (the body of :meth:`BlendSpec.from_dict`)."""
+"""Validation of a parsed blend file, field by field (the work of :meth:`BlendSpec.from_dict`)."""
 
 from __future__ import annotations
 
@@ -22,16 +22,15 @@ from xrec.blendfile._schema import (
     SOURCE_KEYS,
     SPLIT_TYPES,
     TOP_KEYS,
-    BlendSpec,
     SourceSpec,
 )
 from xrec.errors import ConfigError
 
-__all__ = ["spec_from_dict"]
+__all__ = ["parse_fields"]
 
 
-def spec_from_dict(raw: Mapping[str, Any], cls: type[BlendSpec] = BlendSpec) -> BlendSpec:
-    """Validate parsed TOML content into a :class:`BlendSpec`; raises :class:`ConfigError` naming the bad field."""
+def parse_fields(raw: Mapping[str, Any]) -> dict[str, Any]:
+    """Validate parsed TOML content; the keyword arguments of ``BlendSpec``, or :class:`ConfigError` naming the bad field."""
     from xrec.sources.base import source_kinds
 
     require_table(raw, "the file")
@@ -149,7 +148,7 @@ def spec_from_dict(raw: Mapping[str, Any], cls: type[BlendSpec] = BlendSpec) -> 
     digest = get_value(check, "digest", str, "check")
     if not re.fullmatch(r"[0-9a-f]{16}", digest):
         raise ConfigError(f"check.digest: must be 16 lowercase hex digits, got {digest!r}")
-    spec = cls(
+    return dict(
         dataset_name=name,
         fingerprint=fingerprint,
         split=split_raw,
@@ -163,6 +162,3 @@ def spec_from_dict(raw: Mapping[str, Any], cls: type[BlendSpec] = BlendSpec) -> 
         check=dict(check),
         format_version=version,
     )
-    # Settings a source does not take, or a fusion rule rejects, surface here rather than at load.
-    spec.build()
-    return spec

@@ -7,6 +7,7 @@ from typing import Any, ClassVar, Self
 
 import numpy as np
 
+from xrec._validation import check_fitted
 from xrec.errors import DataError
 
 __all__ = ["Bridge", "as_matrix", "class_probabilities", "paired_rows"]
@@ -63,8 +64,7 @@ class Bridge(ABC):
         return as_matrix(text, "text").copy()
 
     def _check_fitted(self) -> None:
-        if not getattr(self, "fitted_", False):
-            raise RuntimeError(f"{type(self).__name__} is not fitted: call fit(...) first")
+        check_fitted(self)
 
     def __repr__(self) -> str:
         import inspect

@@ -1,11 +1,18 @@
-"""Encoders by name: the plain values a spec or blend file holds, one loaded model per process."""
+"""Encoders by name: the plain values a spec or blend file holds, one loaded model per process.
+
+Every process-wide model table lives here: the text and image encoders (``_SHARED``) and the
+CLIP models (``_CLIP``), so a model several sources use is loaded once.
+"""
 
 from __future__ import annotations
+
+import os
+from typing import Any
 
 from xrec.encoders.base import Encoder
 from xrec.errors import ConfigError
 
-__all__ = ["IMAGE_ENCODERS", "TEXT_ENCODERS", "make_image_encoder", "make_text_encoder"]
+__all__ = ["IMAGE_ENCODERS", "TEXT_ENCODERS", "make_clip_encoders", "make_image_encoder", "make_text_encoder"]
 
 TEXT_ENCODERS = ("minilm",)
 IMAGE_ENCODERS = ("efficientnet_lite0",)
@@ -74,6 +81,27 @@ def make_image_encoder(name: str = "efficientnet_lite0", *, on_error: str = "ski
         from xrec.encoders.image import EfficientNetLite0Encoder
 
         encoder = EfficientNetLite0Encoder(on_error=on_error, crop=crop)  # type: ignore[arg-type]
-        encoder._check_settings()  # a bad crop fails here, before the encoder is shared
+        encoder.check_settings()  # a bad crop fails here, before the encoder is shared
         return _SHARED.setdefault(key, encoder)
     raise ConfigError(f"image encoder {name!r} is unknown; known: {list(IMAGE_ENCODERS)}")
+
+
+# One CLIP model per (architecture, weights file and its version) for the whole process.
+_CLIP: dict[tuple[str, str, int, int], Any] = {}
+
+
+def make_clip_encoders(model: str, weights: str | os.PathLike) -> Any:
+    """The :class:`~xrec.encoders.clip.ClipEncoders` of ``model`` with ``weights`` (``on_error="skip"``).
+
+    Shared within the process while the weights file keeps its modification time and size.
+    """
+    try:
+        stat = os.stat(weights)
+        key = (str(model), str(weights), stat.st_mtime_ns, stat.st_size)
+    except OSError:
+        key = (str(model), str(weights), 0, 0)  # ClipEncoders names the missing file
+    if key not in _CLIP:
+        from xrec.encoders.clip import ClipEncoders
+
+        _CLIP[key] = ClipEncoders(model, weights=weights, on_error="skip")
+    return _CLIP[key]

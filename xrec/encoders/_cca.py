@@ -6,8 +6,9 @@ from typing import Self
 
 import numpy as np
 
+from xrec._validation import check_int, check_number
 from xrec.encoders._bridge_base import Bridge, as_matrix, paired_rows
-from xrec.errors import ConfigError, DataError
+from xrec.errors import DataError
 
 __all__ = ["CCABridge"]
 
@@ -73,18 +74,15 @@ class CCABridge(Bridge):
             raise DataError("cca bridge: fit needs image and text pairs")
         x, y = paired_rows(image, text)
         power = self.correlation_power
-        if isinstance(power, bool) or not isinstance(power, (int, float)) or not (np.isfinite(power) and power >= 0):
-            raise ConfigError(f"cca setting 'correlation_power' must be a finite number >= 0, got {power!r}")
+        check_number(power, "cca setting 'correlation_power'", low=0)
         p = self.pca_components
-        if p is not None and (isinstance(p, bool) or not isinstance(p, (int, np.integer)) or p < 1):
-            raise ConfigError(f"cca setting 'pca_components' must be a positive int or None, got {p!r}")
+        check_int(p, "cca setting 'pca_components'", low=1, allow_none=True, expected="a positive int")
         self.x_pca_mean_, self.x_pca_components_ = _pca(x, p)
         self.y_pca_mean_, self.y_pca_components_ = _pca(y, p)
         xr, yr = self._reduce(x, "x"), self._reduce(y, "y")
         k = self.n_components
         limit = min(len(x), xr.shape[1], yr.shape[1])
-        if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or not 1 <= k <= limit:
-            raise ConfigError(f"cca setting 'n_components' must be an int in [1, {limit}] for these pairs, got {k!r}")
+        check_int(k, "cca setting 'n_components'", low=1, high=limit, expected=f"an int in [1, {limit}] for these pairs")
         model = CCA(n_components=int(k), scale=True, max_iter=self.max_iter, tol=self.tol)
         model.fit(xr, yr)
         # stored as float64: the PCA, centring and rotation are small next to the data

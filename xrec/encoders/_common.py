@@ -13,6 +13,7 @@ from collections.abc import Iterator, Sequence
 from pathlib import Path
 from typing import Any, Literal
 
+from xrec._validation import check_int
 from xrec.errors import ConfigError
 
 OnError = Literal["raise", "skip"]
@@ -40,10 +41,8 @@ def check_on_error(value: Any, who: str) -> None:
 
 def check_batching(batch_size: Any, num_threads: Any, who: str) -> None:
     """``batch_size`` a positive int; ``num_threads`` a positive int or ``None``."""
-    if not isinstance(batch_size, int) or batch_size < 1:
-        raise ConfigError(f"{who}: batch_size must be a positive int, got {batch_size!r}")
-    if num_threads is not None and (not isinstance(num_threads, int) or num_threads < 1):
-        raise ConfigError(f"{who}: num_threads must be a positive int or None, got {num_threads!r}")
+    check_int(batch_size, f"{who}: batch_size", low=1, expected="a positive int")
+    check_int(num_threads, f"{who}: num_threads", low=1, allow_none=True, expected="a positive int")
 
 
 @contextlib.contextmanager

@@ -6,6 +6,7 @@ from typing import Self
 
 import numpy as np
 
+from xrec._validation import check_int
 from xrec.encoders._bridge_base import Bridge, as_matrix, class_probabilities
 from xrec.encoders._imagenet_probs import class_name_vectors
 from xrec.errors import ConfigError, DataError
@@ -76,8 +77,7 @@ class ConSEBridge(Bridge):
         ConSE learns nothing from pairs: ``text`` is ignored, and ``image`` (class
         probabilities) is read only for its mean, when ``prior_correction`` is on.
         """
-        if isinstance(self.top_t, bool) or not isinstance(self.top_t, (int, np.integer)) or self.top_t < 1:
-            raise ConfigError(f"conse setting 'top_t' must be a positive int, got {self.top_t!r}")
+        check_int(self.top_t, "conse setting 'top_t'", low=1, expected="a positive int")
         if not isinstance(self.prior_correction, (bool, np.bool_)):
             raise ConfigError(f"conse setting 'prior_correction' must be true or false, got {self.prior_correction!r}")
         if self.class_vectors is not None:

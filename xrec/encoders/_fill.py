@@ -18,12 +18,13 @@ import numpy as np
 from tqdm.auto import tqdm
 
 from xrec._files import write_bytes_atomic
+from xrec._validation import is_int
 from xrec.encoders._entry_file import content_hash, entry_file, pack_entry, unpack_entry
 from xrec.encoders.base import Encoder
 from xrec.errors import ConfigError, DataError
 
 if TYPE_CHECKING:
-    from xrec.encoders.cache import EmbeddingCache
+    from xrec.encoders._store import EmbeddingCache
 
 __all__ = ["CacheCorruptionWarning", "CacheStats", "encode_through_cache"]
 
@@ -200,7 +201,7 @@ def encode_through_cache(
     folder = cache.folder(encoder) if cache is not None else None
     stored = _stored_names(folder, sum(k is not None for k in keys)) if folder is not None else set()
     if folder is not None:
-        cache._sweep_once(folder)  # type: ignore[union-attr]
+        cache.sweep_once(folder)  # type: ignore[union-attr]
     found: dict[str, np.ndarray] = {}
     missing: dict[str, int] = {}  # content hash -> first input position
     in_the_way: set[Path] = set()  # damaged entries that are not plain files (a folder, a link)
@@ -255,9 +256,9 @@ def encode_through_cache(
     todo = list(missing.items())
     if todo:
         if folder is not None:
-            cache._write_meta(folder, encoder, dim)  # type: ignore[union-attr]
+            cache.write_meta(folder, encoder, dim)  # type: ignore[union-attr]
         step = (cache.batch_size if cache is not None else None) or getattr(encoder, "batch_size", None)
-        if not isinstance(step, int) or step < 1:
+        if not is_int(step) or step < 1:
             step = 256
         bar = tqdm(total=len(todo), disable=not progress, unit="item", desc=f"encoding ({encoder.cache_key})")
         try:
@@ -287,7 +288,7 @@ def encode_through_cache(
                         found[key] = vector
                         if folder is not None:
                             path = entry_file(folder, key)
-                            cache._mkdir(path.parent)  # type: ignore[union-attr]
+                            cache.make_folder(path.parent)  # type: ignore[union-attr]
                             if path in in_the_way:
                                 _clear_entry(path)
                             try:

@@ -6,8 +6,9 @@ from typing import Self
 
 import numpy as np
 
+from xrec._validation import check_number
 from xrec.encoders._bridge_base import Bridge, as_matrix, paired_rows
-from xrec.errors import ConfigError, DataError
+from xrec.errors import DataError
 
 __all__ = ["RidgeBridge"]
 
@@ -39,8 +40,7 @@ class RidgeBridge(Bridge):
 
         if image is None or text is None:
             raise DataError("ridge bridge: fit needs image and text pairs")
-        if isinstance(self.alpha, bool) or not isinstance(self.alpha, (int, float)) or not (np.isfinite(self.alpha) and self.alpha >= 0):
-            raise ConfigError(f"ridge setting 'alpha' must be a finite number >= 0, got {self.alpha!r}")
+        check_number(self.alpha, "ridge setting 'alpha'", low=0)
         x, y = paired_rows(image, text)
         model = Ridge(alpha=float(self.alpha), fit_intercept=True).fit(x.astype(np.float64), y.astype(np.float64))
         self.coef_ = np.ascontiguousarray(np.atleast_2d(model.coef_).T, dtype=np.float32)

@@ -9,6 +9,7 @@ from typing import Self
 import numpy as np
 import pandas as pd
 
+from xrec._validation import check_fitted, check_int
 from xrec.data.catalog import Catalog
 from xrec.errors import ConfigError, DataError
 
@@ -104,10 +105,7 @@ class AttributeEncoder:
                 raise ConfigError(f"attribute setting 'columns' repeats {dupes}")
         if not columns:
             raise ConfigError("no attribute columns to encode: the catalog schema declares none and 'columns' names none")
-        if self.numeric_bins is not None and (
-            isinstance(self.numeric_bins, bool) or not isinstance(self.numeric_bins, (int, np.integer)) or self.numeric_bins < 2
-        ):
-            raise ConfigError(f"attribute setting 'numeric_bins' must be an integer >= 2 or None, got {self.numeric_bins!r}")
+        check_int(self.numeric_bins, "attribute setting 'numeric_bins'", low=2, allow_none=True)
         if self.clip is not None and not (np.isfinite(self.clip) and self.clip > 0):
             raise ConfigError(f"attribute setting 'clip' must be a positive number or None, got {self.clip!r}")
         for name, weight in (self.block_weights or {}).items():
@@ -223,13 +221,12 @@ class AttributeEncoder:
 
         Raises
         ------
-        RuntimeError
-            When called before :meth:`fit`.
+        NotFittedError
+            When called before :meth:`fit` (also a ``RuntimeError``).
         DataError
             When ``catalog`` lacks a fitted column.
         """
-        if not getattr(self, "fitted_", False):
-            raise RuntimeError("AttributeEncoder is not fitted: call fit(catalog) first")
+        check_fitted(self, how="call fit(catalog) first")
         return self._encode(catalog, count_unseen=True)
 
     def fit_transform(self, catalog: Catalog) -> np.ndarray:

@@ -3,25 +3,23 @@
 from __future__ import annotations
 
 import os
-from collections.abc import Sequence
-from typing import TYPE_CHECKING
+from collections.abc import Callable, Sequence
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from xrec.encoders._fill import encode_through_cache
+from xrec.encoders._store import EmbeddingCache
 from xrec.encoders.base import Encoder
 from xrec.errors import ConfigError
 
 if TYPE_CHECKING:
     from xrec.data.catalog import Catalog
-    from xrec.encoders.cache import EmbeddingCache
 
-__all__ = ["catalog_texts", "encode_catalog_images", "encode_catalog_text"]
+__all__ = ["catalog_texts", "encode_catalog_images", "encode_catalog_text", "joined_rows"]
 
 
 def _resolve_cache(cache: EmbeddingCache | str | os.PathLike | bool | None) -> EmbeddingCache | None:
-    from xrec.encoders.cache import EmbeddingCache  # the cache module re-exports this one
-
     if cache is True:
         return EmbeddingCache()
     if cache is False or cache is None:
@@ -47,12 +45,12 @@ def catalog_texts(catalog: Catalog, columns: Sequence[str] | None = None, *, sep
     unknown = [c for c in cols if c not in catalog.items.columns]
     if unknown:
         raise ConfigError(f"columns {unknown} are not in the catalog; it has {list(catalog.items.columns)}")
-    frame = catalog.items[cols]
-    texts = []
-    for row in frame.itertuples(index=False, name=None):
-        parts = [v.strip() for v in row if isinstance(v, str) and v.strip()]
-        texts.append(sep.join(parts))
-    return texts
+    return joined_rows(catalog, cols, sep, lambda v: v.strip() if isinstance(v, str) else "")
+
+
+def joined_rows(catalog: Catalog, columns: Sequence[str], sep: str, as_text: Callable[[Any], str]) -> list[str]:
+    """One string per item: the non-blank ``as_text(value)`` of its ``columns`` cells, joined by ``sep``."""
+    return [sep.join(p for p in map(as_text, row) if p) for row in catalog.items[list(columns)].itertuples(index=False, name=None)]
 
 
 def encode_catalog_text(

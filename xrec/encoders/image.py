@@ -32,12 +32,12 @@ from xrec import _torch_guard  # noqa: F401  (must precede any torchvision / tim
 import os
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from numbers import Real
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from xrec._validation import check_int, check_number
 from xrec.encoders._common import OnError, check_batching, check_on_error, file_sha256, torch_threads
 from xrec.encoders._efficientnet_keys import default_weights_path, timm_key
 from xrec.encoders._image_io import (
@@ -199,15 +199,13 @@ class EfficientNetLite0Encoder(Encoder):
 
     # -- loading --------------------------------------------------------------------------
 
-    def _check_settings(self) -> None:
+    def check_settings(self) -> None:
+        """Raise :class:`~xrec.errors.ConfigError` for a bad setting (before any model is loaded)."""
         who = "image encoder"
         check_on_error(self.on_error, who)
         check_batching(self.batch_size, self.num_threads, who)
-        if self.max_pixels is not None and (not isinstance(self.max_pixels, int) or self.max_pixels < 1):
-            raise ConfigError(f"{who}: max_pixels must be a positive int or None, got {self.max_pixels!r}")
-        crop = self.crop
-        if isinstance(crop, bool) or not isinstance(crop, Real) or not 0.0 < float(crop) <= 1.0:
-            raise ConfigError(f"{who}: crop must be a number in (0, 1], got {crop!r}")
+        check_int(self.max_pixels, f"{who}: max_pixels", low=1, allow_none=True, expected="a positive int")
+        check_number(self.crop, f"{who}: crop", low=0.0, low_open=True, high=1.0, expected="a number in (0, 1]")
 
     def load(self) -> EfficientNetLite0Encoder:
         """Build the model and load the weights now (otherwise the first encode does).
@@ -222,7 +220,7 @@ class EfficientNetLite0Encoder(Encoder):
         ConfigError
             When the weights file is missing or does not fit the architecture.
         """
-        self._check_settings()
+        self.check_settings()
         if hasattr(self, "model_"):
             return self
         import timm
@@ -260,7 +258,7 @@ class EfficientNetLite0Encoder(Encoder):
 
         Only headers are read; a file truncated after its header is caught at encoding.
         """
-        self._check_settings()
+        self.check_settings()
         return image_problems(check_contents(contents, "image encoder"), max_pixels=self.max_pixels)
 
     def encode_with_probs(

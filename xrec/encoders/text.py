@@ -12,6 +12,7 @@ from typing import Any
 
 import numpy as np
 
+from xrec._validation import check_int
 from xrec.encoders import _common
 from xrec.encoders._common import OnError, check_batching, check_on_error, package_folder, text_problems, torch_threads
 from xrec.encoders.base import Encoder
@@ -141,8 +142,7 @@ class MiniLMTextEncoder(Encoder):
     def _check_settings(self) -> None:
         check_on_error(self.on_error, "text encoder")
         check_batching(self.batch_size, self.num_threads, "text encoder")
-        if self.max_seq_length is not None and (not isinstance(self.max_seq_length, int) or self.max_seq_length < 1):
-            raise ConfigError(f"text encoder: max_seq_length must be a positive int or None, got {self.max_seq_length!r}")
+        check_int(self.max_seq_length, "text encoder: max_seq_length", low=1, allow_none=True, expected="a positive int")
 
     def load(self, *, progress: bool = False) -> MiniLMTextEncoder:
         """Load the model now (otherwise the first encode does). Returns ``self``."""

@@ -51,9 +51,8 @@ import scipy.sparse as sp
 from xrec.errors import ConfigError
 from xrec.evaluate._chunked import check_problem, check_run_settings, rows_of, run_chunks
 from xrec.evaluate._factor_blend import FactorBlend, blend_product
-from xrec.evaluate._metrics import RANK_METRICS, metric_column, metrics_from_ranks
+from xrec.evaluate._metrics import RANK_METRICS, check_cutoffs, metric_column, metrics_from_ranks
 from xrec.evaluate._ranking import UNRANKED, BlockRanks, rank_heldout
-from xrec.evaluate.evaluator import check_cutoffs
 
 BACKENDS = ("faiss", "numpy")
 _UNIT = 2.0**-24  # float32 unit roundoff

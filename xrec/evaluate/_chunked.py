@@ -26,9 +26,8 @@ from tqdm.auto import tqdm
 from xrec.blend.normalize import normalize
 from xrec.errors import ConfigError, DataError
 from xrec.evaluate._factor_blend import FactorBlend, blend_product
-from xrec.evaluate._metrics import RANK_METRICS, metric_column, metrics_from_ranks
+from xrec.evaluate._metrics import RANK_METRICS, check_cutoffs, metric_column, metrics_from_ranks
 from xrec.evaluate._ranking import canonical_rows, check_users, rank_heldout
-from xrec.evaluate.evaluator import check_cutoffs
 from xrec.evaluate.protocols import FullRanking
 from xrec.evaluate.scorecard import Scorecard
 

@@ -6,6 +6,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
+from xrec._validation import is_int
 from xrec.errors import ConfigError
 from xrec.evaluate._ranking import BlockRanks
 
@@ -16,18 +17,50 @@ LIST_METRICS = ("coverage", "popularity")
 ALL_METRICS = RANK_METRICS + LIST_METRICS
 
 
+def check_ks(ks: Sequence[int] | int) -> tuple[int, ...]:
+    """Cut-offs as a sorted tuple of distinct positive ints; ``ConfigError`` otherwise."""
+    if isinstance(ks, (int, np.integer)):
+        ks = (ks,)
+    ks = tuple(ks)
+    bad = [k for k in ks if not is_int(k) or k <= 0]
+    if not ks or bad:
+        raise ConfigError(f"ks must be positive integers, got bad value(s) {bad or list(ks)}")
+    return tuple(sorted({int(k) for k in ks}))
+
+
+def check_cutoffs(ks: Sequence[int] | int, n_items: int, field: str = "ks") -> tuple[int, ...]:
+    """``ks`` checked by :func:`check_ks` and bounded by the catalog: sorted, distinct, ``<= n_items``.
+
+    A top-K list cannot be longer than the catalog, so a cut-off above ``n_items`` is
+    refused (never clamped) with a :class:`ConfigError` naming ``field``; callers check
+    before any ``(users, K)`` array is made.
+    """
+    try:
+        ks = check_ks(ks)
+    except ConfigError as exc:
+        raise ConfigError(f"{field}: {exc}") from None
+    too_big = [k for k in ks if k > n_items]
+    if too_big:
+        raise ConfigError(
+            f"{field}: cut-off(s) {too_big} exceed the catalog's {n_items} items; a top-K list cannot be longer than the catalog"
+        )
+    return ks
+
+
+def check_metrics(metrics: Sequence[str] | str) -> tuple[str, ...]:
+    """Known metric names, deduplicated in order; ``ConfigError`` for unknown names or none."""
+    if isinstance(metrics, str):
+        metrics = (metrics,)
+    unknown = [m for m in metrics if m not in ALL_METRICS]
+    if unknown:
+        raise ConfigError(f"unknown metric name(s) {unknown}; known: {list(ALL_METRICS)}")
+    if not metrics:
+        raise ConfigError("metrics is empty; pick from " + str(list(ALL_METRICS)))
+    return tuple(dict.fromkeys(metrics))
+
+
 def metric_column(metric: str, k: int) -> str:
     return f"{metric}@{k}"
-
-
-def parse_metric(metric: str, ks: tuple[int, ...]) -> tuple[str, int]:
-    """``"<name>@<k>"`` -> ``(name, k)`` for a rank metric whose cut-off is among ``ks``."""
-    name, _, k = str(metric).rpartition("@")
-    if name not in RANK_METRICS or not k.isdigit():
-        raise ConfigError(f"metric: expected '<name>@<k>' with name in {list(RANK_METRICS)}, got {metric!r}")
-    if int(k) not in ks:
-        raise ConfigError(f"metric: cut-off {k} of {metric!r} is not among ks={list(ks)}")
-    return name, int(k)
 
 
 def metrics_from_ranks(ranks: BlockRanks, ks: Sequence[int], metrics: Sequence[str] = RANK_METRICS) -> dict[str, np.ndarray]:

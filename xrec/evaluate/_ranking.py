@@ -219,7 +219,7 @@ def _within_group_position(rows: np.ndarray, items: np.ndarray, vals: np.ndarray
     return pos
 
 
-def _seen_flags(seen: sp.csr_matrix, rows: np.ndarray, items: np.ndarray, n_items: int) -> np.ndarray:
+def seen_flags(seen: sp.csr_matrix, rows: np.ndarray, items: np.ndarray, n_items: int) -> np.ndarray:
     """True where item ``items[k]`` is in row ``rows[k]`` of ``seen``."""
     if seen.nnz == 0 or len(rows) == 0:
         return np.zeros(len(rows), dtype=bool)
@@ -282,7 +282,7 @@ def rank_heldout(
     rel_rows = np.repeat(np.arange(b, dtype=np.int64), counts)
     rel_items = truth.indices.astype(np.int64)
     rel_vals = _no_nan(block[rel_rows, rel_items])
-    reach = ~_seen_flags(seen, rel_rows, rel_items, n)
+    reach = ~seen_flags(seen, rel_rows, rel_items, n)
     ranks = np.full(len(rel_items), UNRANKED, dtype=np.int64)
 
     # Relevant items placed above each reachable relevant item (score desc, index asc).

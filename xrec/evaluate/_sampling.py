@@ -8,12 +8,13 @@ samples for interactive use.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import numpy as np
 
-from xrec.errors import ConfigError, DataError
+from xrec._validation import check_int
+from xrec.errors import DataError
+from xrec.evaluate._stats import stratified_interval
 from xrec.fold import Fold
 
 __all__ = ["UserSample", "sample_users"]
@@ -60,25 +61,10 @@ class UserSample:
         -------
         (mean, low, high)
         """
-        from scipy.stats import norm
-
         values = np.asarray(values, dtype=np.float64)
         if values.shape != self.users.shape:
             raise DataError(f"values has shape {values.shape}, the sample has {self.users.shape} users")
-        total = float(self.population.sum())
-        mean = 0.0
-        var = 0.0
-        for h in range(self.n_strata):
-            y = values[self.stratum == h]
-            n_h, big_n = len(y), float(self.population[h])
-            if n_h == 0:
-                continue
-            w_h = big_n / total
-            mean += w_h * float(y.mean())
-            if n_h > 1:
-                var += w_h**2 * (1.0 - n_h / big_n) * float(y.var(ddof=1)) / n_h
-        half = float(norm.ppf(0.5 + level / 2.0)) * math.sqrt(max(var, 0.0))
-        return mean, mean - half, mean + half
+        return stratified_interval(values, self.stratum, self.population, level)
 
 
 def sample_users(fold: Fold, n: int = 1000, *, n_strata: int = 4, seed: int = 0) -> UserSample:
@@ -99,10 +85,8 @@ def sample_users(fold: Fold, n: int = 1000, *, n_strata: int = 4, seed: int = 0)
     seed
         Seed of the draw.
     """
-    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
-        raise ConfigError(f"n must be a positive integer, got {n!r}")
-    if isinstance(n_strata, bool) or not isinstance(n_strata, (int, np.integer)) or n_strata < 1:
-        raise ConfigError(f"n_strata must be a positive integer, got {n_strata!r}")
+    check_int(n, "n", low=1)
+    check_int(n_strata, "n_strata", low=1)
     users = fold.eval_users
     if len(users) == 0:
         raise DataError("the fold has no evaluation users (no held-out interactions)")

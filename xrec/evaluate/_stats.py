@@ -1,4 +1,10 @@
-"""Statistics over per-user values: bootstrap means, sign-flip test, Holm, normal and Wilson intervals.
+"""Statistics over per-user values: bootstrap means, sign-flip test, Holm, and every confidence interval.
+
+The intervals xrec reports are all computed here: bootstrap percentile intervals
+(scorecards, comparisons), normal-approximation intervals over users (the notebook mixer,
+:meth:`~xrec.blend.BlendEngine.interval`), stratified-sample intervals
+(:class:`~xrec.evaluate._sampling.UserSample`) and Wilson score intervals of hit rates
+(segments, the demo).
 
 Functions take one column of per-user values or several side by side (``n_users × m``);
 every column sees the same resamples, so results for a column do not depend on which
@@ -13,6 +19,13 @@ import numpy as np
 
 # Resampled values held at once (resamples × users), to bound memory on large user sets.
 _CELLS = 1 << 22
+
+
+def _z(confidence: float) -> float:
+    """Two-sided standard normal quantile for ``confidence`` (1.96 for 0.95)."""
+    from scipy.stats import norm
+
+    return float(norm.ppf(0.5 + confidence / 2.0))
 
 
 def _batch(n: int) -> int:
@@ -105,11 +118,9 @@ def wilson_interval(hits: np.ndarray, n: np.ndarray, confidence: float = 0.95) -
     (np.ndarray, np.ndarray)
         Lower and upper bounds.
     """
-    from scipy.stats import norm
-
     hits = np.asarray(hits, dtype=np.float64)
     n = np.asarray(n, dtype=np.float64)
-    z = float(norm.ppf(0.5 + confidence / 2.0))
+    z = _z(confidence)
     with np.errstate(invalid="ignore", divide="ignore"):
         p = hits / n
         denom = 1.0 + z**2 / n
@@ -120,8 +131,6 @@ def wilson_interval(hits: np.ndarray, n: np.ndarray, confidence: float = 0.95) -
 
 def normal_interval(values: np.ndarray, confidence: float = 0.95) -> tuple[float, float, float]:
     """Mean and normal-approximation interval ``mean ± z·s/√n`` of per-user values (NaN ignored)."""
-    from scipy.stats import norm
-
     v = np.asarray(values, dtype=np.float64)
     v = v[~np.isnan(v)]
     if len(v) == 0:
@@ -129,5 +138,44 @@ def normal_interval(values: np.ndarray, confidence: float = 0.95) -> tuple[float
     mean = float(v.mean())
     if len(v) < 2:
         return mean, mean, mean
-    half = float(norm.ppf(0.5 + confidence / 2.0)) * float(v.std(ddof=1)) / math.sqrt(len(v))
+    half = _z(confidence) * float(v.std(ddof=1)) / math.sqrt(len(v))
+    return mean, mean - half, mean + half
+
+
+def stratified_interval(values: np.ndarray, stratum: np.ndarray, population: np.ndarray, confidence: float = 0.95) -> tuple[float, float, float]:
+    """Stratified mean of sampled per-user ``values`` and its normal-approximation interval.
+
+    ``mean = Σ_h W_h ȳ_h`` and ``var = Σ_h W_h² (1 - n_h/N_h) s_h² / n_h`` with
+    ``W_h = N_h / N`` (Cochran, *Sampling Techniques*, 3rd ed. 1977, eqs. 5.1 and 5.6;
+    from memory); the interval is ``mean ± z·sqrt(var)``.
+
+    Parameters
+    ----------
+    values
+        One value per sampled user.
+    stratum
+        Stratum index (``0 .. len(population)-1``) of each sampled user.
+    population
+        Number of users in each stratum (``N_h``).
+    confidence
+        Two-sided level of the interval.
+
+    Returns
+    -------
+    (mean, low, high)
+    """
+    values = np.asarray(values, dtype=np.float64)
+    total = float(np.sum(population))
+    mean = 0.0
+    var = 0.0
+    for h in range(len(population)):
+        y = values[stratum == h]
+        n_h, big_n = len(y), float(population[h])
+        if n_h == 0:
+            continue
+        w_h = big_n / total
+        mean += w_h * float(y.mean())
+        if n_h > 1:
+            var += w_h**2 * (1.0 - n_h / big_n) * float(y.var(ddof=1)) / n_h
+    half = _z(confidence) * math.sqrt(max(var, 0.0))
     return mean, mean - half, mean + half

@@ -9,6 +9,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from xrec._validation import check_int
 from xrec.errors import ConfigError, DataError
 from xrec.evaluate._stats import bootstrap_means, holm, percentile_interval, sign_flip_pvalue
 from xrec.evaluate.scorecard import Scorecard, plain
@@ -60,18 +61,19 @@ class Comparison:
             "rows": [plain(r) for r in self.table.to_dict(orient="records")],
         }
 
-    def _title(self) -> str:
+    def title(self) -> str:
+        """One line saying what was compared, on how many users, with which interval and test."""
         return (
             f"Comparison vs {self.baseline!r} on {self.settings.get('n_users')} users "
             f"({self.settings.get('confidence', 0.95):.0%} paired-bootstrap CI, sign-flip p)"
         )
 
     def __repr__(self) -> str:
-        return self._title() + "\n" + self.table.to_string(index=False, float_format=lambda v: f"{v:.4g}")
+        return self.title() + "\n" + self.table.to_string(index=False, float_format=lambda v: f"{v:.4g}")
 
     def _repr_html_(self) -> str:
         body = self.table.to_html(index=False, float_format=lambda v: f"{v:.4g}")
-        return f"<div><b>{html.escape(self._title())}</b>{body}</div>"
+        return f"<div><b>{html.escape(self.title())}</b>{body}</div>"
 
 
 def _unique_names(cards: Sequence[Scorecard]) -> list[str]:
@@ -140,8 +142,7 @@ def compare(
         raise ConfigError("compare takes Scorecard objects")
     if not 0 < confidence < 1:
         raise ConfigError(f"confidence must be in (0, 1), got {confidence!r}")
-    if not isinstance(n_resamples, (int, np.integer)) or n_resamples < 1:
-        raise ConfigError(f"n_resamples must be a positive int, got {n_resamples!r}")
+    check_int(n_resamples, "n_resamples", low=1, expected="a positive int")
     if baseline.protocol != candidates[0].protocol or any(c.protocol != baseline.protocol for c in candidates):
         raise ConfigError(f"scorecards were evaluated under different protocols: {[c.protocol for c in cards]}")
 

@@ -7,6 +7,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
+from xrec._validation import check_int
 from xrec.errors import ConfigError
 
 SAMPLED_WARNING = (
@@ -48,10 +49,8 @@ class SampledNegatives:
     seed: int = 0
 
     def __post_init__(self) -> None:
-        if not isinstance(self.n_negatives, (int, np.integer)) or self.n_negatives <= 0:
-            raise ConfigError(f"SampledNegatives.n_negatives must be a positive int, got {self.n_negatives!r}")
-        if not isinstance(self.seed, (int, np.integer)) or self.seed < 0:
-            raise ConfigError(f"SampledNegatives.seed must be a non-negative int, got {self.seed!r}")
+        check_int(self.n_negatives, "SampledNegatives.n_negatives", low=1, expected="a positive int")
+        check_int(self.seed, "SampledNegatives.seed", low=0, expected="a non-negative int")
 
     def describe(self) -> dict:
         """The protocol as a plain dict (kept in scorecards)."""

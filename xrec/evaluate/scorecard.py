@@ -9,6 +9,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from xrec._validation import parse_metric_column
 from xrec.errors import ConfigError
 from xrec.evaluate._stats import bootstrap_means, percentile_interval
 
@@ -30,11 +31,6 @@ def plain(value: Any) -> Any:
     if isinstance(value, str):
         return value
     return str(value)
-
-
-def _split_column(col: str) -> tuple[str, int]:
-    metric, _, k = col.rpartition("@")
-    return metric, int(k)
 
 
 @dataclass
@@ -143,11 +139,12 @@ class Scorecard:
             means.setdefault(c, v)
         rows: dict[str, dict[str, float]] = {}
         for col, v in means.items():
-            metric, k = _split_column(col)
+            metric, k = parse_metric_column(col)
             rows.setdefault(metric, {})[f"@{k}"] = v
         return pd.DataFrame(rows).T
 
-    def _title(self) -> str:
+    def title(self) -> str:
+        """One line naming the scorer, the protocol and the fold."""
         kind = self.protocol.get("kind", "?")
         if kind == "sampled_negatives":
             kind = f"sampled negatives (n={self.protocol.get('n_negatives')}, seed={self.protocol.get('seed')})"
@@ -156,11 +153,11 @@ class Scorecard:
         return f"Scorecard {self.name!r}: {self.n_users} users, {self.n_items} items, {kind}"
 
     def __repr__(self) -> str:
-        return self._title() + "\n" + self.table().to_string(float_format=lambda v: f"{v:.4f}")
+        return self.title() + "\n" + self.table().to_string(float_format=lambda v: f"{v:.4f}")
 
     def _repr_html_(self) -> str:
         body = self.table().to_html(float_format=lambda v: f"{v:.4f}")
-        return f"<div><b>{html.escape(self._title())}</b>{body}</div>"
+        return f"<div><b>{html.escape(self.title())}</b>{body}</div>"
 
     def to_dict(self) -> dict:
         """Plain form (str/int/float/list/dict only; no None) for JSON or TOML files.

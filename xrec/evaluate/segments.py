@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from xrec._validation import check_int
 from xrec.errors import ConfigError
 from xrec.evaluate._stats import wilson_interval
 
@@ -73,8 +74,7 @@ def segment_hit_rates(
     from xrec.evaluate._ranking import rank_heldout
     from xrec.evaluate.evaluator import as_score_fn
 
-    if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 1:
-        raise ConfigError(f"k must be a positive integer, got {k!r}")
+    check_int(k, "k", low=1)
     edges = [int(e) for e in edges]
     if any(e < 1 for e in edges) or any(b <= a for a, b in zip(edges, edges[1:])):
         raise ConfigError(f"edges must be increasing positive integers, got {edges}")

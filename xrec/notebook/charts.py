@@ -7,7 +7,6 @@ same charts serve the notebook (rendered by the front end) and static reports
 
 from __future__ import annotations
 
-import math
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -15,6 +14,7 @@ import altair as alt
 import numpy as np
 import pandas as pd
 
+from xrec._validation import check_number, parse_metric_column
 from xrec.errors import ConfigError, DataError
 from xrec.evaluate._stats import wilson_interval
 from xrec.evaluate.segments import SEGMENT_COLUMNS, segment_hit_rates
@@ -164,9 +164,7 @@ def weight_profile(weights: Mapping[str, float], *, title: str = "Blend weights"
         raise ConfigError("weights must be a non-empty mapping of source name -> weight")
     values = {}
     for name, w in weights.items():
-        if isinstance(w, bool) or not isinstance(w, (int, float, np.integer, np.floating)) or not math.isfinite(float(w)) or w < 0:
-            raise ConfigError(f"weights.{name}: must be a finite number >= 0, got {w!r}")
-        values[str(name)] = float(w)
+        values[str(name)] = check_number(w, f"weights.{name}:", low=0)
     total = sum(values.values())
     data = pd.DataFrame({"source": list(values), "weight": list(values.values())})
     data["share"] = data["weight"] / total if total > 0 else 0.0
@@ -304,7 +302,7 @@ def comparison_chart(comparison: Any, metric: str | Sequence[str] | None = None,
     """
     data = comparison_frame(comparison, alpha=alpha)
     if metric is None:
-        ranked = [m for m in dict.fromkeys(data["metric"]) if m.rpartition("@")[0] != "popularity"]
+        ranked = [m for m in dict.fromkeys(data["metric"]) if parse_metric_column(m)[0] != "popularity"]
         metric = ranked or list(dict.fromkeys(data["metric"]))
     wanted = _metric_list(metric, data["metric"].tolist())
     data = data[data["metric"].isin(wanted)]

@@ -14,6 +14,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from xrec._validation import parse_metric_column
+
 __all__ = [
     "OFFLINE_RENDERER",
     "comparison_html",
@@ -55,7 +57,7 @@ def scorecard_html(card: Any, *, confidence: float = 0.95, n_resamples: int = 20
     cells: dict[str, dict[str, str]] = {}
     ks: list[str] = []
     for metric, row in summary.iterrows():
-        name, _, k = str(metric).rpartition("@")
+        name, k = parse_metric_column(metric)
         col = f"@{k}"
         if col not in ks:
             ks.append(col)
@@ -68,7 +70,7 @@ def scorecard_html(card: Any, *, confidence: float = 0.95, n_resamples: int = 20
     body = "".join(
         f"<tr><th>{html.escape(name)}</th>" + "".join(f"<td>{row.get(k, '')}</td>" for k in ks) + "</tr>" for name, row in cells.items()
     )
-    title = html.escape(card._title())
+    title = html.escape(card.title())
     note = f"mean [{confidence:.0%} bootstrap interval over users, {n_resamples} resamples]"
     return f"{_STYLE}<div><b>{title}</b><br><small>{note}</small><table class='xrec-table'><tr><th></th>{head}</tr>{body}</table></div>"
 
@@ -100,7 +102,7 @@ def comparison_html(comparison: Any, *, alpha: float = 0.05) -> str:
             "</tr>"
         )
     head = "<tr><th>metric</th><th>candidate</th><th>baseline</th><th>candidate</th><th>difference</th><th>interval</th><th>change</th><th>p</th><th>p (Holm)</th></tr>"
-    return f"{_STYLE}<div><b>{html.escape(comparison._title())}</b><table class='xrec-table'>{head}{''.join(rows)}</table></div>"
+    return f"{_STYLE}<div><b>{html.escape(comparison.title())}</b><table class='xrec-table'>{head}{''.join(rows)}</table></div>"
 
 
 def _offline_renderer(spec: dict, **_metadata: Any) -> dict[str, str]:

@@ -19,6 +19,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from xrec._validation import check_number
 from xrec.errors import ConfigError, DataError, XrecError
 from xrec.evaluate._stats import normal_interval
 from xrec.fold import Fold
@@ -138,7 +139,7 @@ class WeightMixer:
         from xrec.blend._base import check_sources
         from xrec.blend.normalize import NORMALIZERS, check_normalizer
         from xrec.evaluate._metrics import RANK_METRICS
-        from xrec.evaluate.evaluator import _check_ks
+        from xrec.evaluate._metrics import check_ks
 
         if not isinstance(fold, Fold):
             raise ConfigError(f"fold must be an xrec Fold, got {type(fold).__name__}")
@@ -147,7 +148,7 @@ class WeightMixer:
         if unfitted:
             raise ConfigError(f"sources {unfitted} are not fitted: fit them on the fold's training rows first")
         self.fold = fold
-        self.ks = _check_ks(ks)
+        self.ks = check_ks(ks)
         metrics = [metrics] if isinstance(metrics, str) else list(metrics)
         bad = [m for m in metrics if m not in RANK_METRICS]
         if bad or not metrics:
@@ -166,8 +167,7 @@ class WeightMixer:
         if unknown or missing:
             raise ConfigError(f"weights: unknown source(s) {unknown}, missing source(s) {missing}; sources are {list(self.sources)}")
         for n, v in start.items():
-            if isinstance(v, bool) or not isinstance(v, (int, float, np.integer, np.floating)) or not 0 <= float(v) <= 1:
-                raise ConfigError(f"weights.{n}: must be a number in [0, 1] (slider range), got {v!r}")
+            check_number(v, f"weights.{n}:", low=0, high=1, expected="a number in [0, 1] (slider range)")
         if not any(float(v) > 0 for v in start.values()):
             raise ConfigError("weights: at least one starting weight must be positive")
 
@@ -368,8 +368,7 @@ class WeightMixer:
         if unknown:
             raise ConfigError(f"weights: {unknown} are not sources; sources are {list(self.sources)}")
         for name, value in weights.items():
-            if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)) or not 0 <= float(value) <= 1:
-                raise ConfigError(f"weights.{name}: must be a number in [0, 1], got {value!r}")
+            check_number(value, f"weights.{name}:", low=0, high=1, expected="a number in [0, 1]")
         self._weights.update({n: float(v) for n, v in weights.items()})
         self._muted = True
         try:

@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
-import os
 from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
 
 from xrec.data.catalog import Catalog
+from xrec.encoders.catalog import joined_rows
 from xrec.errors import ConfigError
 
 __all__ = ["check_images", "clip_vectors", "image_features_and_probs", "image_vectors", "item_labels", "item_texts", "text_vectors"]
@@ -29,7 +29,7 @@ def _format_value(value: Any) -> str:
 def item_texts(catalog: Catalog, columns: Sequence[str] | None = None, *, sep: str = "\n") -> list[str]:
     """One text per item: the non-blank values of ``columns`` joined by ``sep``.
 
-    Unlike :func:`xrec.encoders.cache.catalog_texts`, label columns (tuples, e.g. genres)
+    Unlike :func:`xrec.encoders.cache.catalog_texts` (which shares its joining), label columns (tuples, e.g. genres)
     are written as ``"a, b"`` and numbers as text, so ``columns=["title", "genres"]``
     works. With text columns only, the texts are the same (so are their cache entries).
 
@@ -44,12 +44,7 @@ def item_texts(catalog: Catalog, columns: Sequence[str] | None = None, *, sep: s
     unknown = [c for c in cols if c not in catalog.items.columns]
     if unknown:
         raise ConfigError(f"text source setting 'columns': {unknown} are not catalog columns; it has {list(catalog.items.columns)}")
-    frame = catalog.items[cols]
-    out = []
-    for row in frame.itertuples(index=False, name=None):
-        parts = [_format_value(v) for v in row]
-        out.append(sep.join(p for p in parts if p))
-    return out
+    return joined_rows(catalog, cols, sep, _format_value)
 
 
 def item_labels(catalog: Catalog) -> list[str]:
@@ -130,9 +125,6 @@ def check_images(catalog: Catalog) -> None:
         raise ConfigError("image source: the catalog declares no image column; declare image=... when building it")
 
 
-_CLIP: dict[tuple[str, str, int, int], Any] = {}
-
-
 def clip_vectors(
     catalog: Catalog,
     modality: str,
@@ -150,16 +142,9 @@ def clip_vectors(
             "cross_modal bridge 'clip' needs the setting 'clip_weights': the path of an open_clip weights "
             "file for clip_model (no CLIP weights ship with xrec)"
         )
-    try:
-        stat = os.stat(weights)
-        key = (str(model), str(weights), stat.st_mtime_ns, stat.st_size)
-    except OSError:
-        key = (str(model), str(weights), 0, 0)  # ClipEncoders names the missing file
-    if key not in _CLIP:  # one loaded model per process (and file version), as for the other encoders
-        from xrec.encoders.clip import ClipEncoders
+    from xrec.encoders._by_name import make_clip_encoders
 
-        _CLIP[key] = ClipEncoders(model, weights=weights, on_error="skip")
-    clip = _CLIP[key]
+    clip = make_clip_encoders(model, weights)
     cache = EmbeddingCache(cache_dir)
     if modality == "image":
         check_images(catalog)

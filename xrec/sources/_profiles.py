@@ -7,14 +7,13 @@ and the item's vector. :class:`ProfileSource` is the base of every content sourc
 
 from __future__ import annotations
 
-from numbers import Real
 from typing import Any, Self
 
 import numpy as np
 import scipy.sparse as sp
 
+from xrec._validation import check_number
 from xrec.data.catalog import Catalog
-from xrec.errors import ConfigError
 from xrec.fold import Fold
 from xrec.sources.base import LowRankSource
 
@@ -24,6 +23,7 @@ _DAY = 86400.0
 
 
 def l2_normalize(rows: np.ndarray) -> np.ndarray:
+    """Rows scaled to unit length (float32); zero rows stay zero."""
     norms = np.linalg.norm(rows.astype(np.float64), axis=1, keepdims=True)
     return np.divide(rows, norms, out=np.zeros_like(rows, dtype=np.float64), where=norms > 0).astype(np.float32)
 
@@ -45,10 +45,8 @@ def center_vectors(rows: np.ndarray) -> np.ndarray:
 
 
 def check_half_life(kind: str, value: Any) -> None:
-    if value is None:
-        return
-    if isinstance(value, bool) or not isinstance(value, Real) or not (np.isfinite(value) and value > 0):
-        raise ConfigError(f"{kind} setting 'half_life_days' must be a positive number or None, got {value!r}")
+    """``ConfigError`` unless ``value`` (a kind's ``half_life_days`` setting) is ``None`` or a positive number."""
+    check_number(value, f"{kind} setting 'half_life_days'", low=0, low_open=True, allow_none=True, expected="a positive number")
 
 
 def history_weights(fold: Fold, half_life_days: float | None) -> sp.csr_matrix:

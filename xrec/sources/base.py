@@ -9,6 +9,7 @@ from typing import Any, ClassVar, Self
 import numpy as np
 
 from xrec._settings import check_settings
+from xrec._validation import check_fitted
 from xrec.errors import ConfigError
 from xrec.fold import Fold
 
@@ -51,8 +52,7 @@ class Source(ABC):
         return {name: getattr(self, name) for name in sig.parameters if name != "self"}
 
     def _check_fitted(self) -> None:
-        if not getattr(self, "fitted_", False):
-            raise RuntimeError(f"{type(self).__name__} is not fitted: call fit(fold) first")
+        check_fitted(self, how="call fit(fold) first")
 
     def __repr__(self) -> str:
         args = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items())

@@ -9,27 +9,25 @@ import scipy.sparse as sp
 from threadpoolctl import threadpool_limits
 from tqdm.auto import tqdm
 
-from xrec.errors import ConfigError, DataError, XrecError
+from xrec._validation import check_int, check_number
+from xrec.errors import DataError, XrecError
 from xrec.fold import Fold
 from xrec.sources.base import LowRankSource, Source
 
 
 def _check_positive(kind: str, **values: float) -> None:
     for name, value in values.items():
-        if not (np.isfinite(value) and value > 0):
-            raise ConfigError(f"{kind} setting {name!r} must be a positive number, got {value!r}")
+        check_number(value, f"{kind} setting {name!r}", low=0, low_open=True, expected="a positive number")
 
 
 def _check_count(kind: str, **values: int) -> None:
     for name, value in values.items():
-        if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
-            raise ConfigError(f"{kind} setting {name!r} must be an integer >= 1, got {value!r}")
+        check_int(value, f"{kind} setting {name!r}", low=1, expected="an integer >= 1")
 
 
 def _check_non_negative(kind: str, **values: float) -> None:
     for name, value in values.items():
-        if not (np.isfinite(value) and value >= 0):
-            raise ConfigError(f"{kind} setting {name!r} must be >= 0, got {value!r}")
+        check_number(value, f"{kind} setting {name!r}", low=0, expected=">= 0")
 
 
 def _factors(model_factors: np.ndarray, user_items: sp.csr_matrix) -> np.ndarray:
@@ -215,8 +213,7 @@ class ALSSource(_ImplicitSource):
 
         _check_count("als", factors=self.factors, iterations=self.iterations)
         _check_positive("als", alpha=self.alpha)
-        if isinstance(self.num_threads, bool) or not isinstance(self.num_threads, (int, np.integer)) or self.num_threads < 0:
-            raise ConfigError(f"als setting 'num_threads' must be an integer >= 0, got {self.num_threads!r}")
+        check_int(self.num_threads, "als setting 'num_threads'", low=0)
         _check_non_negative("als", regularization=self.regularization)
         return self._fit_model(
             fold,

@@ -3,10 +3,10 @@
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from numbers import Real
 
 import numpy as np
 
+from xrec._validation import check_number
 from xrec.data.catalog import Catalog
 from xrec.errors import ConfigError
 from xrec.sources._item_vectors import image_vectors, text_vectors
@@ -81,10 +81,7 @@ class EarlyFusionSource(ProfileSource):
             raise ConfigError(f"early_fusion setting 'weights': {unknown} are not among modalities {mods}")
         out = {}
         for m in mods:
-            w = weights.get(m, 1.0)
-            if isinstance(w, bool) or not isinstance(w, Real) or not (np.isfinite(w) and w >= 0):
-                raise ConfigError(f"early_fusion setting 'weights.{m}' must be a finite number >= 0, got {w!r}")
-            out[m] = float(w)
+            out[m] = check_number(weights.get(m, 1.0), f"early_fusion setting 'weights.{m}'", low=0)
         if not any(out.values()):
             raise ConfigError(f"early_fusion setting 'weights': all zero ({out})")
         return mods, out
