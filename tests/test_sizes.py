@@ -76,12 +76,12 @@ def exported(tmp_path, capsys):
 
 
 def test_recommend_k_is_bounded_on_the_command_line_before_the_refit(exported, capsys, monkeypatch):
-    import xrec.experiment
+    import xrec.runtime
 
     def refuse(*args, **kwargs):
         raise AssertionError("the blend was refitted before -k was checked")
 
-    monkeypatch.setattr(xrec.experiment, "runtime_for_blend_file", refuse)
+    monkeypatch.setattr(xrec.runtime, "runtime_for_blend_file", refuse)
     assert main(["recommend", str(exported), "--user", "u1", "-k", "1000000000", "-q"]) == 2
     assert "-k: 1000000000 exceeds the catalog's 40 items" in capsys.readouterr().err
 
@@ -100,8 +100,7 @@ def test_runtime_recommend_k_is_bounded(exported):
 def test_blend_file_check_sizes_are_bounded_before_the_refit(exported, key, value, limit, monkeypatch):
     import xrec.runtime
     from xrec.blendfile._seal import seal, unseal
-    from xrec.experiment import load_spec_dataset
-    from xrec.spec import parse_spec
+    from xrec.data.location import DataLocation, load_dataset
 
     raw = tomllib.loads(unseal(exported.read_text(encoding="utf-8"), "f"))
     raw["check"][key] = value
@@ -113,7 +112,7 @@ def test_blend_file_check_sizes_are_bounded_before_the_refit(exported, key, valu
         raise AssertionError("sources refitted before the check table was bounded")
 
     monkeypatch.setattr(xrec.runtime, "_fit", refuse)
-    dataset = load_spec_dataset(parse_spec({"data": raw["dataset"]["load"], "sources": {"p": {"kind": "popularity"}}}))
+    dataset = load_dataset(DataLocation.from_hints(raw["dataset"]["load"]))
     with pytest.raises(ConfigError, match=rf"check\.{key}: {value} exceeds the {limit}"):
         xrec.runtime.load_blend(exported, dataset)
 
