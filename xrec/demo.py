@@ -13,7 +13,8 @@ code doubles as a worked example of a full study:
    source (chosen on validation) and with popularity;
 5. explain: hit rate per planted taste (which signal finds which taste), and hit rate on
    new items (a cold-item split) against known items;
-6. write ``scorecards.json``, ``blend.toml`` and ``report.html`` to the output folder.
+6. write ``scorecards.json``, ``blend.toml``, ``report.html`` and ``bundle/`` (the blend file
+   with every learned artifact, servable by ``xrec serve``) to the output folder.
 """
 
 from __future__ import annotations
@@ -136,7 +137,7 @@ def run_demo(
     Parameters
     ----------
     output
-        Folder for ``scorecards.json``, ``blend.toml`` and ``report.html`` (created).
+        Folder for ``scorecards.json``, ``blend.toml``, ``report.html`` and ``bundle/`` (created).
     shop
         Demo shop folder; default the one shipped in the repository.
     progress
@@ -274,6 +275,10 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
     }
     blend_path = save_blend(out / "blend.toml", blend, dataset=dataset, split_settings=split.settings, fold="test",
                             evidence=evidence, dataset_load=dataset_load)
+    from xrec.bundle import save_bundle
+
+    bundle_path = save_bundle(out / "bundle", blend, dataset=dataset, split_settings=split.settings, fold="test",
+                              evidence=evidence, dataset_load=dataset_load)
 
     row = vs_best.table
     row = row[(row["metric"] == METRIC) & (row["candidate"] == "learned blend")].iloc[0]
@@ -304,7 +309,7 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
         "Comparison vs popularity": vs_pop,
     }
     report_path = charts_to_html(sections, "xrec demo shop report", out / "report.html", intro_html=intro)
-    return {"scorecards": scorecard_path, "blend": blend_path, "report": report_path}
+    return {"scorecards": scorecard_path, "blend": blend_path, "report": report_path, "bundle": bundle_path}
 
 
 def _summary(cards, learned, gated, vs_best, best_single, paths, clock) -> dict[str, Any]:
