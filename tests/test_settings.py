@@ -91,3 +91,9 @@ def test_generated_setting_values_give_a_source_or_a_config_error():
             pass
 
     check()
+
+
+def test_a_missing_required_setting_is_a_config_error():
+    # The ranking source needs the path of its file; a TypeError from __init__ used to escape.
+    with pytest.raises(ConfigError, match=r"source 'ranking' needs setting\(s\) \['path'\]"):
+        make_source("ranking")

@@ -32,7 +32,7 @@ def setting_names(cls: type) -> set[str]:
 
 
 def check_settings(cls: type, settings: Mapping[str, Any], label: str) -> None:
-    """Raise :class:`ConfigError` naming every setting ``cls`` does not take, or a value of the wrong type.
+    """Raise :class:`ConfigError` naming every setting ``cls`` does not take or needs, or a value of the wrong type.
 
     Types come from the annotations of ``cls.__init__`` (see the module docstring).
     """
@@ -41,6 +41,13 @@ def check_settings(cls: type, settings: Mapping[str, Any], label: str) -> None:
     unknown = set(settings) - allowed
     if unknown:
         raise ConfigError(f"{label} has no setting(s) {sorted(unknown)}; it takes {sorted(allowed)}")
+    required = [
+        n for n, p in params.items()
+        if n != "self" and p.default is inspect.Parameter.empty and p.kind not in (p.VAR_POSITIONAL, p.VAR_KEYWORD)
+    ]
+    missing = [n for n in required if n not in settings]
+    if missing:
+        raise ConfigError(f"{label} needs setting(s) {missing}")
     for name, value in settings.items():
         annotation = params[name].annotation
         if not isinstance(annotation, str):  # a module without `from __future__ import annotations`
