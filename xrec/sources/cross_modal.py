@@ -40,6 +40,9 @@ class CrossModalSource(ProfileSource):
           (image, text) pairs (setting ``n_components``);
         - ``"ridge"``: images → text space by ridge regression fitted on the catalog's
           own pairs (setting ``alpha``);
+        - ``"contrastive"``: both → a space learnt on the catalog's own pairs with a
+          symmetric contrastive loss, starting from the ridge map (setting ``alpha``;
+          see :class:`~xrec.encoders.bridge.ContrastiveBridge`);
         - ``"clip"``: CLIP image and text encoders (open_clip; settings ``clip_model``,
           ``clip_weights``).
     text_columns
@@ -124,8 +127,10 @@ class CrossModalSource(ProfileSource):
             value = getattr(self, name)
             if value not in MODALITIES:
                 raise ConfigError(f"cross_modal setting {name!r} must be one of {list(MODALITIES)}, got {value!r}")
-        if self.bridge not in ("conse", "cca", "ridge", "clip"):
-            raise ConfigError(f"cross_modal setting 'bridge' must be 'conse', 'cca', 'ridge' or 'clip', got {self.bridge!r}")
+        if self.bridge not in ("conse", "cca", "ridge", "contrastive", "clip"):
+            raise ConfigError(
+                f"cross_modal setting 'bridge' must be 'conse', 'cca', 'ridge', 'contrastive' or 'clip', got {self.bridge!r}"
+            )
 
     def _make_bridge(self) -> Any:
         from xrec.encoders.bridge import make_bridge
@@ -141,6 +146,8 @@ class CrossModalSource(ProfileSource):
             )
         if self.bridge == "cca":
             return make_bridge("cca", n_components=self.n_components, pca_components=self.pca_components)
+        if self.bridge == "contrastive":
+            return make_bridge("contrastive", alpha=self.alpha, cache_dir=self.cache_dir)
         return make_bridge("ridge", alpha=self.alpha)
 
     def _vectors(self, catalog: Catalog) -> tuple[np.ndarray, np.ndarray]:
