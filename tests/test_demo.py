@@ -31,12 +31,44 @@ def test_demo_writes_scorecards_blend_file_and_report(demo):
     assert "<script src=\"http" not in html  # viewable offline
 
 
+def test_demo_report_and_json_break_results_down_by_segment(demo):
+    import numpy as np
+    import pandas as pd
+
+    out, _ = demo
+    payload = json.loads((out / "scorecards.json").read_text(encoding="utf-8"))
+    rows = pd.DataFrame(payload["by_segment"]["scorecards"])
+    assert set(rows["by"]) == {"item_segment", "user_segment", "product_type"}
+    for (by, scorer), block in rows.groupby(["by", "scorer"]):
+        per_user = np.asarray(payload["scorecards"][scorer]["per_user"]["hit_rate@10"])
+        assert block["n_users"].sum() == len(per_user)  # every test user in one segment
+        # Size-weighted segment means give back the overall mean (the groupby identity; numpy as the reference).
+        assert (block["mean"] * block["n_users"]).sum() / len(per_user) == pytest.approx(per_user.mean())
+        assert (block["ci_low"].isna() == block["small"]).all()
+    segs = pd.DataFrame(payload["by_segment"]["comparison"])
+    assert {"learned blend", "gated blend"} == set(segs["candidate"]) and "p_holm_segments" in segs
+    html = (out / "report.html").read_text(encoding="utf-8")
+    assert "Results by segment (hit_rate@10)" in html and "Reading the segment panels" in html
+
+
 def test_blend_file_reproduces_the_evaluated_rankings(demo):
     out, _ = demo
     # load_blend refits the sources and verifies the recorded top-10 digest; a mismatch raises.
     runtime = load_blend(out / "blend.toml", load_demo_shop())
     recs = runtime.recommend(runtime.user_ids[0], k=10)
     assert len(recs) == 10 and recs["rank"].tolist() == list(range(1, 11))
+
+
+def test_demo_bundle_holds_the_same_blend_and_loads_without_data(demo):
+    from xrec.blendfile import read_blend
+    from xrec.bundle import load_bundle
+
+    out, summary = demo
+    assert summary["paths"]["bundle"] == str(out / "bundle")
+    bundle = load_bundle(out / "bundle")  # verifies every file and the ranking digest, refits nothing
+    assert bundle.spec.to_dict() == read_blend(out / "blend.toml").to_dict()
+    recs = bundle.recommend(bundle.user_ids[0], 10)
+    assert recs["item"].tolist() == load_blend(out / "blend.toml", load_demo_shop()).recommend(bundle.user_ids[0], 10)["item"].tolist()
 
 
 def test_blend_beats_every_single_source(demo):

@@ -134,6 +134,20 @@ def _fold(catalog: Catalog, heldout_seed: int = 0) -> Fold:
     )
 
 
+def _own_files(cache: str) -> Path:
+    """Seeded item vectors (.npy + ids) and a ranking file (CSV) beside the cache folder, written once."""
+    folder = Path(cache).parent / "own_files"
+    if not folder.is_dir():
+        folder.mkdir(parents=True)
+        rng = np.random.default_rng(7)
+        order = rng.permutation(N_ITEMS)
+        np.save(folder / "vectors.npy", rng.standard_normal((N_ITEMS, 5)).astype(np.float32))
+        (folder / "ids.txt").write_text("\n".join(f"i{j}" for j in order), encoding="utf-8")
+        rows = [(f"u{u}", f"i{j}", float(s)) for u in range(N_USERS - 2) for s, j in enumerate(rng.permutation(N_ITEMS)[:4])]
+        pd.DataFrame(rows, columns=["user", "item", "rank"]).to_csv(folder / "ranking.csv", index=False)
+    return folder
+
+
 # kind -> (cache folder -> unfitted source with small, fast settings)
 FACTORIES: dict[str, Callable[[str], Source]] = {
     "popularity": lambda cache: make_source("popularity"),
@@ -145,6 +159,10 @@ FACTORIES: dict[str, Callable[[str], Source]] = {
     "image": lambda cache: make_source("image", cache_dir=cache, center=True),
     "cross_modal": lambda cache: make_source("cross_modal", bridge="ridge", cache_dir=cache),
     "early_fusion": lambda cache: make_source("early_fusion", modalities=["text", "image", "attributes"], cache_dir=cache),
+    "vectors": lambda cache: make_source(
+        "vectors", path=str(_own_files(cache) / "vectors.npy"), ids=str(_own_files(cache) / "ids.txt"), center=True
+    ),
+    "ranking": lambda cache: make_source("ranking", path=str(_own_files(cache) / "ranking.csv"), depth=3),
 }
 
 

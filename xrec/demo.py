@@ -13,7 +13,8 @@ code doubles as a worked example of a full study:
    source (chosen on validation) and with popularity;
 5. explain: hit rate per planted taste (which signal finds which taste), and hit rate on
    new items (a cold-item split) against known items;
-6. write ``scorecards.json``, ``blend.toml`` and ``report.html`` to the output folder.
+6. write ``scorecards.json``, ``blend.toml``, ``report.html`` and ``bundle/`` (the blend file
+   with every learned artifact, servable by ``xrec serve``) to the output folder.
 """
 
 from __future__ import annotations
@@ -135,7 +136,7 @@ def run_demo(
     Parameters
     ----------
     output
-        Folder for ``scorecards.json``, ``blend.toml`` and ``report.html`` (created).
+        Folder for ``scorecards.json``, ``blend.toml``, ``report.html`` and ``bundle/`` (created).
     shop
         Demo shop folder; default the one shipped in the repository.
     progress
@@ -242,6 +243,7 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
                    dataset_load):
     from xrec.blendfile import save_blend
     from xrec.notebook.charts import charts_to_html, comparison_chart, metric_bars, weight_profile
+    from xrec.notebook.segment_charts import segment_section
 
     payload = {
         "dataset": {"name": dataset.name, "fingerprint": dataset.fingerprint()},
@@ -260,6 +262,9 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
         "segments": segments.to_dict(orient="records"),
         "scorecards": {n: c.to_dict() for n, c in cards.items()},
     }
+    # Results by segment (held-out item new / tail / head, shopper history length, product type).
+    segment_sections, payload["by_segment"] = segment_section(
+        cards, split.test, best_single, ["learned blend", "gated blend"], ("item_segment", "user_segment", "product_type"))
     scorecard_path = out / "scorecards.json"
     tmp = scorecard_path.with_suffix(".json.tmp")
     tmp.write_text(json.dumps(payload, indent=1, default=json_default), encoding="utf-8")
@@ -276,6 +281,10 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
     }
     blend_path = save_blend(out / "blend.toml", blend, dataset=dataset, split_settings=split.settings, fold="test",
                             evidence=evidence, dataset_load=dataset_load)
+    from xrec.bundle import save_bundle
+
+    bundle_path = save_bundle(out / "bundle", blend, dataset=dataset, split_settings=split.settings, fold="test",
+                              evidence=evidence, dataset_load=dataset_load)
 
     row = vs_best.table
     row = row[(row["metric"] == METRIC) & (row["candidate"] == "learned blend")].iloc[0]
@@ -302,11 +311,12 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
             "ALS carries most weight, so it under-ranks new items: serve new items with content-heavy weights "
             "(a popularity-gated blend, <code>GatedBlend</code>, learned on data that holds enough new items).</p>"
         ),
+        **segment_sections,
         "Scorecard of the learned blend": card,
         "Comparison vs popularity": vs_pop,
     }
     report_path = charts_to_html(sections, "xrec demo shop report", out / "report.html", intro_html=intro)
-    return {"scorecards": scorecard_path, "blend": blend_path, "report": report_path}
+    return {"scorecards": scorecard_path, "blend": blend_path, "report": report_path, "bundle": bundle_path}
 
 
 def _summary(cards, learned, gated, vs_best, best_single, paths, clock) -> dict[str, Any]:

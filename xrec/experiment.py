@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -10,7 +11,7 @@ import pandas as pd
 
 from xrec.data.dataset import Dataset
 from xrec.data.location import load_dataset
-from xrec.errors import ConfigError
+from xrec.errors import ConfigError, DataError
 from xrec.spec import ExperimentSpec
 from xrec.sources.base import Source, make_source
 
@@ -25,6 +26,13 @@ def build_sources(spec: ExperimentSpec, *, progress: bool = False) -> dict[str, 
 
     With ``progress``, sources that can show their own bars (encoders, implicit models) do,
     unless the spec sets their ``progress`` explicitly.
+
+    Raises
+    ------
+    ConfigError
+        A file setting (:attr:`~xrec.sources.base.Source.path_settings`) leads outside the
+        spec's folder (``..``, an absolute path, a symbolic link) without
+        ``data.allow_outside = true``; the message names it, e.g. ``sources.current.path``.
     """
     from xrec._settings import setting_names
     from xrec.sources.base import source_class
@@ -33,6 +41,9 @@ def build_sources(spec: ExperimentSpec, *, progress: bool = False) -> dict[str, 
     for name, table in spec.sources.items():
         settings = {k: v for k, v in table.items() if k != "kind"}
         cls = source_class(table["kind"])
+        if cls is not None:  # file paths in a spec are relative to the spec file, and stay inside its folder
+            _check_inside(spec, name, cls.path_fields(settings))
+            settings = cls.resolve_paths(settings, spec.resolve)
         if progress and cls is not None and "progress" in setting_names(cls):
             settings.setdefault("progress", True)
         try:
@@ -40,6 +51,47 @@ def build_sources(spec: ExperimentSpec, *, progress: bool = False) -> dict[str, 
         except ConfigError as exc:
             raise ConfigError(f"sources.{name}: {exc}") from exc
     return out
+
+
+def _check_inside(spec: ExperimentSpec, name: str, fields: dict[str, str]) -> None:
+    """Refuse a source file path that leads outside the spec's folder (``..``, absolute, or a
+    symbolic link out), the rule of the ``[data]`` table with its opt-out ``data.allow_outside``."""
+    if spec.data.allow_outside:
+        return
+    for field, value in fields.items():
+        path = spec.resolve(value)
+        if not spec.data.inside(path):
+            raise ConfigError(
+                f"sources.{name}.{field}: {value!r} leads outside the spec's folder {str(spec.data.base.resolve())!r} "
+                f"(to {str(path.resolve())!r}); move the file inside it, or set data.allow_outside = true"
+            )
+
+
+def _outside_fields(spec: ExperimentSpec, name: str) -> list[str]:
+    """The file settings of source ``name`` that lie outside the spec's folder (allowed by ``data.allow_outside``)."""
+    from xrec.sources.base import source_class
+
+    table = spec.sources[name]
+    cls = source_class(table["kind"])
+    if cls is None:
+        return []
+    fields = cls.path_fields({k: v for k, v in table.items() if k != "kind"})
+    return [f"sources.{name}.{field}" for field, value in fields.items() if not spec.data.inside(spec.resolve(value))]
+
+
+def _fit_source(spec: ExperimentSpec, name: str, source: Source, fold: Any) -> Source:
+    """``source.fit(fold)``; when it reads a file from outside the spec's folder, a
+    :class:`DataError` names the setting but quotes nothing from the file."""
+    try:
+        return source.fit(fold)
+    except DataError:
+        outside = _outside_fields(spec, name)
+        if not outside:
+            raise
+        raise DataError(
+            f"{', '.join(outside)}: the file cannot be used as this source's input "
+            "(details not shown: the file lies outside the spec's folder)"
+        ) from None
 
 
 @dataclass
@@ -112,19 +164,30 @@ def evaluate_scorers(spec: ExperimentSpec, scorers: dict[str, Any], fold: Any, *
 
 
 def run_experiment(
-    spec: ExperimentSpec, *, progress: bool = False, dataset: Dataset | None = None, only: str | None = None
+    spec: ExperimentSpec,
+    *,
+    progress: bool = False,
+    dataset: Dataset | None = None,
+    only: str | None = None,
+    by: Sequence[str] = (),
 ) -> ExperimentResult:
     """Fit every source on the test fold's training rows, evaluate sources and blends, compare with the baseline.
 
     With ``only`` (a source or blend name) just that scorer and the sources it needs are
-    fitted and evaluated, and there is no comparison.
+    fitted and evaluated, and there is no comparison. With ``by`` (``"item_segment"``,
+    ``"user_segment"`` or catalog column names) every scorecard and the comparison are also
+    broken down by those segments (:func:`xrec.evaluate.segments.segment_labels`):
+    ``extras["segments"]`` holds the per-segment scorecard table, the comparison its
+    ``segments`` table.
     """
     from xrec.evaluate import compare
+    from xrec.evaluate.segments import segment_labels
     from xrec.split import split_dataset
 
     dataset = dataset or load_spec_dataset(spec, progress=progress)
     split = split_dataset(dataset, **spec.split)
     fold = split.test
+    labels = [segment_labels(fold, name) for name in dict.fromkeys(by)]  # bad names fail before any fitting
     sources = build_sources(spec, progress=progress)
     blends = dict(spec.blends)
     if only is not None:
@@ -136,7 +199,7 @@ def run_experiment(
         else:
             raise ConfigError(f"no source or blend named {only!r}; known: {sorted([*sources, *blends])}")
     for name, source in _progress(sources.items(), progress, "fitting sources"):
-        source.fit(fold)
+        _fit_source(spec, name, source, fold)
     scorers: dict[str, Any] = dict(sources) if only is None or only in sources else {}
     learned: dict[str, Any] = {}
     valid_sources: dict[Any, Any] = {}  # sources fitted on the validation split, and searches done on them
@@ -148,10 +211,41 @@ def run_experiment(
     scorecards = evaluate_scorers(spec, scorers, fold, progress=progress)
     comparison = None
     baseline = spec.baseline
+    seed = int(spec.evaluate.get("seed", 0))
     if only is None and baseline is not None and len(scorecards) > 1:
         others = [card for name, card in scorecards.items() if name != baseline]
-        comparison = compare(scorecards[baseline], *others, seed=int(spec.evaluate.get("seed", 0)))
-    return ExperimentResult(spec, dataset, split, scorers, scorecards, comparison, extras={"learned": learned})
+        comparison = compare(scorecards[baseline], *others, seed=seed, by=labels or None)
+    extras: dict[str, Any] = {"learned": learned}
+    if labels:
+        extras["segments"] = pd.concat(
+            [card.by_segment(labels, seed=seed).assign(scorer=name) for name, card in scorecards.items()], ignore_index=True
+        )
+    overlap_k = int(spec.evaluate.get("overlap", 0))
+    if comparison is not None and overlap_k:
+        from xrec.evaluate.overlap import top_list_change
+
+        # How much of each top-K list changes against the baseline (evaluate.overlap = K).
+        extras["top_lists"] = {
+            name: top_list_change(scorers[baseline], scorers[name], fold, k=overlap_k, names=(baseline, name))
+            for name in scorecards if name != baseline
+        }
+    if only is None and spec.evaluate.get("pairs"):
+        extras["pairs"] = _paired_runs(spec, scorers, scorecards, fold, overlap_k)
+    return ExperimentResult(spec, dataset, split, scorers, scorecards, comparison, extras=extras)
+
+
+def _paired_runs(spec: ExperimentSpec, scorers: dict, scorecards: dict, fold: Any, overlap_k: int) -> list[dict[str, Any]]:
+    """``evaluate.pairs``: each (baseline, candidate) pair compared on its own, with top-list overlap."""
+    from xrec.evaluate import compare
+    from xrec.evaluate.overlap import top_list_change
+
+    runs = []
+    for base, cand in spec.evaluate["pairs"]:
+        run: dict[str, Any] = {"comparison": compare(scorecards[base], scorecards[cand], seed=int(spec.evaluate.get("seed", 0)))}
+        if overlap_k:
+            run["top_lists"] = top_list_change(scorers[base], scorers[cand], fold, k=overlap_k, names=(base, cand))
+        runs.append(run)
+    return runs
 
 
 def _blend_source_names(table: dict[str, Any], sources: dict[str, Source]) -> list[str]:
@@ -189,7 +283,7 @@ def _build_blend(spec, table, sources, split, valid_sources, learned, name, prog
     built = build_sources(spec, progress=progress)
     for n in names:
         if n not in valid_sources:
-            valid_sources[n] = built[n].fit(split.validation)
+            valid_sources[n] = _fit_source(spec, n, built[n], split.validation)
     metric = table.get("metric", "ndcg@10")
     k = parse_metric_column(metric)[1]
     seed = int(table.get("seed", 0))
@@ -262,28 +356,65 @@ def evidence_summary(result: ExperimentResult, name: str) -> dict[str, Any]:
     return evidence
 
 
-def export_spec(spec: ExperimentSpec, output: str | Path, *, scorer: str | None = None, progress: bool = False) -> Path:
-    """Run ``spec`` and write the blend file of one of its scorers (default: the primary)."""
+def export_spec(
+    spec: ExperimentSpec,
+    output: str | Path | None = None,
+    *,
+    scorer: str | None = None,
+    progress: bool = False,
+    bundle: str | Path | None = None,
+) -> Path:
+    """Run ``spec`` and write the blend file of one of its scorers (default: the primary).
+
+    With ``bundle`` (a folder), also write a bundle there (see :func:`xrec.bundle.save_bundle`):
+    the blend file plus every learned artifact, loadable without the data. Returns the
+    blend file's path, or the bundle folder when no ``output`` is given.
+    """
     from xrec.blendfile import save_blend
 
     # Checked before the (long) run, not after it.
-    output = Path(output)
-    if output.is_dir():
-        raise ConfigError(f"--output: {str(output)!r} is a folder; give the blend file's path, e.g. {str(output / 'blend.toml')!r}")
-    if not output.parent.is_dir():
-        raise ConfigError(f"--output: folder {str(output.parent)!r} does not exist")
+    if output is None and bundle is None:
+        raise ConfigError("--output: give a blend file to write, a --bundle folder, or both")
+    if output is not None:
+        output = Path(output)
+        if output.is_dir():
+            raise ConfigError(f"--output: {str(output)!r} is a folder; give the blend file's path, e.g. {str(output / 'blend.toml')!r}")
+        if not output.parent.is_dir():
+            raise ConfigError(f"--output: folder {str(output.parent)!r} does not exist")
+    if bundle is not None:
+        bundle = Path(bundle)
+        if not (bundle.parent if str(bundle.parent) else Path(".")).is_dir():
+            raise ConfigError(f"--bundle: folder {str(bundle.parent)!r} does not exist")
+        if bundle.exists() and not bundle.is_dir():
+            raise ConfigError(f"--bundle: {str(bundle)!r} exists and is not a folder")
     result = run_experiment(spec, progress=progress)
     name, blend = _scorer_for(result, scorer)
     evidence = evidence_summary(result, name)
-    return save_blend(
-        output, blend, dataset=result.dataset, split_settings=result.split.settings,
-        evidence=evidence, fold="test", dataset_load=data_hints(spec),
-    )
+    options = {
+        "dataset": result.dataset, "split_settings": result.split.settings, "evidence": evidence,
+        "fold": "test", "dataset_load": data_hints(spec),
+    }
+    written = None
+    if bundle is not None:
+        from xrec.bundle import save_bundle
+
+        written = save_bundle(bundle, blend, **options)
+    if output is not None:
+        written = save_blend(output, blend, **options)
+    return written
 
 
-def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progress: bool = False):
-    """Paired comparison of the primary scorers of two specs; both must use the same data and split."""
+def compare_specs(
+    baseline: ExperimentSpec, candidate: ExperimentSpec, *, progress: bool = False, by: Sequence[str] = (), overlap: int | None = None
+):
+    """Paired comparison of the primary scorers of two specs; both must use the same data and split.
+
+    ``by`` breaks the comparison down by segments too, as in :func:`run_experiment`.
+    With ``overlap`` (default: the baseline spec's ``evaluate.overlap``) the comparison's
+    ``top_lists`` also holds the candidate's top-K overlap with the baseline per user.
+    """
     from xrec.evaluate import compare
+    from xrec.evaluate.segments import segment_labels
 
     # only each spec's primary scorer (and the sources it blends) is fitted and evaluated
     base = run_experiment(baseline, progress=progress, only=baseline.primary)
@@ -301,7 +432,17 @@ def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progre
     if b_card.name == c_card.name:
         c_card.name = f"{c_card.name} ({candidate.name})"
         b_card.name = f"{b_card.name} ({baseline.name})"
-    return compare(b_card, c_card, seed=int(baseline.evaluate.get("seed", 0)))
+    labels = [segment_labels(base.split.test, name) for name in dict.fromkeys(by)]
+    comparison = compare(b_card, c_card, seed=int(baseline.evaluate.get("seed", 0)), by=labels or None)
+    k = overlap if overlap is not None else int(baseline.evaluate.get("overlap", 0))
+    if k:
+        from xrec.evaluate.overlap import top_list_change
+
+        # both primaries were fitted on folds of the same data and split: the same users and items
+        comparison.top_lists[c_card.name] = top_list_change(
+            base.scorers[baseline.primary], cand.scorers[candidate.primary], base.split.test, k=k, names=(b_card.name, c_card.name)
+        )
+    return comparison
 
 
 def runtime_for_blend_file(path: str | Path, *, data_folder: str | None = None, progress: bool = False):

@@ -16,6 +16,8 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     baseline = "popularity"      # the source or blend the others are compared with
     # primary = "als_genres"     # the scorer `xrec compare` / `xrec export` use (default: first blend)
     # protocol = "sampled"       # full ranking unless asked; sampled takes `negatives`
+    # overlap = 10               # also report each scorer's top-10 overlap with the baseline
+    # pairs = [["als", "als_genres"]]  # extra paired comparisons, each against its own baseline
     # workers = 2                # evaluate on a local Dask cluster of 2 processes, sharded by users
     # scheduler = "tcp://scheduler-host:8786"  # or on a running Dask cluster (not with `workers`)
     # shard_size = 8192          # users per Dask task (default: about 4 per worker; unused in one process)
@@ -43,6 +45,23 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
 
     [blends.rrf]                 # a tuning-free fusion rule
     fusion = "rrf"               # rrf (k = 60) | combsum | combmnz (depth = 100)
+
+Source kinds (``kind`` in ``[sources.NAME]``; the other keys are the source class's
+settings): ``popularity``, ``als``, ``bpr``, ``item_knn``, ``attributes``, ``text``,
+``image``, ``cross_modal``, ``early_fusion``, ``vectors`` (your item vectors from
+``.npy`` + id file, Parquet or ``.safetensors``: :class:`xrec.sources.VectorSource`) and
+``ranking`` (your current ranking from CSV or Parquet: :class:`xrec.sources.RankingSource`),
+for example::
+
+    [sources.current]
+    kind = "ranking"
+    path = "current.csv"         # relative to the spec file, like every file setting
+
+Source file settings (``vectors``: ``path``, ``ids``; ``ranking``: ``path``; ``cross_modal``:
+``image_vectors``, ``text_vectors``; ``early_fusion``: ``vectors``) follow the rule of the data
+paths below: inside the spec file's folder unless ``data.allow_outside = true``, errors naming
+the setting (``sources.current.path``), nothing quoted from a file outside. Blend files record
+them absolute and are read as recorded (the check ran when the spec did).
 
 The ``[data]`` table is checked by :class:`xrec.data.location.DataLocation` (its module
 docstring lists every key). For ``dataset = "files"`` it names the catalog and interactions
@@ -84,7 +103,7 @@ from xrec.errors import ConfigError
 _SPLIT_KEYS = {"rule", "seed", "validation", "test_fraction", "cutoff", "cold_fraction", "min_train"}
 _EVAL_KEYS = {
     "ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size",
-    "scheduler", "workers", "shard_size",
+    "scheduler", "workers", "shard_size", "overlap", "pairs",
 }
 _BLEND_KEYS = {"weights", "normalizer", "sources", "method", "metric", "gated", "fusion", "k", "depth", "seed"}
 _LEARN_METHODS = ("coordinate_ascent", "optuna", "logistic")
@@ -217,7 +236,7 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
     unknown = [m for m in metrics if m not in ALL_METRICS]
     if unknown:
         raise ConfigError(f"evaluate.metrics: unknown metric name(s) {unknown}; known: {list(ALL_METRICS)}")
-    for key, lowest in (("chunk_size", 1), ("negatives", 1), ("seed", 0), ("shard_size", 1)):
+    for key, lowest in (("chunk_size", 1), ("negatives", 1), ("seed", 0), ("shard_size", 1), ("overlap", 1)):
         _check_int(evaluate, key, lowest, "evaluate")
     from xrec.cluster import check_cluster_options
 
@@ -243,6 +262,13 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
             raise ConfigError(f"evaluate.{key}: the name of a source or blend, got {value!r}")
         if value is not None and value not in sources and value not in blends:
             raise ConfigError(f"evaluate.{key}: {value!r} is neither a source nor a blend")
+    pairs = evaluate.get("pairs", [])
+    if not isinstance(pairs, list) or not all(isinstance(p, list) and len(p) == 2 for p in pairs):
+        raise ConfigError(f"evaluate.pairs: must be a list of [baseline, candidate] name pairs, got {pairs!r}")
+    for pair in pairs:
+        for value in pair:
+            if value not in sources and value not in blends:
+                raise ConfigError(f"evaluate.pairs: {value!r} is neither a source nor a blend")
     return ExperimentSpec(
         data=data,
         split=split,

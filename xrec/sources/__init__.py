@@ -1,4 +1,4 @@
-"""Sources: popularity, collaborative models, attribute and content similarity."""
+"""Sources: popularity, collaborative models, attribute and content similarity, your vectors and ranking."""
 
 from xrec.sources.base import LowRankSource, Source, make_source, source_kinds
 from xrec.sources.popularity import PopularitySource
@@ -7,6 +7,8 @@ from xrec.sources.attributes import AttributeSource
 from xrec.sources.content import ImageSource, TextSource
 from xrec.sources.cross_modal import CrossModalSource
 from xrec.sources.early_fusion import EarlyFusionSource
+from xrec.sources.ranking import RankingSource
+from xrec.sources.vectors import VectorSource
 
 __all__ = [
     "ALSSource",
@@ -18,7 +20,9 @@ __all__ = [
     "ItemKNNSource",
     "LowRankSource",
     "PopularitySource",
+    "RankingSource",
     "TextSource",
+    "VectorSource",
     "Source",
     "make_source",
     "source_kinds",

@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
-from typing import Any
+from collections.abc import Mapping, Sequence
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -11,6 +11,7 @@ from xrec.data.catalog import Catalog
 from xrec.errors import ConfigError, DataError
 from xrec.sources._item_vectors import clip_vectors, image_vectors, text_vectors
 from xrec.sources._profiles import ProfileSource
+from xrec.sources.vectors import vectors_from_setting
 
 __all__ = ["MODALITIES", "CrossModalSource"]
 
@@ -64,6 +65,12 @@ class CrossModalSource(ProfileSource):
         open_clip architecture name and the path of its weights file.
     half_life_days, cache_dir, progress
         See :class:`TextSource`.
+    image_vectors, text_vectors
+        Your own vectors for a side, in place of the encoder's: a vector file path, or a
+        table of :func:`~xrec.sources.vectors.read_item_vectors` options
+        (``{ path = "v.npy", ids = "ids.txt" }``); relative to the spec file in a spec. Only
+        with the ``"cca"``, ``"ridge"`` and ``"contrastive"`` bridges, which learn the link from the catalog's
+        own pairs.
 
     Attributes
     ----------
@@ -81,6 +88,7 @@ class CrossModalSource(ProfileSource):
     """
 
     kind = "cross_modal"
+    path_settings: ClassVar[tuple[str, ...]] = ("image_vectors", "text_vectors")
 
     def __init__(
         self,
@@ -102,6 +110,8 @@ class CrossModalSource(ProfileSource):
         half_life_days: float | None = None,
         cache_dir: str | None = None,
         progress: bool = False,
+        image_vectors: str | Mapping[str, Any] | None = None,
+        text_vectors: str | Mapping[str, Any] | None = None,
     ) -> None:
         self.profile = profile
         self.items = items
@@ -121,6 +131,8 @@ class CrossModalSource(ProfileSource):
         self.half_life_days = half_life_days
         self.cache_dir = cache_dir
         self.progress = progress
+        self.image_vectors = image_vectors
+        self.text_vectors = text_vectors
 
     def _check(self) -> None:
         for name in ("profile", "items"):
@@ -130,6 +142,11 @@ class CrossModalSource(ProfileSource):
         if self.bridge not in ("conse", "cca", "ridge", "contrastive", "clip"):
             raise ConfigError(
                 f"cross_modal setting 'bridge' must be 'conse', 'cca', 'ridge', 'contrastive' or 'clip', got {self.bridge!r}"
+            )
+        own = [name for name in ("image_vectors", "text_vectors") if getattr(self, name) is not None]
+        if own and self.bridge not in ("cca", "ridge", "contrastive"):
+            raise ConfigError(
+                f"cross_modal settings {own}: your own vectors work with the 'cca', 'ridge' and 'contrastive' bridges, not {self.bridge!r}"
             )
 
     def _make_bridge(self) -> Any:
@@ -161,10 +178,16 @@ class CrossModalSource(ProfileSource):
             }
         else:
             bridge = self._make_bridge()
-            text, text_ok = text_vectors(catalog, self.text_columns, self.text_encoder, **opts)
-            image, image_ok = image_vectors(
-                catalog, self.image_encoder, probs=bridge.input == "probs", crop=self.image_crop, **opts
-            )
+            if self.text_vectors is not None:
+                text, text_ok = vectors_from_setting(catalog, self.text_vectors, "text_vectors", progress=self.progress)
+            else:
+                text, text_ok = text_vectors(catalog, self.text_columns, self.text_encoder, **opts)
+            if self.image_vectors is not None:
+                image, image_ok = vectors_from_setting(catalog, self.image_vectors, "image_vectors", progress=self.progress)
+            else:
+                image, image_ok = image_vectors(
+                    catalog, self.image_encoder, probs=bridge.input == "probs", crop=self.image_crop, **opts
+                )
             both = text_ok & image_ok
             if bridge.input == "probs":
                 bridge.fit(image[image_ok])  # unpaired: ConSE reads only the catalog's class prior
