@@ -14,6 +14,7 @@ import tomli_w
 
 from xrec.blend import Blend, CombMNZ, ReciprocalRankFusion
 from xrec.blendfile import BlendSpec, read_blend, save_blend
+from xrec.blendfile._seal import seal
 from xrec.data.catalog import Catalog
 from xrec.data.dataset import Dataset
 from xrec.data.interactions import Interactions
@@ -205,7 +206,7 @@ def _mutations():
         (setp("sources", "colour", "kind", value="crystal_ball"), r"sources\.colour\.kind: unknown source kind 'crystal_ball'"),
         (setp("sources", "colour", "shade", value=1), r"sources\.colour\.shade: unknown key"),
         (setp("sources", "seeded", "params", "sharpness", value=2), r"sources\.seeded\.params: .*no setting\(s\) \['sharpness'\]"),
-        (setp("format_version", value=2), r"format_version: unsupported version 2"),
+        (setp("format_version", value=3), r"format_version: unsupported version 3"),
         (setp("format_version", value="1"), r"format_version: must be an integer"),
         (setp("format", value="other"), r"format: expected 'xrec-blend'"),
         (delete("dataset", "fingerprint"), r"dataset\.fingerprint: missing"),
@@ -227,7 +228,7 @@ def test_a_setting_refused_at_fit_time_names_the_field(tiny, tmp_path):
     path = save_blend(tmp_path / "blend.toml", fitted_blend(split.test), dataset=ds, split_settings=split.settings)
     raw = tomllib.loads(path.read_text())
     raw["sources"]["pop"]["params"] = {"recent_days": -3.0}  # a valid TOML value the source refuses only when fitted
-    path.write_text(tomli_w.dumps(raw))
+    path.write_text(seal(tomli_w.dumps(raw)))  # an edit, resealed: the schema is under test
     with pytest.raises(ConfigError, match=r"sources\.pop\.params: .*recent_days"):
         load_blend(path, ds)
 
@@ -237,7 +238,7 @@ def test_strict_schema_names_the_field(tiny, tmp_path, mutate, message):
     content = _valid_content(tiny, tmp_path)
     mutate(content)
     bad = tmp_path / "bad.toml"
-    bad.write_text(tomli_w.dumps(content))
+    bad.write_text(seal(tomli_w.dumps(content)))  # an edit, resealed: the schema is under test
     with pytest.raises(ConfigError, match=message):
         read_blend(bad)
 
@@ -260,7 +261,7 @@ def test_all_zero_weights_and_fusion_fields(tiny, tmp_path):
 
 
 def test_not_toml_and_missing_file(tmp_path):
-    (tmp_path / "x.toml").write_text("format = \n")
+    (tmp_path / "x.toml").write_text(seal("format = \n"))
     with pytest.raises(ConfigError, match="not valid TOML"):
         read_blend(tmp_path / "x.toml")
     with pytest.raises(ConfigError, match="not found"):
@@ -277,7 +278,7 @@ def test_fingerprint_mismatch(tiny, tmp_path):
     # Same data, tampered split record: the recreated split is checked against it.
     content = tomllib.loads(path.read_text())
     content["split"]["record"]["test_heldout_rows"] += 1
-    path.write_text(tomli_w.dumps(content))
+    path.write_text(seal(tomli_w.dumps(content)))  # an edit, resealed: the schema is under test
     with pytest.raises(FingerprintMismatch, match=r"split\.record\.test_heldout_rows"):
         load_blend(path, ds)
     with pytest.raises(FingerprintMismatch, match="split was made on data"):
@@ -291,7 +292,7 @@ def test_rankings_check_catches_a_different_refit(tiny, tmp_path):
     assert content["check"]["users"] == min(64, split.test.n_users) and len(content["check"]["digest"]) == 16
     # A source whose refit differs (here: another seed, as a non-deterministic source would).
     content["sources"]["seeded"]["params"]["seed"] = 8
-    path.write_text(tomli_w.dumps(content))
+    path.write_text(seal(tomli_w.dumps(content)))  # an edit, resealed: the schema is under test
     with pytest.raises(FingerprintMismatch, match=r"check\.digest: the refitted blend ranks"):
         load_blend(path, ds)
     assert load_blend(path, ds, verify=False).scorer.fitted_
@@ -340,3 +341,106 @@ def test_movielens_als_and_attributes_roundtrip(tmp_path):
     runtime = load_blend(path, ds)
     users = split.test.eval_users
     np.testing.assert_array_equal(runtime.top_items(users, 10), reference_top10(blend.score(users), split.test, users))
+
+
+# --- whole-file digest, end line, the ranking check always present -----------------------------------
+
+
+def test_end_line_carries_the_sha256_of_the_lines_above(tiny, tmp_path):
+    ds, split = tiny
+    text = save_blend(tmp_path / "b.toml", fitted_blend(split.test), dataset=ds).read_text(encoding="utf-8")
+    body, _, last = text[:-1].rpartition("\n")
+    import hashlib  # reference: the standard library's SHA-256
+
+    assert last == "# xrec blend file ends here; sha256 of the lines above: " + hashlib.sha256((body + "\n").encode()).hexdigest()
+    assert tomllib.loads(text)["format_version"] == 2  # the end line is a TOML comment: plain TOML to other readers
+
+
+def test_a_file_cut_short_at_any_table_boundary_is_refused(tiny, tmp_path):
+    ds, split = tiny
+    path = save_blend(tmp_path / "b.toml", fitted_blend(split.test), dataset=ds)
+    text = path.read_text(encoding="utf-8")
+    boundaries = [i + 1 for i, ch in enumerate(text) if ch == "\n" and text[i + 1 : i + 2] == "["]
+    assert len(boundaries) >= 5 and "\n[sources.pop]\n" in text
+    cut = tmp_path / "cut.toml"
+    for at in boundaries:
+        cut.write_text(text[:at], encoding="utf-8")  # still valid TOML, e.g. without its last sources
+        with pytest.raises(ConfigError, match=r"cut\.toml: no end line: the file is cut short .*xrec export"):
+            read_blend(cut)
+
+
+def test_an_edited_file_is_refused_until_resealed(tiny, tmp_path):
+    from xrec.blendfile import reseal_blend
+
+    ds, split = tiny
+    path = save_blend(tmp_path / "b.toml", fitted_blend(split.test), dataset=ds)
+    text = path.read_text(encoding="utf-8")
+    edited = text.replace("weight = 0.4\n", "weight = 0.5\n", 1)
+    assert edited != text
+    path.write_text(edited, encoding="utf-8")
+    with pytest.raises(ConfigError, match=r"does not match the digest on its end line: the file was changed .*reseal_blend"):
+        read_blend(path)
+    # A deliberate edit: reseal checks the content and writes a new end line; the ranking check
+    # still guards the refit (0.4 -> 0.5 on a rank-normalized source may or may not change the top 10).
+    reseal_blend(path)
+    assert read_blend(path).sources["colour"].weight == 0.5
+    path.write_text(edited.replace("weight = 0.5\n", "weight = -1.0\n", 1), encoding="utf-8")
+    with pytest.raises(ConfigError, match=r"sources\.colour\.weight: must be >= 0"):
+        reseal_blend(path)
+
+
+def test_a_format_1_file_is_refused_with_how_to_write_it_again(tiny, tmp_path):
+    ds, split = tiny
+    content = tomllib.loads(save_blend(tmp_path / "b.toml", fitted_blend(split.test), dataset=ds).read_text(encoding="utf-8"))
+    content["format_version"] = 1
+    old = tmp_path / "old.toml"
+    old.write_text(tomli_w.dumps(content), encoding="utf-8")  # what xrec wrote before the end line existed
+    with pytest.raises(ConfigError, match=r"a format-1 blend file \(no end line with a digest\) is no longer read: write it again with `xrec export"):
+        read_blend(old)
+
+
+def test_the_ranking_check_is_required_and_written_for_every_blend(tiny, tmp_path):
+    ds, split = tiny
+    content = _valid_content(tiny, tmp_path)
+    del content["check"]
+    bad = tmp_path / "nocheck.toml"
+    bad.write_text(seal(tomli_w.dumps(content)))
+    with pytest.raises(ConfigError, match=r"check: missing; every blend file carries the check of its rankings"):
+        read_blend(bad)
+    unfitted = Blend({"pop": make_source("popularity")}, {"pop": 1.0}, "none")
+    with pytest.raises(ConfigError, match="check: the blend is not fitted"):
+        save_blend(tmp_path / "u.toml", unfitted, dataset=ds, split_settings=split.settings)
+    content = _valid_content(tiny, tmp_path)
+    content["check"]["digest"] = "not hex"
+    bad.write_text(seal(tomli_w.dumps(content)))
+    with pytest.raises(ConfigError, match=r"check\.digest: must be 16 lowercase hex digits"):
+        read_blend(bad)
+
+
+def test_check_sizes_bounded_by_the_recorded_split_when_read(tiny, tmp_path):
+    ds, split = tiny
+    for key, recorded in (("k", "n_items"), ("users", "n_users")):
+        content = _valid_content(tiny, tmp_path)
+        content["check"][key] = 1_000_000_000
+        bad = tmp_path / "big.toml"
+        bad.write_text(seal(tomli_w.dumps(content)))
+        limit = content["split"]["record"][recorded]
+        with pytest.raises(ConfigError, match=rf"check\.{key}: 1000000000 exceeds split\.record\.{recorded} = {limit}"):
+            read_blend(bad)
+
+
+def test_check_k_is_never_longer_than_a_small_catalog(tmp_path):
+    ds = tiny_dataset(n_items=9, n_users=12)
+    split = split_dataset(ds, "leave_last", seed=0)
+    blend = Blend({"pop": make_source("popularity")}, {"pop": 1.0}, "none").fit(split.test)
+    path = save_blend(tmp_path / "small.toml", blend, dataset=ds)
+    assert read_blend(path).check["k"] == 9
+    assert len(load_blend(path, ds).recommend("u1", k=9)) <= 9
+
+
+def test_a_blend_file_that_is_not_utf8_names_the_file(tiny, tmp_path):
+    ds, split = tiny
+    path = save_blend(tmp_path / "b.toml", fitted_blend(split.test), dataset=ds)
+    path.write_bytes(path.read_bytes().replace(b"# xrec blend file: load", b"# xrec blend file \xff load", 1))
+    with pytest.raises(ConfigError, match=rf"blend file {path} is not UTF-8 text: line 1, byte 0xff"):
+        read_blend(path)

@@ -167,6 +167,58 @@ def test_damaged_entry_is_reported_and_recomputed(cache, damage, reason):
     assert cache.last_stats.hits == 4
 
 
+@pytest.mark.parametrize("kind", ["folder", "folder with files", "link to a folder"])
+def test_something_else_where_an_entry_should_be_is_a_damaged_entry_recomputed(cache, kind):
+    enc = FakeEncoder()
+    good = cache.encode(enc, TEXTS[:4])
+    victim = cache.entry_path(enc, TEXTS[2])
+    victim.unlink()
+    if kind == "link to a folder":
+        victim.symlink_to(cache.root)  # only the link is removed, never what it points to
+    else:
+        victim.mkdir()
+        if kind == "folder with files":
+            (victim / "note.txt").write_text("x")
+    reason = "a folder, not an entry file"
+    enc.seen.clear()
+    with pytest.warns(CacheCorruptionWarning, match=rf"1 damaged entry .*{victim.name} \({reason}"):
+        out = cache.encode(enc, TEXTS[:4])
+    assert enc.seen == [TEXTS[2]] and cache.last_stats.corrupt == 1
+    np.testing.assert_array_equal(out, good)
+    assert victim.is_file() and not victim.is_symlink() and cache.root.is_dir()  # replaced by a real entry
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        cache.encode(enc, TEXTS[:4])
+    assert cache.last_stats.hits == 4
+
+
+def test_stale_temporary_files_of_killed_writers_are_swept_once_per_folder(cache):
+    import time
+
+    from xrec._files import MIN_AGE
+
+    enc = FakeEncoder()
+    cache.encode(enc, TEXTS[:3])
+    entry = cache.entry_path(enc, TEXTS[0])
+    stale = entry.parent / f".{entry.name}.999999999.0123abcd.tmp"  # no such pid
+    fresh = entry.parent / f".{entry.name}.999999999.89abcdef.tmp"
+    foreign = entry.parent / "notes.tmp"
+    for p in (stale, fresh, foreign):
+        p.write_bytes(b"XRV1 half")
+    old = time.time() - MIN_AGE - 60
+    for p in (stale, foreign):
+        os.utime(p, (old, old))
+    from xrec.encoders import _store
+
+    _store._SWEPT.clear()  # a new process
+    cache.encode(enc, TEXTS[:3])
+    assert not stale.exists() and fresh.exists() and foreign.exists()
+    os.utime(fresh, (old, old))
+    cache.encode(enc, TEXTS[:3])
+    assert fresh.exists()  # once per process and folder
+    assert cache.sweep_temp_files(enc) == [fresh] and cache.sweep_temp_files() == []
+
+
 def test_entry_of_other_content_moved_into_place_is_detected(cache):
     # A file under the wrong name (e.g. copied by hand) fails the digest, which covers the content hash.
     enc = FakeEncoder()

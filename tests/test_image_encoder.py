@@ -333,3 +333,34 @@ def test_no_progress_output_when_switched_off(enc, photos, capsys) -> None:
     enc.encode([photos["coffee"]], progress=False)
     captured = capsys.readouterr()
     assert captured.out == "" and captured.err == ""
+
+
+def test_images_skipped_through_the_cache_are_named_by_item_id_with_their_decode_error(enc, photos, tmp_path) -> None:
+    import pandas as pd
+
+    from xrec.data.catalog import Catalog
+    from xrec.encoders.cache import EmbeddingCache, encode_catalog_images
+
+    truncated = _bad_batch(photos, tmp_path)[3]  # passes the header check, fails when decoded
+    # Reference for the reason: Pillow itself cannot load the cut file.
+    with pytest.raises(OSError, match="truncated"):
+        Image.open(io.BytesIO(truncated)).load()
+    folder = tmp_path / "shop"
+    folder.mkdir()
+    names = {"cat": photos["chelsea"], "cut": truncated, "mug": photos["coffee"], "rocket": photos["rocket"]}
+    for name, data in names.items():
+        (folder / f"{name}.img").write_bytes(data)
+    catalog = Catalog.from_frame(pd.DataFrame({"item": [f"sku-{n}" for n in names], "image": [f"{n}.img" for n in names]}),
+                                 image="image", image_root=folder)
+    skipper = EfficientNetLite0Encoder(on_error="skip", batch_size=3)
+    skipper.model_, skipper.transform_, skipper._min_side = enc.model_, enc.transform_, enc._min_side
+    with pytest.warns(UserWarning) as record:
+        vectors, ok = encode_catalog_images(catalog, skipper, cache=EmbeddingCache(tmp_path / "c"), return_mask=True)
+    message = " ".join(str(w.message) for w in record)
+    assert "skipped 1 of 4 items: item 'sku-cut': corrupt or truncated" in message
+    assert "could not encode it" not in message and "#1" not in message  # no batch-internal numbers
+    np.testing.assert_array_equal(ok, [True, False, True, True])
+    raiser = EfficientNetLite0Encoder(batch_size=3)
+    raiser.model_, raiser.transform_, raiser._min_side = enc.model_, enc.transform_, enc._min_side
+    with pytest.raises(DataError, match=r"cannot encode 1 of 4 items: item 'sku-cut': corrupt or truncated"):
+        encode_catalog_images(catalog, raiser, cache=EmbeddingCache(tmp_path / "c2"))

@@ -384,3 +384,74 @@ def test_only_xrec_errors_lets_other_exceptions_through():
     assert only_xrec_errors(lambda: (_ for _ in ()).throw(XrecError("fine"))) is None
     with pytest.raises(KeyError):
         only_xrec_errors(lambda: {}["missing"])
+
+
+# --- blend-file reader ------------------------------------------------------------------------------
+# read_blend is fed raw bytes, generated TOML documents (with and without a valid end line) and a
+# real blend file cut short anywhere or with any byte changed: only xrec's errors, and a cut or
+# changed file is always refused.
+
+_blend_top_keys = st.sampled_from(["format", "format_version", "dataset", "split", "combine", "sources", "check", "evidence"])
+
+
+def _read_blend_bytes(data: bytes):
+    from xrec.blendfile import read_blend
+
+    with scratch_folder() as folder:
+        path = folder / "blend.toml"
+        path.write_bytes(data)
+        return only_xrec_errors(read_blend, path)
+
+
+@SETTINGS
+@given(data=st.binary(max_size=400))
+def test_blend_reader_on_any_bytes(data):
+    assert _read_blend_bytes(data) is None  # random bytes never carry a valid end line
+
+
+@SETTINGS
+@given(doc=st.dictionaries(_blend_top_keys | st.text(max_size=6), toml_values, max_size=6), sealed=st.booleans())
+def test_blend_reader_on_generated_toml(doc, sealed):
+    from xrec.blendfile._seal import seal
+
+    try:
+        text = tomli_w.dumps(doc)
+    except (TypeError, ValueError):  # a value TOML cannot hold
+        return
+    assert _read_blend_bytes((seal(text) if sealed else text).encode("utf-8")) is None  # required tables missing
+
+
+@SETTINGS
+@given(body=st.text(max_size=200))
+def test_blend_end_line_round_trips_and_any_cut_is_refused(body):
+    from xrec.blendfile._seal import seal, unseal
+    from xrec.errors import ConfigError
+
+    sealed = seal(body)
+    assert unseal(sealed, "f") == (body if body.endswith("\n") else body + "\n")
+    for cut in range(len(sealed) - 1):  # every proper prefix (only the final newline may go)
+        with pytest.raises(ConfigError):
+            unseal(sealed[:cut], "f")
+
+
+@pytest.fixture(scope="module")
+def blend_bytes(tmp_path_factory) -> bytes:
+    from test_blendfile import fitted_blend, tiny_dataset  # the blend-file tests' toy blend
+    from xrec.blendfile import save_blend
+    from xrec.split import split_dataset
+
+    ds = tiny_dataset()
+    split = split_dataset(ds, "leave_last", seed=0)
+    return save_blend(tmp_path_factory.mktemp("b") / "blend.toml", fitted_blend(split.test), dataset=ds).read_bytes()
+
+
+@SETTINGS
+@given(data=st.data())
+def test_a_real_blend_file_cut_or_changed_anywhere_is_refused(blend_bytes, data):
+    assert _read_blend_bytes(blend_bytes) is not None  # the intact file reads
+    at = data.draw(st.integers(0, len(blend_bytes) - 2))  # dropping only the final newline is harmless
+    assert _read_blend_bytes(blend_bytes[:at]) is None
+    body_end = blend_bytes.rindex(b"\n# xrec blend file ends here") + 1
+    at = data.draw(st.integers(0, body_end - 1))
+    new = data.draw(st.integers(0, 255).filter(lambda b: b != blend_bytes[at]))
+    assert _read_blend_bytes(blend_bytes[:at] + bytes([new]) + blend_bytes[at + 1 :]) is None

@@ -313,3 +313,50 @@ def test_score_before_fit_raises() -> None:
         ItemKNNSource().score(np.array([0]))
     with pytest.raises(RuntimeError, match="not fitted"):
         ALSSource().score(np.array([0]))
+
+
+# --- training weights at the edge of float32 ------------------------------------------------------
+
+
+def _with_weight(value: float) -> Fold:
+    rows = _random_rows()
+    rows[0] = (*rows[0][:3], value)
+    return _fold(rows)
+
+
+@pytest.mark.parametrize("value", [1e30, 2e19])
+def test_als_refuses_weights_whose_squares_overflow_float32(value) -> None:
+    # float32's largest value is about 3.4e38 (IEEE 754 binary32, numpy.finfo), so strengths above
+    # sqrt(3.4e38) ~ 1.84e19 cannot be squared; 1e30 used to fail inside implicit with a NaN error.
+    with np.errstate(over="ignore"):
+        assert np.isinf(np.float32(value) ** 2) and np.isfinite(np.float32(value))
+    from xrec.errors import DataError
+
+    with pytest.raises(DataError, match=r"als: training weights × alpha reach .*overflows float32"):
+        make_source("als", **SETTINGS["als"]).fit(_with_weight(value))
+    # alpha scales the strengths too
+    with pytest.raises(DataError, match="alpha"):
+        make_source("als", **SETTINGS["als"], alpha=1e12).fit(_with_weight(1e8))
+
+
+def test_als_fit_failure_inside_implicit_is_an_xrec_error(monkeypatch) -> None:
+    from implicit.cpu.als import AlternatingLeastSquares
+    from implicit.recommender_base import ModelFitError  # what implicit raises on NaN factors
+
+    from xrec.errors import DataError
+
+    def fail(self, *args, **kwargs):
+        raise ModelFitError("NaN encountered in factors")
+
+    monkeypatch.setattr(AlternatingLeastSquares, "fit", fail)
+    with pytest.raises(DataError, match=r"als: the factorization failed: NaN encountered in factors \(training weights range from 1 to 5") as info:
+        make_source("als", **SETTINGS["als"]).fit(_fold(_random_rows()))
+    assert isinstance(info.value.__cause__, ModelFitError)
+
+
+def test_experiment_names_the_source_whose_fit_failed(tmp_path) -> None:
+    from xrec.errors import DataError
+    from xrec.experiment import fit_source
+
+    with pytest.raises(DataError, match=r"^sources\.mf: als: training weights"):
+        fit_source("mf", make_source("als", **SETTINGS["als"]), _with_weight(1e30))

@@ -71,6 +71,36 @@ def test_leave_last_holds_out_latest_with_id_tie_break():
     assert _pairs(result.validation, "train") == {("u1", "a"), ("u2", "a"), ("u3", "e"), ("u4", "b")}
 
 
+def test_leave_last_tie_break_compares_numeric_ids_as_numbers():
+    # "9" and "10" at the same time: as numbers 10 > 9, so "10" is the latest (as strings "9" > "10").
+    frame = pd.DataFrame({"user": ["u", "u", "u"], "item": ["1", "9", "10"], "timestamp": [1, 5, 5]})
+    catalog = Catalog.from_ids(["1", "9", "10"])
+    ds = Dataset(catalog, Interactions.from_frame(frame, catalog=catalog), name="numeric")
+    result = split_dataset(ds, "leave_last", validation=False)
+    assert _pairs(result.test, "heldout") == {("u", "10")}
+
+
+def test_natural_order_rule():
+    from xrec.split import natural_order
+
+    ids = np.array(["b", "10", "9", "a10", "007", "a9", "7", "100000000000000000000000", "0"])
+    ordered = ids[natural_order(ids)].tolist()
+    # numbers first, by value (equal values by string), then the rest by code point
+    assert ordered == ["0", "007", "7", "9", "10", "100000000000000000000000", "a10", "a9", "b"]
+    # Reference: Python's int() order for all-digit ids (common practice, no source).
+    digits = [s for s in ids.tolist() if s.isdigit()]
+    assert [int(s) for s in ordered[: len(digits)]] == sorted(int(s) for s in digits)
+
+
+def test_leave_last_on_movielens_differs_from_string_tie_break_for_36_users(movielens, ml_splits):
+    # Measured when the tie-break moved from string order to natural order: the held-out item
+    # changed for 36 of the 671 users (timestamp ties between ids such as "9" and "10").
+    f = movielens.interactions.frame
+    as_text = f.sort_values(["user", "timestamp", "item"]).groupby("user").tail(1)
+    old = set(zip(as_text["user"], as_text["item"]))
+    assert len(old - _pairs(ml_splits["leave_last"].test, "heldout")) == 36
+
+
 def test_leave_last_min_train_keeps_small_users_whole():
     result = split_dataset(_tiny(), "leave_last", min_train=2, validation=False)
     assert _pairs(result.test, "heldout") == {("u1", "c"), ("u4", "c")}
@@ -202,7 +232,8 @@ def test_leave_last_on_movielens_matches_groupby(ml_splits, movielens):
     test = ml_splits["leave_last"].test
     assert len(test.heldout) == 671 and len(test.eval_users) == 671
     f = movielens.interactions.frame
-    latest = f.sort_values(["user", "timestamp", "item"]).groupby("user").tail(1)  # independent path
+    # independent path; among equal timestamps the greatest movie id as a number is the latest
+    latest = f.assign(num=f["item"].astype(int)).sort_values(["user", "timestamp", "num"]).groupby("user").tail(1)
     assert _pairs(test, "heldout") == set(zip(latest["user"], latest["item"]))
     latest_time = f.groupby("user")["timestamp"].max()
     held_time = pd.Series(test.heldout["timestamp"].to_numpy(), index=test.user_ids[test.heldout["user_idx"]])

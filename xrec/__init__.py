@@ -8,7 +8,7 @@ The main names are re-exported here; each subpackage documents its own:
 """
 
 from xrec.blend import Blend, CombMNZ, CombSum, ReciprocalRankFusion
-from xrec.blendfile import read_blend, save_blend
+from xrec.blendfile import read_blend, reseal_blend, save_blend
 from xrec.bundle import Bundle, load_bundle, save_bundle
 from xrec.data import Catalog, CatalogSchema, Dataset, Interactions, load_movielens, read_catalog, read_interactions
 from xrec.data.demo import load_demo_shop
@@ -55,6 +55,7 @@ __all__ = [
     "read_blend",
     "read_catalog",
     "read_interactions",
+    "reseal_blend",
     "save_blend",
     "save_bundle",
     "source_kinds",

@@ -98,6 +98,7 @@ def _cmd_serve(args: argparse.Namespace) -> int:
 
 
 def _cmd_recommend(args: argparse.Namespace) -> int:
+    from xrec.blendfile import read_blend
     from xrec.errors import ConfigError
     from xrec.runtime import runtime_for_blend_file
 
@@ -112,6 +113,9 @@ def _cmd_recommend(args: argparse.Namespace) -> int:
     else:
         if args.filters is not None:
             raise ConfigError("--filters: needs a bundle folder (xrec export --bundle); a blend file alone holds no catalog table")
+        n_items = read_blend(args.blend_file).split_record.get("n_items")
+        if isinstance(n_items, int) and args.k > n_items:  # the catalog size the file records, before the refit
+            raise ConfigError(f"-k: {args.k} exceeds the catalog's {n_items} items (split.record.n_items of the blend file)")
         runtime = runtime_for_blend_file(args.blend_file, data_folder=args.data, progress=not args.quiet and not args.json)
         frames = {user: runtime.recommend(user, k=args.k, unknown=args.unknown) for user in args.user}
     if args.json:

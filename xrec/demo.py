@@ -29,6 +29,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from xrec._files import write_text_atomic
 from xrec._jsonable import json_default
 from xrec.errors import ConfigError
 
@@ -265,10 +266,7 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
     # Results by segment (held-out item new / tail / head, shopper history length, product type).
     segment_sections, payload["by_segment"] = segment_section(
         cards, split.test, best_single, ["learned blend", "gated blend"], ("item_segment", "user_segment", "product_type"))
-    scorecard_path = out / "scorecards.json"
-    tmp = scorecard_path.with_suffix(".json.tmp")
-    tmp.write_text(json.dumps(payload, indent=1, default=json_default), encoding="utf-8")
-    tmp.replace(scorecard_path)
+    scorecard_path = write_text_atomic(out / "scorecards.json", json.dumps(payload, indent=1, default=json_default))
 
     card = cards["learned blend"]
     evidence = {

@@ -11,7 +11,7 @@ import pandas as pd
 
 from xrec.data.dataset import Dataset
 from xrec.data.location import load_dataset
-from xrec.errors import ConfigError, DataError
+from xrec.errors import ConfigError, DataError, XrecError
 from xrec.spec import ExperimentSpec
 from xrec.sources.base import Source, make_source
 
@@ -53,6 +53,14 @@ def build_sources(spec: ExperimentSpec, *, progress: bool = False) -> dict[str, 
     return out
 
 
+def fit_source(name: str, source: Source, fold: Any) -> Source:
+    """``source.fit(fold)``, with an xrec error's message prefixed by ``sources.NAME``."""
+    try:
+        return source.fit(fold)
+    except XrecError as exc:
+        raise type(exc)(f"sources.{name}: {exc}") from exc
+
+
 def _check_inside(spec: ExperimentSpec, name: str, fields: dict[str, str]) -> None:
     """Refuse a source file path that leads outside the spec's folder (``..``, absolute, or a
     symbolic link out), the rule of the ``[data]`` table with its opt-out ``data.allow_outside``."""
@@ -83,7 +91,7 @@ def _fit_source(spec: ExperimentSpec, name: str, source: Source, fold: Any) -> S
     """``source.fit(fold)``; when it reads a file from outside the spec's folder, a
     :class:`DataError` names the setting but quotes nothing from the file."""
     try:
-        return source.fit(fold)
+        return fit_source(name, source, fold)
     except DataError:
         outside = _outside_fields(spec, name)
         if not outside:
@@ -185,6 +193,7 @@ def run_experiment(
     from xrec.split import split_dataset
 
     dataset = dataset or load_spec_dataset(spec, progress=progress)
+    check_spec_sizes(spec, dataset.catalog.n_items)
     split = split_dataset(dataset, **spec.split)
     fold = split.test
     labels = [segment_labels(fold, name) for name in dict.fromkeys(by)]  # bad names fail before any fitting
@@ -246,6 +255,21 @@ def _paired_runs(spec: ExperimentSpec, scorers: dict, scorecards: dict, fold: An
             run["top_lists"] = top_list_change(scorers[base], scorers[cand], fold, k=overlap_k, names=(base, cand))
         runs.append(run)
     return runs
+
+
+def check_spec_sizes(spec: ExperimentSpec, n_items: int) -> None:
+    """Refuse cut-offs longer than the catalog (``evaluate.ks``, a learned blend's ``metric``) before any fit.
+
+    A top-K list cannot hold more items than the catalog has, and a huge K would make
+    ``(users, K)`` arrays; raises :class:`ConfigError` naming the field.
+    """
+    from xrec.evaluate._metrics import check_cutoffs
+
+    check_cutoffs(list(spec.ks), n_items, "evaluate.ks")
+    for name, table in spec.blends.items():
+        metric = table.get("metric")
+        if table.get("weights") == "learn" and isinstance(metric, str) and metric.rpartition("@")[2].isdigit():
+            check_cutoffs(int(metric.rpartition("@")[2]), n_items, f"blends.{name}.metric")
 
 
 def _blend_source_names(table: dict[str, Any], sources: dict[str, Source]) -> list[str]:

@@ -7,7 +7,7 @@ from typing import Any
 import pandas as pd
 
 from xrec._validation import parse_metric_column
-from xrec.experiment import ExperimentResult
+from xrec.experiment import ExperimentResult, evaluation_options
 
 
 def _fmt(mean: float, lo: float, hi: float) -> str:
@@ -58,8 +58,11 @@ def format_experiment(result: ExperimentResult) -> str:
         f"protocol {next(iter(result.scorecards.values())).protocol.get('kind', '?')}"
     )
     table = scorecard_table(result.scorecards).T
-    chance = ", ".join(f"HR@{k} {v:.4f}" for k, v in random_hit_rate(fold, result.spec.ks).items())
-    parts = [head, "", "Scorecards (mean [95% bootstrap CI]):", table.to_string(), "", f"A random ranking expects {chance}."]
+    protocol = evaluation_options(result.spec)["protocol"]
+    chance = ", ".join(f"HR@{k} {v:.4f}" for k, v in random_hit_rate(fold, result.spec.ks, protocol).items())
+    record = protocol_record(protocol)
+    among = f" (ranked among {record['negatives']} sampled negatives)" if "negatives" in record else " (full ranking)"
+    parts = [head, "", "Scorecards (mean [95% bootstrap CI]):", table.to_string(), "", f"A random ranking expects {chance}{among}."]
     for name, rec in result.extras.get("learned", {}).items():
         weights = ", ".join(f"{k}={v:.3f}" for k, v in rec["weights"].items())
         gated = " (gated by item popularity; start weights shown)" if "band_weights" in rec else ""
@@ -120,28 +123,56 @@ def format_segment_comparison(comparison: Any, metric: str) -> str:
     return "\n".join(lines)
 
 
-def random_hit_rate(fold: Any, ks: tuple[int, ...]) -> dict[int, float]:
-    """Expected hit rate of a uniformly random full ranking on ``fold``.
+def random_hit_rate(fold: Any, ks: tuple[int, ...], protocol: Any = None) -> dict[int, float]:
+    """Expected hit rate of a uniformly random ranking on ``fold``, under ``protocol``.
 
-    A user with ``r`` held-out items among ``n`` candidates misses all of them in a random
-    top-K with the hypergeometric probability ``C(n-r, K) / C(n, K)``.
+    Full ranking (``protocol`` ``None`` or :class:`~xrec.evaluate.FullRanking`): a user with
+    ``r`` held-out items among ``n`` unseen candidates misses all of them in a random top-K
+    with the hypergeometric probability ``C(n-r, K) / C(n, K)``.
+
+    Sampled negatives (:class:`~xrec.evaluate.SampledNegatives`): the candidates are the
+    user's ``m = min(n_negatives, free items)`` sampled negatives plus the ``r`` held-out items
+    not seen in training, so the miss probability is ``C(m, K) / C(m+r, K)``; with one held-out
+    item this is a hit rate of ``K / (m+1)``, e.g. 10/101 for 100 negatives.
     """
     import numpy as np
     from scipy.stats import hypergeom
 
+    from xrec.evaluate import SampledNegatives
+
     users = fold.eval_users
-    n_seen = np.diff(fold.train_matrix.indptr)[users]
-    n_candidates = fold.n_items - n_seen
-    relevant = np.diff(fold.heldout_matrix.indptr)[users]
+    seen = fold.train_matrix[users]
+    truth = fold.heldout_matrix[users]
+    if isinstance(protocol, SampledNegatives):
+        seen.data[:] = 1
+        truth.data[:] = 1
+        excluded = (seen + truth).getnnz(axis=1)  # the sparse sum merges an item in both
+        relevant = truth.getnnz(axis=1) - truth.multiply(seen).getnnz(axis=1)
+        n_candidates = np.minimum(int(protocol.n_negatives), fold.n_items - excluded) + relevant
+    else:
+        n_candidates = fold.n_items - seen.getnnz(axis=1)
+        relevant = truth.getnnz(axis=1)
     return {int(k): float(np.mean(1.0 - hypergeom.pmf(0, n_candidates, relevant, np.minimum(k, n_candidates)))) for k in ks}
 
 
+def protocol_record(protocol: Any) -> dict[str, Any]:
+    """The evaluation protocol as the JSON output records it: ``name``, and for sampled negatives ``negatives`` and ``seed``."""
+    from xrec.evaluate import SampledNegatives
+
+    if isinstance(protocol, SampledNegatives):
+        return {"name": "sampled_negatives", "negatives": int(protocol.n_negatives), "seed": int(protocol.seed)}
+    return {"name": "full_ranking"}
+
+
 def experiment_payload(result: ExperimentResult) -> dict[str, Any]:
-    """JSON-ready summary: settings, per-scorer summaries with CIs, the comparison."""
+    """JSON-ready summary: settings, the protocol, a random ranking's hit rate, per-scorer summaries with CIs, the comparison."""
+    protocol = evaluation_options(result.spec)["protocol"]
     out: dict[str, Any] = {
         "spec": result.spec.name,
         "dataset": {"name": result.dataset.name, "fingerprint": result.dataset.fingerprint()},
         "split": result.split.settings,
+        "protocol": protocol_record(protocol),
+        "random_hit_rate": {f"hit_rate@{k}": v for k, v in random_hit_rate(result.split.test, result.spec.ks, protocol).items()},
         "scorecards": {},
     }
     for name, card in result.scorecards.items():

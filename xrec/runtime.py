@@ -87,7 +87,7 @@ class BlendRuntime:
         """
         users = np.asarray(user_indices, dtype=np.int64)
         scores = self.score_users(users)
-        return top_k_items(scores, self.scorer.train_matrix_[users], _check_k(k))
+        return top_k_items(scores, self.scorer.train_matrix_[users], _check_k(k, self.fold.n_items))
 
     def recommend(self, user_id: Any, k: int = 10, *, unknown: str = "error") -> pd.DataFrame:
         """The ``k`` best items for one user, seen items excluded.
@@ -97,7 +97,8 @@ class BlendRuntime:
         user_id
             External user id (compared as a string).
         k
-            Number of items, > 0.
+            Number of items, > 0 and at most the catalog's size (a larger ``k`` is refused
+            with a :class:`ConfigError`, not clamped).
         unknown
             ``"error"`` (default): an unknown user raises :class:`DataError`.
             ``"popular"``: an unknown user gets the most-interacted training items.
@@ -110,7 +111,7 @@ class BlendRuntime:
         """
         if unknown not in _UNKNOWN_RULES:
             raise ConfigError(f"unknown: must be one of {list(_UNKNOWN_RULES)}, got {unknown!r}")
-        k = _check_k(k)
+        k = _check_k(k, self.fold.n_items)
         if unknown == "popular" and str(user_id) not in self._positions:
             counts = self.fold.item_train_counts.astype(np.float32)
             items = top_k_items(counts[None, :], sp.csr_matrix((1, len(counts)), dtype=np.float32), k)[0]
@@ -131,8 +132,25 @@ class BlendRuntime:
         )
 
 
-def _check_k(k: Any) -> int:
-    return check_int(k, "k", low=1)
+def _check_k(k: Any, n_items: int) -> int:
+    k = check_int(k, "k", low=1)
+    if k > n_items:
+        raise ConfigError(f"k: {k} exceeds the catalog's {n_items} items; a list cannot be longer than the catalog")
+    return k
+
+
+def check_blend_sizes(spec: BlendSpec, n_users: int, n_items: int) -> None:
+    """Refuse a ``[check]`` table asking for more users or a longer list than the data has.
+
+    Checked before the sources are refitted: the ranking check scores ``check.users`` users
+    against every item and lists ``check.k`` of them.
+    """
+    if not spec.check:
+        return
+    for key, limit, what in (("users", n_users, "users"), ("k", n_items, "items")):
+        value = int(spec.check[key])
+        if value > limit:
+            raise ConfigError(f"check.{key}: {value} exceeds the {limit} {what} of the data the blend is loaded with")
 
 
 def load_blend(path: str | os.PathLike, dataset: Dataset, *, progress: bool = False, verify: bool = True) -> BlendRuntime:
@@ -171,6 +189,7 @@ def load_blend(path: str | os.PathLike, dataset: Dataset, *, progress: bool = Fa
     fold = split.test if spec.fold == "test" else split.validation
     if fold is None:
         raise ConfigError("split.fold: 'validation' needs split.validation = true")
+    check_blend_sizes(spec, fold.n_users, fold.n_items)
     scorer = _fit(spec.build(), fold, progress)
     if verify and spec.check:
         digest = ranking_digest(scorer, int(spec.check["users"]), int(spec.check["k"]))
@@ -225,6 +244,8 @@ def _fit(scorer: Any, fold: Fold, progress: bool) -> Any:
             scorer.sources[name].fit(fold)
         except ConfigError as exc:
             raise ConfigError(f"sources.{name}.params: {exc}") from exc
+        except DataError as exc:  # e.g. a factorization that fails on these data
+            raise DataError(f"sources.{name}: {exc}") from exc
     return scorer.fit(fold)  # every source is fitted: this keeps the fold's training matrix
 
 

@@ -95,6 +95,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from xrec._files import read_text_file
 from xrec._validation import check_int
 from xrec.data._readers import path_problem
 from xrec.data.location import DataLocation
@@ -214,6 +215,20 @@ def _check_blend(table: dict, where: str, sources: dict, *, learning_allowed: bo
         raise ConfigError(f"{where}.normalizer: a name or a table per source, got {norm!r}")
 
 
+def _check_source_settings(name: str, table: dict) -> None:
+    """Names and types of a source's settings, checked before any data is loaded."""
+    from xrec._settings import check_settings
+    from xrec.sources.base import source_class, source_kinds
+
+    cls = source_class(table["kind"])
+    if cls is None:
+        raise ConfigError(f"sources.{name}.kind: unknown source kind {table['kind']!r}; known: {source_kinds()}")
+    try:
+        check_settings(cls, {k: v for k, v in table.items() if k != "kind"}, f"source {table['kind']!r}")
+    except ConfigError as exc:
+        raise ConfigError(f"sources.{name}: {exc}") from exc
+
+
 def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentSpec:
     """Validate a spec already read into a dict; errors name the offending field."""
     _check_keys(raw, _TOP_KEYS, "spec")
@@ -248,6 +263,7 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
         _check_table(table, f"sources.{name}")
         if not isinstance(table.get("kind"), str):
             raise ConfigError(f"sources.{name}.kind: required (e.g. 'popularity', 'als')")
+        _check_source_settings(name, table)
     blends = _check_table(raw.get("blends", {}), "blends")
     for name, table in blends.items():
         where = f"blends.{name}"
@@ -299,10 +315,9 @@ def load_spec(path_or_name: str | Path) -> ExperimentSpec:
             raise ConfigError(f"spec: {path_problem(path, 'spec file')}")
         else:
             raise ConfigError(f"no spec file {str(path_or_name)!r} and no built-in spec of that name; built-in: {builtin_specs()}")
+    text = read_text_file(path, "spec")
     try:
-        raw = tomllib.loads(path.read_text(encoding="utf-8"))
-    except UnicodeDecodeError as exc:
-        raise ConfigError(f"{path}: not UTF-8 text (byte {exc.start} cannot be decoded); a spec file is UTF-8 TOML") from None
+        raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{path}: not valid TOML: {exc}") from exc
     base = path.parent if path.parent != BUILTIN_DIR else Path.cwd()

@@ -19,7 +19,7 @@ from xrec._validation import check_int, check_number
 from xrec.errors import ConfigError
 from xrec.fold import Fold
 
-__all__ = ["SPLIT_RULES", "SplitResult", "split_dataset"]
+__all__ = ["SPLIT_RULES", "SplitResult", "natural_order", "split_dataset"]
 
 #: Names accepted by :func:`split_dataset` as ``rule``.
 SPLIT_RULES = ("leave_last", "time_cutoff", "random", "cold_items")
@@ -63,7 +63,7 @@ class _Rows:
 
     user: np.ndarray  # int64 user index
     item: np.ndarray  # int64 catalog row
-    item_rank: np.ndarray  # int64 rank of the item id in string order (tie-break)
+    item_rank: np.ndarray  # int64 rank of the item id in natural order (tie-break)
     time: np.ndarray  # float64 seconds
     weight: np.ndarray  # float32
 
@@ -103,7 +103,8 @@ def split_dataset(
         The data to split.
     rule
         - ``"leave_last"``: each user's latest interaction is held out (among equal timestamps,
-          the greatest item id in string order counts as latest). Users with at most
+          the greatest item id in natural order counts as latest, see :func:`natural_order`).
+          Users with at most
           ``min_train`` interactions stay wholly in training.
         - ``"time_cutoff"``: one global cutoff time; rows at or after it are held out. Held-out
           rows of users left with fewer than ``min_train`` training rows are dropped (they would
@@ -243,6 +244,26 @@ def _describe_cutoff(cutoff, test_fraction: float) -> dict:
     return out
 
 
+def natural_order(ids: np.ndarray) -> np.ndarray:
+    """Positions that sort item ids in natural order (used to break timestamp ties).
+
+    An id made only of the ASCII digits 0-9 compares as the whole number it spells
+    (``"9" < "10"``); such numeric ids come before every other id, and the other ids
+    compare as strings (by code point: ``"a10" < "a9"``). Numeric ids that spell the same
+    number (``"7"``, ``"007"``) compare as strings. The sort is stable.
+    """
+    ids = np.asarray(ids).astype(str)
+
+    def key(i: int) -> tuple:
+        s = ids[i]
+        if s.isascii() and s.isdigit():
+            digits = s.lstrip("0")
+            return (0, len(digits), digits, s)  # shorter numbers are smaller; no int() of huge ids
+        return (1, 0, "", s)
+
+    return np.array(sorted(range(len(ids)), key=key), dtype=np.int64)
+
+
 # --- the rules ----------------------------------------------------------------------------------
 
 
@@ -252,7 +273,7 @@ def _positional(dataset: Dataset) -> tuple[_Rows, np.ndarray]:
     ids = dataset.catalog.item_ids.astype(str)
     item = pd.Index(ids).get_indexer(frame["item"].to_numpy(dtype=str)).astype(np.int64)
     rank_of = np.empty(len(ids), dtype=np.int64)
-    rank_of[np.argsort(ids, kind="stable")] = np.arange(len(ids))
+    rank_of[natural_order(ids)] = np.arange(len(ids))
     rows = _Rows(
         user.astype(np.int64),
         item,

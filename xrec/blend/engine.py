@@ -52,7 +52,7 @@ from xrec.blend._weighted_sum import WeightedSumKernels
 from xrec.blend.blend import check_normalizers
 from xrec.blend.normalize import normalize
 from xrec.errors import ConfigError, DataError, NotFittedError
-from xrec.evaluate._metrics import RANK_METRICS, check_ks, check_metrics, metrics_from_ranks
+from xrec.evaluate._metrics import RANK_METRICS, check_cutoffs, check_metrics, metrics_from_ranks
 from xrec.evaluate._ranking import BlockRanks, seen_flags
 from xrec.evaluate._sampling import UserSample, sample_users
 from xrec.evaluate._stats import normal_interval
@@ -171,7 +171,7 @@ class BlendEngine(DominancePruning, WeightedSumKernels):
             raise ConfigError(f"fold must be an xrec Fold, got {type(self.fold).__name__}")
         self._sources = check_sources(self.sources)
         self._normalizers = check_normalizers(self.normalizers, self._sources)
-        self._ks = check_ks(self.ks)
+        self._ks = check_cutoffs(self.ks, self.fold.n_items)  # K beyond the catalog: refused, not clamped
         metrics = check_metrics(self.metrics)
         bad = [m for m in metrics if m not in RANK_METRICS]
         if bad:

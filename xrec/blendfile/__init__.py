@@ -7,12 +7,12 @@ which may have been learned, or a fusion rule). :func:`xrec.runtime.load_blend`
 recreates the training fold, refits the sources and serves rankings identical to the
 in-memory blend.
 
-Schema (format version 1)
+Schema (format version 2)
 -------------------------
 ::
 
     format = "xrec-blend"            # required, exactly this string
-    format_version = 1               # required; files of other versions are refused
+    format_version = 2               # required; files of other versions are refused
     written_by = "xrec 0.1.0"        # optional, informational
 
     [dataset]                        # required
@@ -56,11 +56,14 @@ Schema (format version 1)
     [evidence]                       # optional, free-form: what the blend was chosen on
     # e.g. a Scorecard.to_dict() or a comparison dict (None values are dropped)
 
-    [check]                          # optional (written when the blend was fitted): a
-    users = 64                       #   fingerprint of its rankings. digest = first 16 hex
-    k = 10                           #   digits of SHA-256 over the int64 top-k item indices
-    digest = "5be0…"                 #   of user indices 0 .. users-1 (ties: lower index first);
-                                     #   load_blend recomputes it after refitting
+    [check]                          # required: a fingerprint of the blend's rankings.
+    users = 64                       #   digest = first 16 hex digits of SHA-256 over the int64
+    k = 10                           #   top-k item indices of user indices 0 .. users-1 (ties:
+    digest = "5be0…"                 #   lower index first); load_blend recomputes it after
+                                     #   refitting. users <= split.record.n_users and
+                                     #   k <= split.record.n_items when those are recorded.
+
+    # xrec blend file ends here; sha256 of the lines above: 3f1c…   (required last line)
 
 Every other key is an error. ``weight``, ``band_weights`` and ``normalizer`` are
 forbidden where their method does not use them; at least one weight must be positive.
@@ -68,8 +71,15 @@ Errors name the field, e.g. ``sources.als.weight: must be >= 0, got -1``. The
 ``split.record`` check skips ``dataset`` (a label) and ``dataset_fingerprint`` (checked
 as ``dataset.fingerprint``), and keys the running xrec's split no longer reports.
 
-The file is written atomically (a temporary file in the same folder, then ``os.replace``),
-so a reader never sees half a file.
+The last line is an end marker carrying the SHA-256 (64 hex digits) of every byte above it
+(see :mod:`xrec.blendfile._seal`). A file without it (cut short, for instance exactly before
+a ``[sources.NAME]`` table, or written by an xrec older than format version 2) or whose
+content no longer matches it (edited or damaged) is refused, and the message says how to
+write it again. After a deliberate hand edit, :func:`reseal_blend` checks the content and
+writes a new end line. Files must be UTF-8.
+
+The file is written through xrec's one atomic writer (a temporary file in the same folder,
+``fsync``, ``os.replace``), so a reader never sees half a file.
 """
 
 from __future__ import annotations
@@ -81,12 +91,13 @@ from typing import Any
 
 import tomli_w
 
-from xrec._files import write_text_atomic
+from xrec._files import read_text_file, write_text_atomic
 from xrec.blend.blend import Blend
 from xrec.blend.fusion import Fusion
 from xrec.blendfile._blend_spec import BlendSpec
 from xrec.blendfile._describe import ranking_digest, spec_from_scorer
 from xrec.blendfile._schema import CHECK_K, CHECK_USERS, FOLDS, FORMAT, FORMAT_VERSION, METHODS, SourceSpec
+from xrec.blendfile._seal import END_PREFIX, seal, split_last_line, unseal
 from xrec.data.dataset import Dataset
 from xrec.errors import ConfigError, FingerprintMismatch
 
@@ -101,6 +112,7 @@ __all__ = [
     "SourceSpec",
     "ranking_digest",
     "read_blend",
+    "reseal_blend",
     "save_blend",
     "spec_from_scorer",
 ]
@@ -122,13 +134,18 @@ def read_blend(path: str | os.PathLike) -> BlendSpec:
     Raises
     ------
     ConfigError
-        When the file is missing, is not TOML, or breaks the schema (the message names the field).
+        When the file is missing, is not UTF-8, has no valid end line (cut short, older
+        format, or changed after it was written), is not TOML, or breaks the schema (the
+        message names the field).
     """
     path = Path(path)
+    body = unseal(read_text_file(path, "blend file"), f"blend file {path}")
+    return _parse_body(body, path)
+
+
+def _parse_body(body: str, path: Path) -> BlendSpec:
     try:
-        raw = tomllib.loads(path.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise ConfigError(f"blend file not found: {path}") from None
+        raw = tomllib.loads(body)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"blend file {path} is not valid TOML: {exc}") from exc
     try:
@@ -137,6 +154,29 @@ def read_blend(path: str | os.PathLike) -> BlendSpec:
         raise
     except ConfigError as exc:
         raise type(exc)(f"{path.name}: {exc}") from exc
+
+
+def reseal_blend(path: str | os.PathLike) -> Path:
+    """Write a new end line (digest) for a blend file edited by hand on purpose, after checking its content.
+
+    The content above the old end line (or the whole file, when it has none) must read as
+    a valid blend file: schema, source settings and the ``[check]`` table. Whether the
+    edited blend still ranks as its ``[check]`` says is verified when it is loaded
+    (:func:`xrec.runtime.load_blend`). Use it only on a file you changed deliberately: a
+    file cut short that still reads as valid TOML would be accepted as it is.
+
+    Raises
+    ------
+    ConfigError
+        When the content is not a valid blend file.
+    """
+    path = Path(path)
+    text = read_text_file(path, "blend file")
+    body, last = split_last_line(text)
+    if not last.startswith(END_PREFIX):
+        body = text
+    _parse_body(body, path)
+    return write_text_atomic(path, seal(body))
 
 def save_blend(
     path: str | os.PathLike,
@@ -174,8 +214,8 @@ def save_blend(
     Raises
     ------
     ConfigError
-        When the blend cannot be described (unregistered source, a setting TOML cannot hold)
-        or the file would not read back.
+        When the blend cannot be described (not fitted, an unregistered source, a setting
+        TOML cannot hold) or the file would not read back.
     """
     spec = spec_from_scorer(
         blend_or_fusion, dataset=dataset, split_settings=split_settings, fold=fold, evidence=evidence, dataset_load=dataset_load
@@ -183,6 +223,6 @@ def save_blend(
     content = spec.to_dict()
     BlendSpec.from_dict(content)  # never write a file that would not read back
     text = "# xrec blend file: load with xrec.runtime.load_blend(path, dataset)\n" + tomli_w.dumps(content)
-    return write_text_atomic(path, text)
+    return write_text_atomic(path, seal(text))
 
 

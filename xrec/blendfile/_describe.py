@@ -83,10 +83,12 @@ def spec_from_scorer(
         method_params = {"head_min": int(head_min)}
     else:
         method_params = {k: v for k, v in scorer.get_params().items() if v is not None}
-    check = None
-    if getattr(scorer, "fitted_", False):
-        users = min(CHECK_USERS, scorer.train_matrix_.shape[0])
-        check = {"users": users, "k": CHECK_K, "digest": ranking_digest(scorer, users, CHECK_K)}
+    if not getattr(scorer, "fitted_", False):
+        raise ConfigError(
+            "check: the blend is not fitted; fit it on its fold first (every blend file records a check of its rankings)"
+        )
+    users, k = min(CHECK_USERS, scorer.train_matrix_.shape[0]), min(CHECK_K, scorer.train_matrix_.shape[1])
+    check = {"users": users, "k": k, "digest": ranking_digest(scorer, users, k)}
     return BlendSpec(
         dataset_name=dataset.name,
         fingerprint=dataset.fingerprint(),

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import re
 from collections.abc import Mapping
 from typing import Any
 
@@ -131,13 +132,22 @@ def parse_fields(raw: Mapping[str, Any]) -> dict[str, Any]:
         raise ConfigError("sources: every band weight is zero; at least one needs to be positive")
 
     evidence = get_value(raw, "evidence", dict, "", required=False)
-    check = get_value(raw, "check", dict, "", required=False)
-    if check is not None:
-        no_unknown(check, CHECK_KEYS, "check")
-        for key in ("users", "k"):
-            if get_value(check, key, int, "check") < 1:
-                raise ConfigError(f"check.{key}: must be >= 1, got {check[key]}")
-        get_value(check, "digest", str, "check")
+    if "check" not in raw:
+        raise ConfigError("check: missing; every blend file carries the check of its rankings (users, k, digest)")
+    check = get_value(raw, "check", dict, "")
+    no_unknown(check, CHECK_KEYS, "check")
+    # Bounded by the sizes the file records, before any data is loaded (the runtime bounds them
+    # again by the data it loads): a huge check.users or check.k would make huge arrays.
+    for key, recorded in (("users", "n_users"), ("k", "n_items")):
+        value = get_value(check, key, int, "check")
+        if value < 1:
+            raise ConfigError(f"check.{key}: must be >= 1, got {value}")
+        limit = (record or {}).get(recorded)
+        if isinstance(limit, int) and not isinstance(limit, bool) and value > limit:
+            raise ConfigError(f"check.{key}: {value} exceeds split.record.{recorded} = {limit}")
+    digest = get_value(check, "digest", str, "check")
+    if not re.fullmatch(r"[0-9a-f]{16}", digest):
+        raise ConfigError(f"check.digest: must be 16 lowercase hex digits, got {digest!r}")
     return dict(
         dataset_name=name,
         fingerprint=fingerprint,
@@ -149,6 +159,6 @@ def parse_fields(raw: Mapping[str, Any]) -> dict[str, Any]:
         split_record=dict(record or {}),
         evidence=evidence,
         dataset_load=load,
-        check=dict(check) if check is not None else None,
+        check=dict(check),
         format_version=version,
     )

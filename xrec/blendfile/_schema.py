@@ -10,7 +10,7 @@ from xrec.blend.fusion import FUSION_METHODS
 __all__ = ["CHECK_K", "CHECK_USERS", "FOLDS", "FORMAT", "FORMAT_VERSION", "METHODS", "SourceSpec"]
 
 FORMAT = "xrec-blend"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 METHODS: tuple[str, ...] = ("weighted", "gated", *FUSION_METHODS)
 FOLDS = ("test", "validation")
 

@@ -80,6 +80,29 @@ def _rows_ok(vectors: np.ndarray) -> np.ndarray:
     finite = np.isfinite(vectors).all(axis=1)
     return finite & (np.abs(np.where(np.isfinite(vectors), vectors, 0)).sum(axis=1) > 0)
 
+def _read_entry(path: Path) -> tuple[bytes | None, str]:
+    """An entry file's bytes, or ``None`` and why it is unusable (``""`` when there is none)."""
+    try:
+        with open(path, "rb") as fh:
+            return fh.read(), ""
+    except FileNotFoundError:
+        return None, ""
+    except IsADirectoryError:
+        return None, "a folder, not an entry file"
+    except OSError as exc:  # permissions, a dangling or looping link, an I/O error
+        return None, f"unreadable: {exc.strerror or exc}"
+
+
+def _clear_entry(path: Path) -> None:
+    """Remove what stands where an entry file goes (a folder or a link), so the new entry can be renamed there."""
+    import shutil
+
+    if path.is_symlink() or not path.is_dir():
+        path.unlink(missing_ok=True)
+    else:
+        shutil.rmtree(path)
+
+
 def _read_if_path(content: Any) -> Any:
     """Bytes of the file a path names; anything else (or an unreadable path) unchanged."""
     if isinstance(content, (str, os.PathLike)):
@@ -111,11 +134,15 @@ def _stored_names(folder: Path, n_lookups: int) -> set[str] | None:
     return names
 
 
-def _call_encoder(encoder: Encoder, batch: list[Any]) -> tuple[np.ndarray, np.ndarray, list[str]]:
-    """Encode ``batch``; vectors, ok mask and the encoder's warning texts (kept for our own report)."""
+def _call_encoder(encoder: Encoder, batch: list[Any]) -> tuple[np.ndarray, np.ndarray, list[str], dict[int, str]]:
+    """Encode ``batch``; vectors, ok mask, the encoder's warning texts (kept for our own report)
+    and, from an encoder with ``encode_with_problems``, the reason each failed item failed (by batch position)."""
+    problems: dict[int, str] = {}
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        if callable(getattr(encoder, "encode_with_mask", None)):
+        if callable(getattr(encoder, "encode_with_problems", None)):
+            vectors, ok, problems = encoder.encode_with_problems(batch, progress=False)  # type: ignore[attr-defined]
+        elif callable(getattr(encoder, "encode_with_mask", None)):
             vectors, ok = encoder.encode_with_mask(batch, progress=False)  # type: ignore[attr-defined]
         else:
             vectors = encoder.encode(batch, progress=False)
@@ -133,7 +160,7 @@ def _call_encoder(encoder: Encoder, batch: list[Any]) -> tuple[np.ndarray, np.nd
     others = [w for w in caught if not issubclass(w.category, UserWarning)]
     for w in others:
         warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
-    return vectors, ok, notes
+    return vectors, ok, notes, dict(problems)
 
 
 def encode_through_cache(
@@ -173,24 +200,24 @@ def encode_through_cache(
     # Look each content up once; later duplicates reuse the first lookup.
     folder = cache.folder(encoder) if cache is not None else None
     stored = _stored_names(folder, sum(k is not None for k in keys)) if folder is not None else set()
+    if folder is not None:
+        cache.sweep_once(folder)  # type: ignore[union-attr]
     found: dict[str, np.ndarray] = {}
     missing: dict[str, int] = {}  # content hash -> first input position
+    in_the_way: set[Path] = set()  # damaged entries that are not plain files (a folder, a link)
     for i, key in enumerate(keys):
         if key is None or key in found or key in missing:
             continue
         vector = None
         if folder is not None and (stored is None or key in stored):
             path = entry_file(folder, key)
-            try:
-                with open(path, "rb") as fh:
-                    data = fh.read()
-            except FileNotFoundError:
-                data = None
+            data, why = _read_entry(path)
             if data is not None:
                 vector, why = unpack_entry(key, data, dim)
-                if vector is None:
-                    stats.corrupt += 1
-                    stats.corrupt_paths.append(f"{path} ({why})")
+            if why:
+                stats.corrupt += 1
+                stats.corrupt_paths.append(f"{path} ({why})")
+                in_the_way.add(path)
         if vector is None:
             missing[key] = i
         else:
@@ -238,7 +265,7 @@ def encode_through_cache(
             for start in range(0, len(todo), step):
                 chunk = todo[start : start + step]
                 try:
-                    vectors, chunk_ok, chunk_notes = _call_encoder(encoder, [contents[i] for _, i in chunk])
+                    vectors, chunk_ok, chunk_notes, chunk_problems = _call_encoder(encoder, [contents[i] for _, i in chunk])
                 except DataError as exc:
                     where = ", ".join(
                         f"#{j} = {labels[i] if labels is not None else '#' + str(i)}" for j, (_, i) in enumerate(chunk[:20])
@@ -247,22 +274,31 @@ def encode_through_cache(
                         f"{exc} [the encoder numbered a batch of {len(chunk)} uncached items; in your input: {where}"
                         + (" ...]" if len(chunk) > 20 else "]")
                     ) from exc
+                if chunk_problems and policy == "raise":  # the encoder tried every item; name them by input
+                    bad = {chunk[j][1]: reason for j, reason in chunk_problems.items()}
+                    raise DataError(
+                        f"{encoder.modality or 'encoder'} {encoder.cache_key}: cannot encode "
+                        + _describe(sorted(bad), bad, labels, n)
+                        + "; pass on_error='skip' to the encoder to skip them"
+                    )
                 notes.extend(chunk_notes)
                 stats.encoded += len(chunk)
-                for (key, i), vector, good in zip(chunk, vectors, chunk_ok):
+                for j, ((key, i), vector, good) in enumerate(zip(chunk, vectors, chunk_ok)):
                     if good:
                         found[key] = vector
                         if folder is not None:
                             path = entry_file(folder, key)
                             cache.make_folder(path.parent)  # type: ignore[union-attr]
+                            if path in in_the_way:
+                                _clear_entry(path)
                             try:
-                                write_bytes_atomic(path, pack_entry(key, vector))
+                                write_bytes_atomic(path, pack_entry(key, vector), durable=False, sweep=False)
                             except FileNotFoundError:  # folder removed meanwhile (e.g. clear() elsewhere)
                                 path.parent.mkdir(parents=True, exist_ok=True)
-                                write_bytes_atomic(path, pack_entry(key, vector))
+                                write_bytes_atomic(path, pack_entry(key, vector), durable=False, sweep=False)
                             stats.written += 1
                     else:
-                        failed_reasons[i] = "the encoder could not encode it"
+                        failed_reasons[i] = chunk_problems.get(j, "the encoder could not encode it")
                 bar.update(len(chunk))
         finally:
             bar.close()

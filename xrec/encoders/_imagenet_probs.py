@@ -83,12 +83,22 @@ class ImageNetProbsEncoder(_ReadsThroughBase):
 
     def encode_with_mask(self, contents: Sequence[Any], *, progress: bool = False) -> tuple[np.ndarray, np.ndarray]:
         """Probabilities ``(n, n_classes)`` and the mask of images that were encoded."""
+        return self._probs(contents, progress, {})[:2]
+
+    def encode_with_problems(
+        self, contents: Sequence[Any], *, progress: bool = False
+    ) -> tuple[np.ndarray, np.ndarray, dict[int, str]]:
+        """Probabilities, mask and each failed image's decode error (see the base encoder's method)."""
+        return self._probs(contents, progress, {"on_error": "skip", "warn": False})
+
+    def _probs(self, contents: Sequence[Any], progress: bool, options: dict) -> tuple[np.ndarray, np.ndarray, dict[int, str]]:
         from xrec.encoders.cache import content_hash
 
         contents = list(contents)
         keys = [content_hash(c) for c in contents]
         out = np.zeros((len(contents), self.dim), dtype=np.float32)
         ok = np.zeros(len(contents), dtype=bool)
+        problems: dict[int, str] = {}
         todo = []
         for i, key in enumerate(keys):
             kept = self._kept.pop(key, None) if key is not None else None
@@ -97,9 +107,10 @@ class ImageNetProbsEncoder(_ReadsThroughBase):
             else:
                 out[i], ok[i] = kept, True
         if todo:
-            result = self.base.encode_with_probs([contents[i] for i in todo], progress=progress)  # type: ignore[attr-defined]
+            result = self.base.encode_with_probs([contents[i] for i in todo], progress=progress, **options)  # type: ignore[attr-defined]
             out[todo], ok[todo] = result.probs, result.ok
-        return out, ok
+            problems = {todo[j]: reason for j, reason in result.problems.items()}
+        return out, ok, problems
 
     def encode(self, contents: Sequence[Any], *, progress: bool = False) -> np.ndarray:
         """Probabilities ``(n, n_classes)``, float32, rows summing to 1."""
@@ -125,15 +136,23 @@ class _FeaturesKeepingProbs(_ReadsThroughBase):
         return self.probs.problems(contents)
 
     def encode_with_mask(self, contents: Sequence[Any], *, progress: bool = False) -> tuple[np.ndarray, np.ndarray]:
+        return self._features(contents, progress, {})[:2]
+
+    def encode_with_problems(
+        self, contents: Sequence[Any], *, progress: bool = False
+    ) -> tuple[np.ndarray, np.ndarray, dict[int, str]]:
+        return self._features(contents, progress, {"on_error": "skip", "warn": False})
+
+    def _features(self, contents: Sequence[Any], progress: bool, options: dict) -> tuple[np.ndarray, np.ndarray, dict[int, str]]:
         from xrec.encoders.cache import content_hash
 
         contents = list(contents)
-        result = self.base.encode_with_probs(contents, progress=progress)  # type: ignore[attr-defined]
+        result = self.base.encode_with_probs(contents, progress=progress, **options)  # type: ignore[attr-defined]
         for content, probs, good in zip(contents, result.probs, result.ok):
             key = content_hash(content)
             if good and key is not None:
                 self.probs._kept[key] = probs
-        return result.vectors, result.ok
+        return result.vectors, result.ok, dict(result.problems)
 
     def encode(self, contents: Sequence[Any], *, progress: bool = False) -> np.ndarray:
         return self.encode_with_mask(contents, progress=progress)[0]

@@ -13,7 +13,7 @@ from typing import Any
 
 import numpy as np
 
-from xrec._files import write_bytes_atomic
+from xrec._files import sweep_temp_files, write_bytes_atomic
 from xrec._validation import check_int
 from xrec.encoders._entry_file import content_hash, entry_file
 from xrec.encoders._fill import CacheStats, encode_through_cache
@@ -24,6 +24,19 @@ __all__ = ["DEFAULT_DIR", "ENV_VAR", "EmbeddingCache"]
 
 ENV_VAR = "XREC_CACHE_DIR"
 DEFAULT_DIR = ".xrec-cache"
+_SWEPT: set[Path] = set()  # encoder folders already swept by this process
+
+
+def _sweep_tree(folder: Path) -> list[Path]:
+    """Stale temporary files removed from an encoder folder and its two-letter fan-out folders."""
+    if not folder.is_dir():
+        return []
+    removed = sweep_temp_files(folder)
+    with os.scandir(folder) as subs:
+        for sub in subs:
+            if len(sub.name) == 2 and sub.is_dir(follow_symlinks=False):
+                removed += sweep_temp_files(sub.path)
+    return removed
 
 
 class EmbeddingCache:
@@ -92,6 +105,28 @@ class EmbeddingCache:
                 shutil.rmtree(folder, ignore_errors=True)
         self._made.clear()
         return removed
+
+    def sweep_temp_files(self, encoder: Encoder | None = None) -> list[Path]:
+        """Remove stale temporary files left by writers killed mid-write; return them.
+
+        Looks in ``encoder``'s folder (or every encoder folder under the root) and its
+        fan-out subfolders; only xrec's own temporary names are touched, and only when
+        stale (see :func:`xrec._files.sweep_temp_files`). Done automatically the first time
+        a process uses a folder (:meth:`sweep_once`).
+        """
+        folders = [self.folder(encoder)] if encoder is not None else [p.parent for p in self.root.glob("*/encoder.json")]
+        removed: list[Path] = []
+        for folder in folders:
+            removed += _sweep_tree(folder)
+            _SWEPT.add(folder.resolve())
+        return removed
+
+    def sweep_once(self, folder: Path) -> None:
+        """Sweep an encoder folder's stale temporary files, the first time this process uses it."""
+        key = folder.resolve()
+        if key not in _SWEPT:
+            _SWEPT.add(key)
+            _sweep_tree(folder)
 
     def make_folder(self, path: Path) -> None:
         """Create ``path`` (an entry's fan-out folder) once per cache object."""

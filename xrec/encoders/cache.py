@@ -10,8 +10,11 @@ Each entry file is a 24-byte header — magic ``XRV1``, the vector length (uint3
 little-endian), a 16-byte BLAKE2b digest of (content hash, vector bytes) — followed by
 the float32 little-endian vector. Entries are written to a temporary file in the same
 folder and renamed over the final name (``os.replace``), so a reader sees either no
-entry or a whole one; a damaged entry (disk fault, a copy cut short) fails its digest,
-is reported in a warning naming the file and is recomputed. Changing an encoder's
+entry or a whole one; a damaged entry (disk fault, a copy cut short, a folder or an
+unreadable file where the entry should be) fails its digest or its read, is reported in a
+warning naming the file and is recomputed (what stood in its place is replaced). Entries
+are not ``fsync``-ed (they are checked on every read); temporary files left by a process
+killed mid-write are swept the first time a process uses an encoder's folder. Changing an encoder's
 identity or version moves it to another folder: other encoders' entries stay valid.
 No pickle anywhere.
 """

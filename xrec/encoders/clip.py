@@ -298,6 +298,17 @@ class _ClipPart(Encoder):
         DataError
             With ``on_error="raise"``, listing every bad item.
         """
+        return self._run(contents, progress, on_error, warn=True)[:2]
+
+    def encode_with_problems(
+        self, contents: Sequence[Any], *, progress: bool = False
+    ) -> tuple[np.ndarray, np.ndarray, dict[int, str]]:
+        """As :meth:`xrec.encoders.image.EfficientNetLite0Encoder.encode_with_problems` (the cache reports failures)."""
+        return self._run(contents, progress, "skip", warn=False)
+
+    def _run(
+        self, contents: Sequence[Any], progress: bool, on_error: OnError | None, *, warn: bool
+    ) -> tuple[np.ndarray, np.ndarray, dict[int, str]]:
         import torch
         from tqdm.auto import tqdm
 
@@ -322,8 +333,9 @@ class _ClipPart(Encoder):
                     out[rows] = torch.nn.functional.normalize(vectors.float(), dim=1).numpy()
                     ok[rows] = True
                 bar.update(stop - start)
-        report_problems(problems, n, policy, who, what)
-        return out, ok
+        if warn or policy == "raise":
+            report_problems(problems, n, policy, who, what)
+        return out, ok, problems
 
 
 class ClipImageEncoder(_ClipPart):

@@ -299,6 +299,7 @@ class EfficientNetLite0Encoder(Encoder):
         *,
         progress: bool = False,
         on_error: OnError | None = None,
+        warn: bool = True,
     ) -> ImageBatchResult:
         """Vectors and ImageNet class probabilities from one forward pass.
 
@@ -310,6 +311,9 @@ class EfficientNetLite0Encoder(Encoder):
             Show a progress bar over the images.
         on_error
             Overrides the encoder's ``on_error`` for this call.
+        warn
+            With ``on_error="skip"``, warn about the skipped images (default). ``False``
+            leaves the reporting to the caller, which finds every reason in ``problems``.
 
         Returns
         -------
@@ -344,8 +348,21 @@ class EfficientNetLite0Encoder(Encoder):
                     vectors[rows], probs[rows] = self._forward(batch)
                     ok[rows] = True
                 bar.update(stop - start)
-        report_problems(problems, n, policy, who)
+        if warn or policy == "raise":
+            report_problems(problems, n, policy, who)
         return ImageBatchResult(vectors=vectors, probs=probs, ok=ok, problems=problems)
+
+    def encode_with_problems(
+        self, contents: Sequence[Any], *, progress: bool = False
+    ) -> tuple[np.ndarray, np.ndarray, dict[int, str]]:
+        """Vectors, ``ok`` mask and the decode error of each image that failed (by position).
+
+        Every image is tried, whatever ``on_error`` says; nothing is raised or warned for a
+        bad image: the caller (the embedding cache) applies ``on_error`` and reports each
+        failure by item id.
+        """
+        result = self.encode_with_probs(contents, progress=progress, on_error="skip", warn=False)
+        return result.vectors, result.ok, dict(result.problems)
 
     def _prepare(self, contents: list[Any], start: int, stop: int) -> tuple[int, int, list[int], np.ndarray, dict[int, str]]:
         """Decode, resize and crop items ``start:stop``: positions, ``(m, 3, 224, 224)`` batch, problems."""

@@ -51,7 +51,7 @@ import scipy.sparse as sp
 from xrec.errors import ConfigError
 from xrec.evaluate._chunked import check_problem, check_run_settings, rows_of, run_chunks
 from xrec.evaluate._factor_blend import FactorBlend, blend_product
-from xrec.evaluate._metrics import RANK_METRICS, metric_column, metrics_from_ranks
+from xrec.evaluate._metrics import RANK_METRICS, check_cutoffs, metric_column, metrics_from_ranks
 from xrec.evaluate._ranking import UNRANKED, BlockRanks, rank_heldout
 
 BACKENDS = ("faiss", "numpy")
@@ -323,6 +323,7 @@ def evaluate_candidates(
         blend = FactorBlend(sources, weights, normalizers, allow_blocks=False)
     seen, truth, users = check_problem(seen, truth, users, blend.item_side.shape[0])
     n_items = truth.shape[1]
+    check_cutoffs(ks, n_items)  # a K beyond the catalog is refused, as everywhere in xrec
     top_n = _check_top_n(top_n, n_items)
     if isinstance(chunk_size, bool) or not isinstance(chunk_size, (int, np.integer)) or chunk_size < 1:
         raise ConfigError(f"chunk_size must be a positive int, got {chunk_size!r}")

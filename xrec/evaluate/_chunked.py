@@ -26,7 +26,7 @@ from tqdm.auto import tqdm
 from xrec.blend.normalize import normalize
 from xrec.errors import ConfigError, DataError
 from xrec.evaluate._factor_blend import FactorBlend, blend_product
-from xrec.evaluate._metrics import RANK_METRICS, metric_column, metrics_from_ranks
+from xrec.evaluate._metrics import RANK_METRICS, check_cutoffs, metric_column, metrics_from_ranks
 from xrec.evaluate._ranking import canonical_rows, check_users, rank_heldout
 from xrec.evaluate.protocols import FullRanking
 from xrec.evaluate.scorecard import Scorecard
@@ -180,6 +180,7 @@ def evaluate_blend_chunked(
     n_items = blend.item_side.shape[0] if blend.item_side is not None else None
     seen, truth, users = check_problem(seen, truth, users, n_items)
     n_items = truth.shape[1]
+    check_cutoffs(ks, n_items)  # a K beyond the catalog is refused, as everywhere in xrec
     if chunk_size is None:
         chunk_size = max(1, min(4096, DEFAULT_BLOCK_BYTES // (4 * n_items)))
     if isinstance(chunk_size, bool) or not isinstance(chunk_size, (int, np.integer)) or chunk_size < 1:

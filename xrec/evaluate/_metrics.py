@@ -28,6 +28,25 @@ def check_ks(ks: Sequence[int] | int) -> tuple[int, ...]:
     return tuple(sorted({int(k) for k in ks}))
 
 
+def check_cutoffs(ks: Sequence[int] | int, n_items: int, field: str = "ks") -> tuple[int, ...]:
+    """``ks`` checked by :func:`check_ks` and bounded by the catalog: sorted, distinct, ``<= n_items``.
+
+    A top-K list cannot be longer than the catalog, so a cut-off above ``n_items`` is
+    refused (never clamped) with a :class:`ConfigError` naming ``field``; callers check
+    before any ``(users, K)`` array is made.
+    """
+    try:
+        ks = check_ks(ks)
+    except ConfigError as exc:
+        raise ConfigError(f"{field}: {exc}") from None
+    too_big = [k for k in ks if k > n_items]
+    if too_big:
+        raise ConfigError(
+            f"{field}: cut-off(s) {too_big} exceed the catalog's {n_items} items; a top-K list cannot be longer than the catalog"
+        )
+    return ks
+
+
 def check_metrics(metrics: Sequence[str] | str) -> tuple[str, ...]:
     """Known metric names, deduplicated in order; ``ConfigError`` for unknown names or none."""
     if isinstance(metrics, str):

@@ -27,6 +27,7 @@ from xrec.errors import ConfigError, DataError
 from xrec.evaluate._metrics import (
     LIST_METRICS,
     RANK_METRICS,
+    check_cutoffs,
     check_ks,
     check_metrics,
     metric_column,
@@ -106,6 +107,7 @@ def check_inputs(
     if seen.shape != truth.shape:
         raise DataError(f"seen mask has shape {seen.shape} but held-out matrix has {truth.shape}")
     n_users, n_items = truth.shape
+    check_cutoffs(ks, n_items)  # a K beyond the catalog is refused, before any (users, K) array
     seen = canonical_rows(seen, n_users, n_items, "seen mask")
     truth = canonical_rows(truth, n_users, n_items, "held-out matrix")
     users = check_users(users, truth)

@@ -82,7 +82,7 @@ def evaluate_blocks(
     users
         User indices to evaluate (unique); default: every user with a held-out item.
     ks
-        Cut-offs, each > 0.
+        Cut-offs, each > 0 and at most the number of catalog items (larger ones are refused, not clamped).
     metrics
         Any of ``hit_rate, ndcg, recall, mrr`` (per user) and ``coverage, popularity``
         (from top-K lists; computed only when asked).
@@ -106,7 +106,7 @@ def evaluate_blocks(
     Raises
     ------
     ConfigError
-        Bad ``ks``, metric names, chunk size or protocol.
+        Bad ``ks`` (or one larger than the catalog), metric names, chunk size or protocol.
     DataError
         Shape mismatches, users out of range, repeated, or without held-out items.
     """
@@ -145,7 +145,7 @@ def evaluate(
     fold
         Training interactions (the seen mask) and held-out interactions (the truth).
     ks
-        Cut-offs, each > 0.
+        Cut-offs, each > 0 and at most the number of catalog items (larger ones are refused, not clamped).
     metrics
         Names among ``hit_rate, ndcg, recall, mrr, coverage, popularity``.
     protocol

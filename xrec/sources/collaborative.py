@@ -10,6 +10,7 @@ from threadpoolctl import threadpool_limits
 from tqdm.auto import tqdm
 
 from xrec._validation import check_int, check_number
+from xrec.errors import DataError, XrecError
 from xrec.fold import Fold
 from xrec.sources.base import LowRankSource, Source
 
@@ -91,25 +92,64 @@ class _ImplicitSource(LowRankSource):
     """
 
     def _fit_model(self, fold: Fold, model_class: type, *, binarize: bool, **extra: object) -> Self:
-        """Fit ``model_class`` on a copy of ``fold.train_matrix`` and store its factors."""
+        """Fit ``model_class`` on a copy of ``fold.train_matrix`` and store its factors.
+
+        Raises :class:`DataError` naming the source kind when the training strengths
+        (weights × ``alpha``) are too large for float32 arithmetic, and when ``implicit``
+        fails or returns non-finite factors (with the library's message and the weights' range).
+        """
         matrix = fold.train_matrix.copy()
         if binarize:
             matrix.data[:] = 1.0
+        _check_strength_scale(self.kind, matrix.data, float(extra.get("alpha", 1.0)))
         # the constructor checks the BLAS thread count too, so it sits inside the limit
-        with threadpool_limits(1, "blas"):
-            model = model_class(
-                factors=int(self.factors),
-                regularization=float(self.regularization),
-                iterations=int(self.iterations),
-                random_state=int(self.random_state),
-                dtype=np.float32,
-                **extra,
-            )
-            model.fit(matrix, show_progress=bool(self.progress))
-        self.user_factors_ = _factors(model.user_factors, matrix)
-        self.item_factors_ = np.ascontiguousarray(model.item_factors, dtype=np.float32)
+        try:
+            with threadpool_limits(1, "blas"):
+                model = model_class(
+                    factors=int(self.factors),
+                    regularization=float(self.regularization),
+                    iterations=int(self.iterations),
+                    random_state=int(self.random_state),
+                    dtype=np.float32,
+                    **extra,
+                )
+                model.fit(matrix, show_progress=bool(self.progress))
+            user_factors, item_factors = model.user_factors, model.item_factors
+        except XrecError:
+            raise
+        except Exception as exc:  # implicit's ModelFitError, numerical errors of its solvers
+            raise DataError(f"{self.kind}: the factorization failed: {exc}{_strength_hint(matrix.data)}") from exc
+        if not (np.isfinite(user_factors).all() and np.isfinite(item_factors).all()):
+            raise DataError(f"{self.kind}: the factorization produced non-finite factors{_strength_hint(matrix.data)}")
+        self.user_factors_ = _factors(user_factors, matrix)
+        self.item_factors_ = np.ascontiguousarray(item_factors, dtype=np.float32)
         self.fitted_ = True
         return self
+
+
+#: Largest training strength (weight × alpha) a factorization accepts: its square must be a
+#: finite float32 (sqrt of float32's largest value, about 1.8e19).
+MAX_STRENGTH = float(np.sqrt(np.finfo(np.float32).max))
+
+
+def _check_strength_scale(kind: str, weights: np.ndarray, alpha: float) -> None:
+    if weights.size == 0:
+        return
+    top = float(np.max(np.abs(weights.astype(np.float64)))) * alpha
+    if not top <= MAX_STRENGTH:
+        raise DataError(
+            f"{kind}: training weights × alpha reach {top:.3g}, whose square overflows float32 (largest "
+            f"usable strength {MAX_STRENGTH:.3g}); rescale the weights (e.g. log1p or divide by their maximum) or lower alpha"
+        )
+
+
+def _strength_hint(weights: np.ndarray) -> str:
+    if weights.size == 0:
+        return ""
+    return (
+        f" (training weights range from {float(weights.min()):.3g} to {float(weights.max()):.3g}; very large or "
+        "very spread weights make the solves ill-conditioned: rescale them, e.g. log1p, or lower alpha)"
+    )
 
 
 class ALSSource(_ImplicitSource):
