@@ -55,7 +55,7 @@ def test_cross_modal_takes_file_vectors_for_both_sides(pair_files, bridge, setti
 def test_cross_modal_refuses_file_vectors_with_conse_or_clip(pair_files) -> None:
     files, _, _ = pair_files
     for bridge in ("conse", "clip"):
-        with pytest.raises(ConfigError, match="image_vectors.*'cca' and 'ridge'"):
+        with pytest.raises(ConfigError, match="image_vectors.*'cca', 'ridge' and 'contrastive'"):
             CrossModalSource(bridge=bridge, image_vectors=files["image"]).fit(_fold())
 
 

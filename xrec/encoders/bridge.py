@@ -1,6 +1,6 @@
 """Bridges from image vectors into the text space, for cross-modal scoring without CLIP.
 
-Three estimators share one shape: ``fit(image, text)`` on (image, description) pairs,
+Four estimators share one shape: ``fit(image, text)`` on (image, description) pairs,
 ``transform(image)`` puts image inputs into the shared space and
 ``transform_text(text)`` puts text vectors there (the identity when the shared space
 *is* the text space).
@@ -14,6 +14,8 @@ Three estimators share one shape: ``fit(image, text)`` on (image, description) p
   the catalog's own pairs; both sides go to the canonical space.
 - :class:`RidgeBridge` — ridge regression (scikit-learn's ``Ridge``) from image features
   to text vectors, fitted on the catalog's own pairs.
+- :class:`ContrastiveBridge` — linear heads on both sides trained on the catalog's own
+  pairs with the symmetric InfoNCE loss of CLIP (both towers frozen).
 
 :func:`bridge_recall` measures a bridge by text → image retrieval on held-out pairs.
 """
@@ -28,6 +30,7 @@ from xrec.encoders._bridge_base import Bridge, paired_rows
 from xrec.encoders._by_name import IMAGE_ENCODERS, TEXT_ENCODERS, make_image_encoder, make_text_encoder
 from xrec.encoders._cca import CCABridge
 from xrec.encoders._conse import ConSEBridge
+from xrec.encoders._contrastive import ContrastiveBridge, symmetric_info_nce
 from xrec.encoders._imagenet_probs import ImageNetProbsEncoder, class_name_vectors
 from xrec.encoders._ridge_bridge import RidgeBridge
 from xrec.errors import ConfigError, DataError
@@ -39,6 +42,7 @@ __all__ = [
     "Bridge",
     "CCABridge",
     "ConSEBridge",
+    "ContrastiveBridge",
     "ImageNetProbsEncoder",
     "RidgeBridge",
     "bridge_recall",
@@ -46,13 +50,19 @@ __all__ = [
     "make_bridge",
     "make_image_encoder",
     "make_text_encoder",
+    "symmetric_info_nce",
 ]
 
-BRIDGES: dict[str, type[Bridge]] = {"conse": ConSEBridge, "cca": CCABridge, "ridge": RidgeBridge}
+BRIDGES: dict[str, type[Bridge]] = {
+    "conse": ConSEBridge,
+    "cca": CCABridge,
+    "ridge": RidgeBridge,
+    "contrastive": ContrastiveBridge,
+}
 
 
 def make_bridge(name: str, **settings: Any) -> Bridge:
-    """A bridge by name (``"conse"``, ``"cca"``, ``"ridge"``) with its settings.
+    """A bridge by name (``"conse"``, ``"cca"``, ``"ridge"``, ``"contrastive"``) with its settings.
 
     Raises
     ------

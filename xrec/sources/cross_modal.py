@@ -41,6 +41,9 @@ class CrossModalSource(ProfileSource):
           (image, text) pairs (setting ``n_components``);
         - ``"ridge"``: images → text space by ridge regression fitted on the catalog's
           own pairs (setting ``alpha``);
+        - ``"contrastive"``: both → a space learnt on the catalog's own pairs with a
+          symmetric contrastive loss, starting from the ridge map (setting ``alpha``;
+          see :class:`~xrec.encoders.bridge.ContrastiveBridge`);
         - ``"clip"``: CLIP image and text encoders (open_clip; settings ``clip_model``,
           ``clip_weights``).
     text_columns
@@ -66,7 +69,7 @@ class CrossModalSource(ProfileSource):
         Your own vectors for a side, in place of the encoder's: a vector file path, or a
         table of :func:`~xrec.sources.vectors.read_item_vectors` options
         (``{ path = "v.npy", ids = "ids.txt" }``); relative to the spec file in a spec. Only
-        with the ``"cca"`` and ``"ridge"`` bridges, which learn the link from the catalog's
+        with the ``"cca"``, ``"ridge"`` and ``"contrastive"`` bridges, which learn the link from the catalog's
         own pairs.
 
     Attributes
@@ -136,11 +139,15 @@ class CrossModalSource(ProfileSource):
             value = getattr(self, name)
             if value not in MODALITIES:
                 raise ConfigError(f"cross_modal setting {name!r} must be one of {list(MODALITIES)}, got {value!r}")
-        if self.bridge not in ("conse", "cca", "ridge", "clip"):
-            raise ConfigError(f"cross_modal setting 'bridge' must be 'conse', 'cca', 'ridge' or 'clip', got {self.bridge!r}")
+        if self.bridge not in ("conse", "cca", "ridge", "contrastive", "clip"):
+            raise ConfigError(
+                f"cross_modal setting 'bridge' must be 'conse', 'cca', 'ridge', 'contrastive' or 'clip', got {self.bridge!r}"
+            )
         own = [name for name in ("image_vectors", "text_vectors") if getattr(self, name) is not None]
-        if own and self.bridge not in ("cca", "ridge"):
-            raise ConfigError(f"cross_modal settings {own}: your own vectors work with the 'cca' and 'ridge' bridges, not {self.bridge!r}")
+        if own and self.bridge not in ("cca", "ridge", "contrastive"):
+            raise ConfigError(
+                f"cross_modal settings {own}: your own vectors work with the 'cca', 'ridge' and 'contrastive' bridges, not {self.bridge!r}"
+            )
 
     def _make_bridge(self) -> Any:
         from xrec.encoders.bridge import make_bridge
@@ -156,6 +163,8 @@ class CrossModalSource(ProfileSource):
             )
         if self.bridge == "cca":
             return make_bridge("cca", n_components=self.n_components, pca_components=self.pca_components)
+        if self.bridge == "contrastive":
+            return make_bridge("contrastive", alpha=self.alpha, cache_dir=self.cache_dir)
         return make_bridge("ridge", alpha=self.alpha)
 
     def _vectors(self, catalog: Catalog) -> tuple[np.ndarray, np.ndarray]:
