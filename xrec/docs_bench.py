@@ -258,6 +258,22 @@ def _encoders_table(data: dict[str, dict]) -> str:
     return "\n".join(lines) + "\n"
 
 
+def _bridges_table(data: dict[str, dict]) -> str:
+    """Text→image lift over random at 10 per bridge and seed (``bridge_recall``), and mean fit seconds."""
+    res = data["bench_bridges.json"]
+    f = res["figures"]
+    lines = [f"| bridge | mean, seeds 0–{f['seeds'] - 1} | per seed | fit s per seed (mean) |", "|---|---|---|---|"]
+    for b in f["bridges"]:
+        lifts = b["lift_per_seed"]
+        lines.append(f"| {b['bridge']} | {sum(lifts) / len(lifts):.1f}× | {' '.join(f'{v:.1f}' for v in lifts)} | {sum(b['fit_s_per_seed']) / len(lifts):.1f} |")
+    lines.append("")
+    lines.append(
+        f"`{res['run']['command']}`: {f['pairs']:,} image–description pairs, {100 * (1 - f['test_fraction']):.0f}/{100 * f['test_fraction']:.0f} "
+        f"split per seed, lift = recall@{f['k']} / the random expectation ({_load(res)})."
+    )
+    return "\n".join(lines) + "\n"
+
+
 #: The README's benchmark blocks.
 BENCH: dict[str, BenchBlock] = {
     "scale": BenchBlock(_SCALE_RUNS, _scale_table),
@@ -268,6 +284,7 @@ BENCH: dict[str, BenchBlock] = {
     "serve": BenchBlock(("bench_serve.json",), _serve_text),
     "dask": BenchBlock(("bench_dask.json",), _dask_table),
     "encoders": BenchBlock(("bench_encoders.json",), _encoders_table),
+    "bridges": BenchBlock(("bench_bridges.json",), _bridges_table),
 }
 
 
