@@ -7,8 +7,10 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     # folder = "path/to/ml-1m"   # optional: a GroupLens folder / demo shop folder
 
     [split]
-    rule = "leave_last"          # leave_last | time_cutoff | random | cold_items
+    rule = "leave_last"          # leave_last | time_cutoff | random | cold_items | mixed_last | mixed_cutoff
     seed = 0
+    # new_share = 0.2            # mixed_last: share of held-out rows on new items (never in training)
+    # cold_users = "keep"        # mixed rules: keep (scored as users without history) | drop; counted either way
 
     [evaluate]
     ks = [10, 20]
@@ -65,7 +67,7 @@ _DATA_KEYS = {
     "dataset", "folder", "catalog", "interactions", "item_col", "user_col", "time_col", "weight_col",
     "categorical", "multilabel", "numeric", "text", "image", "image_root", "name",
 }
-_SPLIT_KEYS = {"rule", "seed", "validation", "test_fraction", "cutoff", "cold_fraction", "min_train"}
+_SPLIT_KEYS = {"rule", "seed", "validation", "test_fraction", "cutoff", "cold_fraction", "min_train", "new_share", "cold_users"}
 _EVAL_KEYS = {"ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size"}
 _BLEND_KEYS = {"weights", "normalizer", "sources", "method", "metric", "gated", "fusion", "k", "depth", "seed"}
 _LEARN_METHODS = ("coordinate_ascent", "optuna", "logistic")
