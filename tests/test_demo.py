@@ -62,7 +62,7 @@ def test_known_and_new_items_are_reported_side_by_side(demo):
     assert "new" in bands["learned_bands"] and bands["learned_bands"]["new"] >= bands["min_band_heldout"]
     sides = {(r["side"], r["candidate"], r["metric"]) for r in summary["sides"]}
     assert ("known", "gated blend", "ndcg@10") in sides and ("new", "gated blend", "hit_rate@10") in sides
-    assert ("among_new_mapped_vs_text", "mapped [among new items]", "hit_rate@10") in sides
+    assert ("among_new_mapped_vs_text", "mapped", "hit_rate@10") in sides
     payload = json.loads((out / "scorecards.json").read_text(encoding="utf-8"))
     assert payload["exported_blend"] == "gated blend" and payload["split"]["rule"] == "mixed_last"
     assert payload["gated"]["band_heldout"]["new"] == bands["band_heldout"]["new"]
