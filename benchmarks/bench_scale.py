@@ -17,7 +17,11 @@ import this module, add its own engines and call ``main()``; the per-case subpro
 that script, so its engines exist there too): ``evaluate-blend`` (the general path,
 ``evaluate(Blend(...), fold)``, as a baseline), ``chunked`` (full ranking, :func:`evaluate_blend_chunked`,
 one worker thread per CPU), ``chunked-1`` (one thread), ``candidates-faiss`` and
-``candidates-numpy`` (:func:`evaluate_candidates`, top-100 per source).
+``candidates-numpy`` (:func:`evaluate_candidates`, top-100 per source), ``dask-1`` and
+``dask-2`` (:func:`evaluate_blend_sharded`: the chunked evaluation sharded by users over a
+Dask LocalCluster of 1 or 2 single-thread worker processes; ``wall_s`` includes starting
+the cluster, reported apart with the sharded evaluation's own time; the RSS columns are
+the calling process's only, the workers' peak resident memory is reported apart).
 
 Cases (``--cases``): ``ml-1m``, ``ml-20m``, the growth sweep ``grow-1`` … ``grow-5`` (users ×
 items from 2·10^7 to 3.7·10^9 cells) and ``catalog-1m`` (10^6 items × 10^5 users). On the
@@ -63,6 +67,7 @@ GROWTH = ("grow-1", "grow-2", "grow-3", "grow-4", "ml-20m")
 DEFAULT_ENGINES = {
     "ml-1m": ["evaluate-blend", "chunked", "chunked-1"],
     "catalog-1m": ["chunked", "candidates-faiss", "candidates-numpy"],
+    "ml-20m": ["chunked", "dask-1", "dask-2"],
 }
 
 
@@ -107,6 +112,32 @@ def _evaluate_blend(problem, users, case):
     return {"ndcg@10": float(card.per_user["ndcg@10"].mean()), "hit_rate@10": float(card.per_user["hit_rate@10"].mean())}
 
 
+def _dask(workers: int) -> Callable:
+    def run(problem, users, case):
+        from xrec.cluster import open_client
+        from xrec.evaluate import evaluate_blend_sharded
+
+        t0 = time.perf_counter()
+        with open_client(workers=workers) as client:
+            started = time.perf_counter() - t0
+            t1 = time.perf_counter()
+            card = evaluate_blend_sharded(
+                problem.sources, problem.weights, problem.train, problem.heldout, users=users, ks=KS, client=client
+            )
+            sharded = time.perf_counter() - t1
+            # ru_maxrss: each worker process's peak resident memory (KiB on Linux)
+            rss = sum(client.run(lambda: __import__("resource").getrusage(0).ru_maxrss * 1024).values())
+        return {
+            "ndcg@10": float(card.per_user["ndcg@10"].mean()),
+            "hit_rate@10": float(card.per_user["hit_rate@10"].mean()),
+            "cluster_start_s": started,
+            "sharded_eval_s": sharded,
+            "workers_rss_gb": rss / 1e9,
+        }
+
+    return run
+
+
 #: engine name -> fn(problem, users, case) -> dict of extra columns
 ENGINES: dict[str, Callable] = {
     "evaluate-blend": _evaluate_blend,
@@ -114,6 +145,8 @@ ENGINES: dict[str, Callable] = {
     "chunked-1": _chunked(1),
     "candidates-faiss": _candidates("faiss"),
     "candidates-numpy": _candidates("numpy"),
+    "dask-1": _dask(1),
+    "dask-2": _dask(2),
 }
 
 
@@ -208,6 +241,11 @@ def to_markdown(rows: list[dict], exponents: dict[str, float | None]) -> str:
             notes.append(f"all {r['users']:,} users ≈ {r['wall_all_users_s']:,.0f} s (extrapolated)")
         if "certified_share" in r:
             notes.append(f"top-{r['top_n']}: certified {r['certified_share']:.1%}, exact@10 {r['exact_share@10']:.1%}")
+        if "cluster_start_s" in r:
+            notes.append(
+                f"cluster start {r['cluster_start_s']:.1f} s + sharded evaluation {r['sharded_eval_s']:.1f} s; "
+                f"workers' peak RSS, added up, {r['workers_rss_gb']:.2f} GB"
+            )
         if "ndcg@10" in r:
             notes.append(f"ndcg@10 {r['ndcg@10']:.4f}")
         elif "ndcg@10 (exact users)" in r:
@@ -216,6 +254,13 @@ def to_markdown(rows: list[dict], exponents: dict[str, float | None]) -> str:
             f"| {r['case']} | {r['engine']} | {r['users']:,} × {r['items']:,} | {r['evaluated_users']:,} | {r['wall_s']:.2f} | "
             f"{r['cells_per_s']:.3g} | {r['peak_rss_gb']:.2f} | {r['max_rss_gb']:.2f} | {'; '.join(notes)} |"
         )
+    single = {r["case"]: r["wall_s"] for r in rows if r["engine"] == "chunked"}
+    for r in rows:
+        if "sharded_eval_s" in r and r["case"] in single:
+            lines.append(
+                f"\n{r['case']}, {r['engine']} / chunked (one process): {r['wall_s'] / single[r['case']]:.2f}× with the "
+                f"cluster start, {r['sharded_eval_s'] / single[r['case']]:.2f}× without"
+            )
     for engine, b in exponents.items():
         if b is not None:
             lines.append(f"\nGrowth exponent of time in users × items ({engine}, cases {', '.join(GROWTH)}): **{b:.2f}**")

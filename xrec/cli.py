@@ -22,7 +22,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     from xrec.report import experiment_payload, format_experiment
     from xrec.spec import load_spec
 
-    spec = load_spec(args.spec)
+    spec = _with_cluster_flags(load_spec(args.spec), args)
     result = run_experiment(spec, progress=not args.quiet and not args.json)
     if args.json:
         _print_json(experiment_payload(result))
@@ -31,12 +31,26 @@ def _cmd_run(args: argparse.Namespace) -> int:
     return 0
 
 
+def _with_cluster_flags(spec, args: argparse.Namespace):
+    """``spec`` with ``--scheduler`` / ``--workers`` put in its ``[evaluate]`` table (they replace the spec's own)."""
+    from xrec.cluster import check_cluster_options
+
+    if args.scheduler is None and args.workers is None:
+        return spec
+    check_cluster_options(args.scheduler, args.workers, where="--")
+    evaluate = {k: v for k, v in spec.evaluate.items() if k not in ("scheduler", "workers")}
+    evaluate.update({k: v for k, v in (("scheduler", args.scheduler), ("workers", args.workers)) if v is not None})
+    spec.evaluate = evaluate
+    return spec
+
+
 def _cmd_compare(args: argparse.Namespace) -> int:
     from xrec.experiment import compare_specs
     from xrec.report import format_comparison
     from xrec.spec import load_spec
 
-    comparison = compare_specs(load_spec(args.baseline), load_spec(args.candidate), progress=not args.quiet and not args.json)
+    baseline, candidate = (_with_cluster_flags(load_spec(path), args) for path in (args.baseline, args.candidate))
+    comparison = compare_specs(baseline, candidate, progress=not args.quiet and not args.json)
     if args.json:
         _print_json(comparison.to_dict())
     else:
@@ -48,7 +62,7 @@ def _cmd_export(args: argparse.Namespace) -> int:
     from xrec.experiment import export_spec
     from xrec.spec import load_spec
 
-    path = export_spec(load_spec(args.spec), args.output, scorer=args.scorer, progress=not args.quiet)
+    path = export_spec(_with_cluster_flags(load_spec(args.spec), args), args.output, scorer=args.scorer, progress=not args.quiet)
     print(f"blend file written: {path}")
     return 0
 
@@ -91,6 +105,12 @@ def build_parser() -> argparse.ArgumentParser:
     )
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
+    def cluster(p: argparse.ArgumentParser) -> None:
+        p.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                       help="evaluate on the Dask cluster of this scheduler (e.g. tcp://host:8786), users sharded over its workers")
+        p.add_argument("--workers", type=int, default=None, metavar="N",
+                       help="evaluate on a local Dask cluster of N worker processes, users sharded over them")
+
     def common(p: argparse.ArgumentParser, json_flag: bool = True) -> None:
         p.add_argument("-q", "--quiet", action="store_true", help="no progress bars")
         if json_flag:
@@ -109,6 +129,7 @@ def build_parser() -> argparse.ArgumentParser:
         "Evaluate every source and blend of an experiment spec (a TOML file or a built-in name such as "
         "'movielens') and print a scorecard table with paired comparisons against the baseline."))
     p.add_argument("spec", help="spec file, or a built-in spec name")
+    cluster(p)
     common(p)
     p.set_defaults(func=_cmd_run)
 
@@ -117,6 +138,7 @@ def build_parser() -> argparse.ArgumentParser:
         "differences with bootstrap confidence intervals and randomization p-values."))
     p.add_argument("baseline", help="baseline spec file or built-in name")
     p.add_argument("candidate", help="candidate spec file or built-in name")
+    cluster(p)
     common(p)
     p.set_defaults(func=_cmd_compare)
 
@@ -125,6 +147,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("spec", help="spec file or built-in name")
     p.add_argument("-o", "--output", required=True, help="blend file to write (.toml)")
     p.add_argument("--scorer", default=None, help="which source or blend to export (default: the spec's primary)")
+    cluster(p)
     common(p, json_flag=False)
     p.set_defaults(func=_cmd_export)
 

@@ -131,6 +131,38 @@ def evaluation_options(spec: ExperimentSpec) -> dict[str, Any]:
     return opts
 
 
+def cluster_options(spec: ExperimentSpec) -> dict[str, Any] | None:
+    """``scheduler`` / ``workers`` of the spec's ``[evaluate]`` table, or ``None`` to evaluate in this process."""
+    ev = spec.evaluate
+    if ev.get("scheduler") is None and ev.get("workers") is None:
+        return None
+    return {"scheduler": ev.get("scheduler"), "workers": ev.get("workers")}
+
+
+def evaluate_scorers(spec: ExperimentSpec, scorers: dict[str, Any], fold: Any, *, progress: bool = False) -> dict[str, Any]:
+    """Scorecards of ``scorers`` on ``fold`` with the spec's ``[evaluate]`` options.
+
+    With ``scheduler`` or ``workers`` in ``[evaluate]`` the users are sharded over one Dask
+    cluster shared by every scorer (:func:`xrec.evaluate.evaluate_sharded`); the scorecards
+    are the same as in one process.
+    """
+    from xrec.evaluate import evaluate, evaluate_sharded
+
+    opts = evaluation_options(spec)
+    cluster = cluster_options(spec)
+    items = _progress(scorers.items(), progress, "evaluating")
+    if cluster is None:
+        return {name: evaluate(scorer, fold, name=name, **opts) for name, scorer in items}
+    from xrec.cluster import open_client
+
+    shard_size = spec.evaluate.get("shard_size")
+    with open_client(**cluster) as client:
+        return {
+            name: evaluate_sharded(scorer, fold, name=name, shard_size=shard_size, client=client, progress=progress, **opts)
+            for name, scorer in items
+        }
+
+
 def run_experiment(
     spec: ExperimentSpec, *, progress: bool = False, dataset: Dataset | None = None, only: str | None = None
 ) -> ExperimentResult:
@@ -139,7 +171,7 @@ def run_experiment(
     With ``only`` (a source or blend name) just that scorer and the sources it needs are
     fitted and evaluated, and there is no comparison.
     """
-    from xrec.evaluate import compare, evaluate
+    from xrec.evaluate import compare
     from xrec.split import split_dataset
 
     dataset = dataset or load_spec_dataset(spec, progress=progress)
@@ -165,11 +197,7 @@ def run_experiment(
             scorers[name] = _build_blend(spec, table, sources, split, valid_sources, learned, name, progress)
         except ConfigError as exc:
             raise ConfigError(f"blends.{name}: {exc}") from exc
-    opts = evaluation_options(spec)
-    scorecards = {
-        name: evaluate(scorer, fold, name=name, **opts)
-        for name, scorer in _progress(scorers.items(), progress, "evaluating")
-    }
+    scorecards = evaluate_scorers(spec, scorers, fold, progress=progress)
     comparison = None
     baseline = spec.baseline
     if only is None and baseline is not None and len(scorecards) > 1:

@@ -18,6 +18,9 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     baseline = "popularity"      # the source or blend the others are compared with
     # primary = "als_genres"     # the scorer `xrec compare` / `xrec export` use (default: first blend)
     # protocol = "sampled"       # full ranking unless asked; sampled takes `negatives`
+    # workers = 2                # evaluate on a local Dask cluster of 2 processes, sharded by users
+    # scheduler = "tcp://scheduler-host:8786"  # or on a running Dask cluster (not with `workers`)
+    # shard_size = 8192          # users per Dask task (default: about 4 per worker; unused in one process)
 
     [sources.popularity]
     kind = "popularity"
@@ -68,7 +71,10 @@ _DATA_KEYS = {
     "categorical", "multilabel", "numeric", "text", "image", "image_root", "name",
 }
 _SPLIT_KEYS = {"rule", "seed", "validation", "test_fraction", "cutoff", "cold_fraction", "min_train", "new_share", "cold_users"}
-_EVAL_KEYS = {"ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size"}
+_EVAL_KEYS = {
+    "ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size",
+    "scheduler", "workers", "shard_size",
+}
 _BLEND_KEYS = {"weights", "normalizer", "sources", "method", "metric", "gated", "fusion", "k", "depth", "seed"}
 _LEARN_METHODS = ("coordinate_ascent", "optuna", "logistic")
 _FUSIONS = ("rrf", "combsum", "combmnz")
@@ -204,8 +210,11 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
     unknown = [m for m in metrics if m not in ALL_METRICS]
     if unknown:
         raise ConfigError(f"evaluate.metrics: unknown metric name(s) {unknown}; known: {list(ALL_METRICS)}")
-    for key, lowest in (("chunk_size", 1), ("negatives", 1), ("seed", 0)):
+    for key, lowest in (("chunk_size", 1), ("negatives", 1), ("seed", 0), ("shard_size", 1)):
         _check_int(evaluate, key, lowest, "evaluate")
+    from xrec.cluster import check_cluster_options
+
+    check_cluster_options(evaluate.get("scheduler"), evaluate.get("workers"), where="evaluate.")
     sources = _check_table(raw.get("sources", {}), "sources")
     if not sources:
         raise ConfigError("sources: at least one [sources.NAME] table is needed")

@@ -15,6 +15,7 @@ _LAZY = {
     "MiniLMTextEncoder": "xrec.encoders.text",
     "ClipEncoders": "xrec.encoders.clip",
     "imagenet_class_names": "xrec.encoders._imagenet",
+    "encode_sharded": "xrec.encoders.sharded",
 }
 
 
@@ -36,5 +37,6 @@ __all__ = [
     "MiniLMTextEncoder",
     "encode_catalog_images",
     "encode_catalog_text",
+    "encode_sharded",
     "imagenet_class_names",
 ]

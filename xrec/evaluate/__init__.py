@@ -1,4 +1,4 @@
-"""Offline evaluation: full-ranking metrics, scorecards, paired comparisons."""
+"""Offline evaluation: full-ranking metrics, scorecards, paired comparisons; sharded over Dask workers."""
 
 from xrec.evaluate._candidates import CandidateEvaluation, evaluate_candidates, top_n_items
 from xrec.evaluate._chunked import evaluate_blend_chunked
@@ -8,6 +8,7 @@ from xrec.evaluate.compare import Comparison, compare
 from xrec.evaluate.evaluator import as_score_fn, evaluate, evaluate_blocks
 from xrec.evaluate.protocols import FullRanking, SampledNegatives
 from xrec.evaluate.scorecard import Scorecard
+from xrec.evaluate.sharded import evaluate_blend_sharded, evaluate_blocks_sharded, evaluate_sharded
 
 __all__ = [
     "ALL_METRICS",
@@ -23,7 +24,10 @@ __all__ = [
     "count_at_least",
     "evaluate",
     "evaluate_blend_chunked",
+    "evaluate_blend_sharded",
     "evaluate_blocks",
+    "evaluate_blocks_sharded",
+    "evaluate_sharded",
     "evaluate_candidates",
     "metrics_from_ranks",
     "rank_heldout",

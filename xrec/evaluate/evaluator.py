@@ -8,12 +8,9 @@ from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
-from tqdm.auto import tqdm
 
-from xrec._validation import check_int
 from xrec.errors import ConfigError, DataError
-from xrec.evaluate._metrics import LIST_METRICS, RANK_METRICS, check_ks, check_metrics, metric_column, metrics_from_ranks, popularity_of_lists
-from xrec.evaluate._ranking import canonical_rows, check_users, rank_heldout, top_k_items
+from xrec.evaluate._partial import check_inputs, evaluate_rows, fold_arguments, merge_partials
 from xrec.evaluate.protocols import SAMPLED_WARNING, FullRanking, SampledNegatives
 from xrec.evaluate.scorecard import Scorecard
 from xrec.fold import Fold
@@ -55,16 +52,6 @@ def as_score_fn(scorer: Any, n_users: int | None = None, n_items: int | None = N
     raise ConfigError(
         f"scorer must be a 2-D array, an object with .score(users), or a callable f(users); got {type(scorer).__name__}"
     )
-
-
-def _row_run(m: sp.csr_matrix, start: int, stop: int) -> sp.csr_matrix:
-    """Rows ``start:stop`` of a canonical CSR as views (scipy's slicing copies and re-checks)."""
-    lo, hi = m.indptr[start], m.indptr[stop]
-    out = sp.csr_matrix(
-        (m.data[lo:hi], m.indices[lo:hi], m.indptr[start : stop + 1] - lo), shape=(stop - start, m.shape[1]), copy=False
-    )
-    out.has_canonical_format = True
-    return out
 
 
 def evaluate_blocks(
@@ -123,80 +110,15 @@ def evaluate_blocks(
     DataError
         Shape mismatches, users out of range, repeated, or without held-out items.
     """
-    ks = check_ks(ks)
-    metrics = check_metrics(metrics)
-    check_int(chunk_size, "chunk_size", low=1, expected="a positive int")
-    protocol = FullRanking() if protocol is None else protocol
-    if not isinstance(protocol, (FullRanking, SampledNegatives)):
-        raise ConfigError(f"protocol must be FullRanking() or SampledNegatives(...), got {type(protocol).__name__}")
-    if not sp.issparse(seen) or not sp.issparse(truth):
-        raise DataError("seen and truth must be scipy sparse matrices (users × items)")
-    if seen.shape != truth.shape:
-        raise DataError(f"seen mask has shape {seen.shape} but held-out matrix has {truth.shape}")
-    n_users, n_items = truth.shape
-    seen = canonical_rows(seen, n_users, n_items, "seen mask")
-    truth = canonical_rows(truth, n_users, n_items, "held-out matrix")
-    users = check_users(users, truth)
-    if isinstance(protocol, SampledNegatives):
-        warnings.warn(SAMPLED_WARNING, UserWarning, stacklevel=3)
-
-    list_wanted = [m for m in metrics if m in LIST_METRICS]
-    rank_wanted = [m for m in metrics if m in RANK_METRICS]
-    if "popularity" in list_wanted:
-        if item_counts is None:
-            item_counts = np.bincount(seen.indices, minlength=n_items)
-        item_counts = np.asarray(item_counts)
-        if item_counts.shape != (n_items,):
-            raise DataError(f"item_counts has shape {item_counts.shape}, expected ({n_items},)")
-
-    per_user: dict[str, list[np.ndarray]] = {}
-    listed = {k: np.zeros(n_items, dtype=bool) for k in ks} if "coverage" in list_wanted else {}
-    starts = range(0, len(users), int(chunk_size))
-    for start in tqdm(starts, desc=name or "evaluate", unit="chunk", disable=not progress):
-        chunk = users[start : start + int(chunk_size)]
-        block = np.asarray(score_fn(chunk))
-        if block.shape != (len(chunk), n_items):
-            raise DataError(f"scorer returned shape {block.shape} for {len(chunk)} users; expected {(len(chunk), n_items)}")
-        if block.dtype.kind not in "fiu":
-            raise DataError(f"scorer returned dtype {block.dtype}; scores must be real numbers")
-        if np.all(np.diff(chunk) == 1):  # a run of consecutive users: slice, don't gather
-            seen_rows, truth_rows = _row_run(seen, chunk[0], chunk[-1] + 1), _row_run(truth, chunk[0], chunk[-1] + 1)
-        else:
-            seen_rows, truth_rows = seen[chunk], truth[chunk]
-        if rank_wanted:
-            ranks = rank_heldout(block, seen_rows, truth_rows, protocol=protocol, users=chunk)
-            for col, values in metrics_from_ranks(ranks, ks, rank_wanted).items():
-                per_user.setdefault(col, []).append(values)
-        if list_wanted:
-            top = top_k_items(block, seen_rows, max(ks))
-            for k in ks:
-                if "coverage" in list_wanted:
-                    items = top[:, :k].ravel()
-                    listed[k][items[items >= 0]] = True
-                if "popularity" in list_wanted:
-                    per_user.setdefault(metric_column("popularity", k), []).append(popularity_of_lists(top, item_counts, k))
-
-    columns = {"user": users}
-    order = [metric_column(m, k) for m in metrics if m != "coverage" for k in ks]
-    for col in order:
-        columns[col] = np.concatenate(per_user[col])
-    list_metrics: dict[str, float] = {}
-    for k in ks:
-        if "coverage" in list_wanted:
-            list_metrics[metric_column("coverage", k)] = float(listed[k].mean())
-        if "popularity" in list_wanted:
-            list_metrics[metric_column("popularity", k)] = float(np.nanmean(columns[metric_column("popularity", k)]))
-    import pandas as pd
-
-    return Scorecard(
-        name=name or "scorer",
-        per_user=pd.DataFrame(columns),
-        list_metrics=list_metrics,
-        ks=ks,
-        protocol=protocol.describe(),
-        fold_settings=dict(settings or {}),
-        n_items=n_items,
+    inputs = check_inputs(
+        seen, truth, users, ks=ks, metrics=metrics, protocol=protocol, chunk_size=chunk_size, item_counts=item_counts
     )
+    if isinstance(inputs.options.protocol, SampledNegatives):
+        warnings.warn(SAMPLED_WARNING, UserWarning, stacklevel=3)
+    part = evaluate_rows(
+        score_fn, inputs.options, inputs.users, inputs.seen, inputs.truth, progress=progress, desc=name or "evaluate"
+    )
+    return merge_partials([part], inputs, name=name or "scorer", settings=settings)
 
 
 def evaluate(
@@ -248,22 +170,8 @@ def evaluate(
     >>> card = evaluate(source, fold, ks=(10, 20))     # doctest: +SKIP
     >>> card.summary()                                 # doctest: +SKIP
     """
-    if not isinstance(fold, Fold):
-        raise ConfigError(f"fold must be an xrec Fold, got {type(fold).__name__}")
+    arguments = fold_arguments(scorer, fold, users, name)
     score_fn = as_score_fn(scorer, fold.n_users, fold.n_items)
-    if name is None:
-        name = "scores" if isinstance(scorer, np.ndarray) else getattr(scorer, "__name__", type(scorer).__name__)
     return evaluate_blocks(
-        score_fn,
-        fold.train_matrix,
-        fold.heldout_matrix,
-        fold.eval_users if users is None else users,
-        ks=ks,
-        metrics=metrics,
-        protocol=protocol,
-        chunk_size=chunk_size,
-        item_counts=fold.item_train_counts,
-        name=name,
-        settings=fold.settings,
-        progress=progress,
+        score_fn, ks=ks, metrics=metrics, protocol=protocol, chunk_size=chunk_size, progress=progress, **arguments
     )
