@@ -12,7 +12,7 @@ import pytest
 
 from xrec.data import Catalog, Dataset, Interactions
 from xrec.data._report import describe_rows
-from xrec.errors import DataError
+from xrec.errors import ConfigError, DataError
 
 
 def _catalog_frame() -> pd.DataFrame:
@@ -87,7 +87,8 @@ def test_catalog_duplicate_ids_name_the_rows():
         _catalog(frame=frame)
     msg = str(err.value)
     assert msg.startswith("catalog: 2 rows share an item id")
-    assert "row 0: sku='a'" in msg and "row 2: sku='a'" in msg
+    # Rows are numbered from 1 (the frame's first row is row 1), like the 1-based lines of parse errors.
+    assert "row 1: sku='a'" in msg and "row 3: sku='a'" in msg
 
 
 def test_catalog_ids_equal_as_strings_are_duplicates():
@@ -98,17 +99,17 @@ def test_catalog_ids_equal_as_strings_are_duplicates():
 def test_catalog_missing_id_single_row_reads_as_singular():
     frame = _catalog_frame()
     frame.loc[1, "sku"] = None
-    with pytest.raises(DataError, match=r"^catalog: 1 row has no item id: row 1: sku=(None|nan)$"):
+    with pytest.raises(DataError, match=r"^catalog: 1 row has no item id: row 2: sku=<missing>$"):
         _catalog(frame=frame)
 
 
 def test_catalog_nan_and_non_numeric_in_numeric_column():
     frame = _catalog_frame()
     frame["price"] = [1.0, np.nan, np.nan]
-    with pytest.raises(DataError, match=r"2 rows have NaN in numeric column 'price'.*row 1.*row 2"):
+    with pytest.raises(DataError, match=r"2 rows have a missing or NaN value in numeric column 'price'.*row 2.*row 3"):
         _catalog(frame=frame)
     frame["price"] = ["1", "cheap", "2"]
-    with pytest.raises(DataError, match=r"1 row has a non-numeric 'price': row 1: sku='b', price='cheap'"):
+    with pytest.raises(DataError, match=r"1 row has a non-numeric 'price': row 2: sku='b', price='cheap'"):
         _catalog(frame=frame)
     frame["price"] = [1.0, np.inf, 2.0]
     with pytest.raises(DataError, match="1 row has an infinite value in numeric column 'price'"):
@@ -122,7 +123,7 @@ def test_catalog_missing_categorical_and_bad_text():
         _catalog(frame=frame)
     frame = _catalog_frame()
     frame.loc[2, "name"] = np.nan
-    with pytest.raises(DataError, match="1 row has a non-string text in 'name': row 2"):
+    with pytest.raises(DataError, match="1 row has a non-string text in 'name': row 3"):
         _catalog(frame=frame)
 
 
@@ -131,7 +132,7 @@ def test_catalog_missing_image_file(tmp_path):
     frame = pd.DataFrame({"item": ["a", "b"], "img": ["a.png", "b.png"]})
     cat = Catalog.from_frame(frame.iloc[:1], image="img", image_root=tmp_path)
     assert cat.image_path(0) == tmp_path / "a.png"
-    with pytest.raises(DataError, match=r"1 row points to a missing image file in 'img': row 1: item='b', img='b.png'"):
+    with pytest.raises(DataError, match=r"1 row points to a missing image file in 'img': row 2: item='b', img='b.png'"):
         Catalog.from_frame(frame, image="img", image_root=tmp_path)
 
 
@@ -140,15 +141,15 @@ def test_many_bad_rows_show_first_five_and_count():
     with pytest.raises(DataError) as err:
         Catalog.from_frame(frame, numeric=["x"])
     msg = str(err.value)
-    assert msg.startswith("catalog: 12 rows have NaN")
-    assert re.findall(r"row (\d+):", msg) == ["0", "1", "2", "3", "4"]
+    assert msg.startswith("catalog: 12 rows have a missing or NaN value")
+    assert re.findall(r"row (\d+):", msg) == ["1", "2", "3", "4", "5"]
     assert msg.endswith("(and 7 more)")
 
 
 def test_describe_rows_verb_agreement():
     frame = pd.DataFrame({"a": [1, 2]})
-    assert describe_rows(frame, [True, False], "have no id") == "1 row has no id: row 0: a=1"
-    assert describe_rows(frame, [True, False], "repeat a pair") == "1 row repeats a pair: row 0: a=1"
+    assert describe_rows(frame, [True, False], "have no id") == "1 row has no id: row 1: a=1"
+    assert describe_rows(frame, [True, False], "repeat a pair") == "1 row repeats a pair: row 1: a=1"
     assert describe_rows(frame, [True, True], "have no id").startswith("2 rows have no id")
 
 
@@ -189,22 +190,22 @@ def test_interactions_unknown_items_named():
 def test_interactions_missing_ids():
     events = _events()
     events.loc[0, "uid"] = None
-    with pytest.raises(DataError, match="1 row has no user id: row 0"):
+    with pytest.raises(DataError, match="1 row has no user id: row 1"):
         Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts")
     events = _events()
     events.loc[1, "sku"] = np.nan
-    with pytest.raises(DataError, match="1 row has no item id: row 1"):
+    with pytest.raises(DataError, match="1 row has no item id: row 2"):
         Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts")
 
 
 def test_interactions_bad_timestamps():
     events = _events().astype({"ts": object})
     events.loc[2, "ts"] = "yesterday"
-    with pytest.raises(DataError, match=r"1 row has a timestamp that is neither a number nor a date in 'ts': row 2: uid='u2', sku='a', ts='yesterday'"):
+    with pytest.raises(DataError, match=r"1 row has a timestamp that is neither a number nor a date in 'ts': row 3: uid='u2', sku='a', ts='yesterday'"):
         Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts")
     events = _events().astype({"ts": float})
     events.loc[[0, 3], "ts"] = np.nan
-    with pytest.raises(DataError, match=r"2 rows have no timestamp in 'ts': row 0.*row 3"):
+    with pytest.raises(DataError, match=r"2 rows have no timestamp in 'ts': row 1.*row 4"):
         Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts")
     events.loc[[0, 3], "ts"] = np.inf
     with pytest.raises(DataError, match=r"2 rows have an infinite timestamp"):
@@ -214,7 +215,7 @@ def test_interactions_bad_timestamps():
 def test_interactions_bad_weights():
     events = _events().astype({"stars": object})
     events.loc[1, "stars"] = "five"
-    with pytest.raises(DataError, match="1 row has a missing or non-numeric weight in 'stars': row 1"):
+    with pytest.raises(DataError, match="1 row has a missing or non-numeric weight in 'stars': row 2"):
         Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts", weight_col="stars")
 
 
@@ -299,3 +300,117 @@ def test_date_string_timestamps_become_epoch_seconds():
     assert got["u1"] == dt.datetime(2024, 5, 1, tzinfo=dt.timezone.utc).timestamp()
     assert got["u2"] == dt.datetime(2024, 5, 1, 10, tzinfo=dt.timezone.utc).timestamp()
     assert got["u3"] == 1714521600.0
+
+
+# --- defects found by a hostile pass over the inputs (each raised a raw exception or passed) ---
+
+
+def test_weight_finite_in_float64_but_not_in_float32_is_refused():
+    # Weights are stored as float32; 1e39 used to pass (checked in float64) and become inf.
+    # Reference: numpy.finfo(np.float32).max (IEEE 754 binary32, ~3.4028235e38).
+    assert float(np.finfo(np.float32).max) < 1e39
+    events = _events().astype({"stars": float})
+    events.loc[2, "stars"] = 1e39
+    with pytest.raises(DataError, match=r"1 row has a weight in 'stars' that is not a finite float32.*row 3: .*stars=1e\+39"):
+        Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts", weight_col="stars")
+    largest = float(np.finfo(np.float32).max)
+    events.loc[2, "stars"] = largest
+    kept = Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts", weight_col="stars")
+    assert kept.frame["weight"].max() == np.float32(largest)
+
+
+def test_summed_weights_that_overflow_float32_are_refused():
+    frame = _dupes().assign(weight=[3e38, 3e38, 1.0, 1.0])
+    with pytest.raises(DataError, match="summed weights that are not a finite float32"):
+        Interactions.from_frame(frame, weight_col="weight", on_duplicate="sum")
+
+
+def test_dates_outside_the_nanosecond_range_are_read_or_named():
+    # "1000-01-01" used to raise pandas' OutOfBoundsDatetime (the epoch was subtracted in
+    # nanoseconds). Reference: the standard library's datetime for the expected seconds.
+    frame = pd.DataFrame({"user": ["u", "u", "u"], "item": ["a", "b", "c"],
+                          "timestamp": ["1000-01-01", "2020-01-01", "3000-06-01T12:00:00Z"]})
+    got = Interactions.from_frame(frame).frame.sort_values("item")["timestamp"].tolist()
+    utc = dt.timezone.utc
+    assert got == [dt.datetime(1000, 1, 1, tzinfo=utc).timestamp(), dt.datetime(2020, 1, 1, tzinfo=utc).timestamp(),
+                   dt.datetime(3000, 6, 1, 12, tzinfo=utc).timestamp()]
+    stamps = pd.Series(pd.to_datetime(["1000-01-01", "3000-01-01"]).as_unit("s"))
+    got = Interactions.from_frame(pd.DataFrame({"user": ["u", "u"], "item": ["a", "b"], "timestamp": stamps})).frame
+    assert got["timestamp"].tolist() == [dt.datetime(1000, 1, 1, tzinfo=utc).timestamp(), dt.datetime(3000, 1, 1, tzinfo=utc).timestamp()]
+    # A year pandas cannot hold at all is reported with its row, as the file holds it.
+    frame.loc[1, "timestamp"] = "10000-01-01"
+    with pytest.raises(DataError, match=r"1 row has a timestamp that is neither a number nor a date.*row 2: .*timestamp='10000-01-01'"):
+        Interactions.from_frame(frame)
+
+
+def test_a_date_pandas_refuses_to_convert_is_named_not_raised(monkeypatch):
+    # Whatever pandas' own range is, a date it raises OutOfBoundsDatetime for becomes a DataError naming the row.
+    real = pd.to_datetime
+
+    def refusing(values, *args, **kwargs):
+        if any(str(v).startswith("0999") for v in list(values)):
+            raise pd.errors.OutOfBoundsDatetime("Out of bounds nanosecond timestamp")
+        return real(values, *args, **kwargs)
+
+    monkeypatch.setattr(pd, "to_datetime", refusing)
+    frame = pd.DataFrame({"user": ["u", "u"], "item": ["a", "b"], "timestamp": ["2020-01-01", "0999-01-01"]})
+    with pytest.raises(DataError, match=r"1 row has a date in 'timestamp' outside the range pandas can represent: row 2: .*'0999-01-01'"):
+        Interactions.from_frame(frame)
+
+
+@pytest.mark.parametrize("bad", ["\ud800", b"u1"])
+@pytest.mark.parametrize("column", ["uid", "sku"])
+def test_ids_that_cannot_be_text_name_the_row(bad, column):
+    # Lone surrogates used to pass and then break the fingerprint (UnicodeEncodeError); bytes
+    # were silently turned into the text "b'u1'".
+    events = _events().astype({column: object})
+    events.loc[1, column] = bad
+    what = "user" if column == "uid" else "item"
+    with pytest.raises(DataError, match=rf"1 row has a {what} id that is not text.*row 2: {column}="):
+        Interactions.from_frame(events, user_col="uid", item_col="sku", time_col="ts")
+    items = _catalog_frame().astype({"sku": object, "name": object})
+    items.loc[2, "sku" if column == "sku" else "name"] = bad
+    with pytest.raises(DataError, match=r"1 row has an? (item id|value in 'name') that is not text.*row 3"):
+        _catalog(frame=items)
+
+
+def test_one_column_name_given_as_a_string_is_one_column():
+    # categorical="brand" used to be read as the columns ['b', 'r', 'a', 'n', 'd'].
+    frame = _catalog_frame()
+    cat = Catalog.from_frame(frame, item_col="sku", categorical="kind", text="name")
+    assert cat.schema.categorical == ("kind",) and cat.schema.text == ("name",)
+    with pytest.raises(ConfigError, match=r"categorical: a column name or a list of column names, got \['kind', 3\]"):
+        Catalog.from_frame(frame, item_col="sku", categorical=["kind", 3])
+
+
+def test_row_order_equals_numpys_lexsort_packed_or_not():
+    # Reference: numpy.lexsort (last key first) on (item, time, user); xrec packs the three into
+    # one int64 key when they fit, else sorts three times.
+    from xrec.data.interactions import _order
+
+    rng = np.random.default_rng(11)
+    users = rng.integers(0, 50, 3000).astype(np.int32)
+    times = rng.integers(0, 40, 3000).astype(float)
+    items = rng.permutation(3000).astype(np.int32)  # distinct, so (user, item) pairs are distinct
+    np.testing.assert_array_equal(_order(users, times, items), np.lexsort((items, times, users)))
+    wide = items.astype(np.int64) * 2**45  # too wide to pack into 63 bits
+    np.testing.assert_array_equal(_order(users, times, wide), np.lexsort((wide, times, users)))
+
+
+@pytest.mark.parametrize("chunk", [1, 3, 1_000_000])
+def test_interactions_fingerprint_is_the_documented_sha256_whatever_the_chunking(monkeypatch, chunk):
+    # Reference: hashlib.sha256 over the documented bytes (ids joined by "\x1f", then float64
+    # times and float32 weights); xrec feeds the ids in chunks to bound memory.
+    import hashlib
+
+    import xrec.data.interactions
+
+    monkeypatch.setattr(xrec.data.interactions, "_HASH_CHUNK", chunk)
+    inter = Interactions.from_frame(_events(), user_col="uid", item_col="sku", time_col="ts", weight_col="stars")
+    f = inter.frame
+    h = hashlib.sha256()
+    for col in ("user", "item"):
+        h.update("\x1f".join(f[col].tolist()).encode())
+    h.update(f["timestamp"].to_numpy("float64").tobytes())
+    h.update(f["weight"].to_numpy("float32").tobytes())
+    assert inter.fingerprint() == h.hexdigest()[:16]

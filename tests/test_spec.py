@@ -180,3 +180,36 @@ def test_only_fits_and_evaluates_one_scorer_and_what_it_blends(tmp_path, monkeyp
     assert set(run_experiment(spec, only="kind").scorecards) == {"kind"} and fitted == ["kind"]
     with pytest.raises(ConfigError, match="no source or blend named 'mixx'"):
         run_experiment(spec, only="mixx")
+
+
+def test_a_spec_path_that_is_a_folder_or_device_is_said_for_what_it_is(tmp_path):
+    # Used to read "no spec file ... and no built-in spec of that name" for both.
+    with pytest.raises(ConfigError, match="is a folder, not a spec file") as err:
+        load_spec(tmp_path)
+    assert "no spec file" not in str(err.value)
+    with pytest.raises(ConfigError, match="/dev/null is a character device"):
+        load_spec("/dev/null")
+
+
+def test_files_spec_reads_na_as_text_one_column_names_and_says_what_a_path_is(tmp_path):
+    # Before: "NA"/"null"/"None" brands were read as missing and refused (the message showed nan),
+    # categorical = "brand" became the columns ['b','r','a','n','d'], and a folder given as the
+    # catalog was reported as "file not found".
+    from xrec.experiment import load_spec_dataset
+
+    spec = _tiny_files(tmp_path, ["a", "b", "c", "d", "e"])
+    pd.DataFrame({"item": list("abcde"), "brand": ["NA", "null", "None", "acme", "NA"]}).to_csv(tmp_path / "items.csv", index=False)
+    text = spec.read_text(encoding="utf-8").replace('interactions = "events.csv"\n', 'interactions = "events.csv"\ncategorical = "brand"\n')
+    spec.write_text(text, encoding="utf-8")
+    dataset = load_spec_dataset(load_spec(spec))
+    assert dataset.catalog.schema.categorical == ("brand",)
+    assert dataset.catalog.items["brand"].tolist() == ["NA", "null", "None", "acme", "NA"]
+    (tmp_path / "items.csv").write_text("item,brand\na,NA\nb,\n", encoding="utf-8")
+    with pytest.raises(DataError, match=r"row 2: item='b', brand=<empty>") as err:
+        load_spec_dataset(load_spec(spec))
+    assert "nan" not in str(err.value)
+    (tmp_path / "items.csv").unlink()
+    (tmp_path / "items.csv").mkdir()
+    with pytest.raises(ConfigError, match="is a folder") as err:
+        load_spec_dataset(load_spec(spec))
+    assert "not found" not in str(err.value)

@@ -8,7 +8,7 @@ The main names are re-exported here; each subpackage documents its own:
 
 from xrec.blend import Blend, CombMNZ, CombSum, ReciprocalRankFusion
 from xrec.blendfile import read_blend, save_blend
-from xrec.data import Catalog, CatalogSchema, Dataset, Interactions, load_movielens
+from xrec.data import Catalog, CatalogSchema, Dataset, Interactions, load_movielens, read_catalog, read_interactions
 from xrec.data.demo import load_demo_shop
 from xrec.errors import ConfigError, DataError, FingerprintMismatch, NotFittedError, XrecError
 # The evaluate() function is not re-exported: the name is the xrec.evaluate subpackage.
@@ -49,6 +49,8 @@ __all__ = [
     "load_movielens",
     "make_source",
     "read_blend",
+    "read_catalog",
+    "read_interactions",
     "save_blend",
     "source_kinds",
     "split_dataset",

@@ -69,7 +69,7 @@ def _cmd_export(args: argparse.Namespace) -> int:
 
 def _cmd_recommend(args: argparse.Namespace) -> int:
     from xrec.errors import ConfigError
-    from xrec.experiment import runtime_for_blend_file
+    from xrec.runtime import runtime_for_blend_file
 
     if args.k < 1:  # checked before the refit, which can take a while
         raise ConfigError(f"-k: must be at least 1, got {args.k}")
@@ -159,7 +159,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("-k", type=int, default=10, help="list length (default: %(default)s)")
     p.add_argument("--unknown", choices=("error", "popular"), default="error",
                    help="a user the blend file does not know: an error, or the most popular items (default: %(default)s)")
-    p.add_argument("--data", default=None, help="folder the data moved to (a MovieLens or demo-shop folder, or the one holding the CSV files), when it is not where the blend file records")
+    p.add_argument("--data", default=None, help="folder the data moved to (a MovieLens or demo-shop folder, or the one holding the data files), when it is not where the blend file records")
     common(p)
     p.set_defaults(func=_cmd_recommend)
     return parser

@@ -9,67 +9,15 @@ from typing import Any
 import pandas as pd
 
 from xrec.data.dataset import Dataset
-from xrec.errors import ConfigError, DataError
+from xrec.data.location import load_dataset
+from xrec.errors import ConfigError
 from xrec.spec import ExperimentSpec
 from xrec.sources.base import Source, make_source
 
 
 def load_spec_dataset(spec: ExperimentSpec, *, progress: bool = False) -> Dataset:
-    """The dataset a spec names."""
-    data = spec.data
-    kind = data.get("dataset", "movielens")
-    if kind == "movielens":
-        from xrec.data.movielens import load_movielens
-
-        folder = data.get("folder")
-        return load_movielens(spec.resolve(folder) if folder else None, progress=progress)
-    if kind == "demo_shop":
-        from xrec.data.demo import load_demo_shop
-
-        folder = data.get("folder")
-        return load_demo_shop(spec.resolve(folder) if folder else None)
-    return _load_files(spec)
-
-
-def _load_files(spec: ExperimentSpec) -> Dataset:
-    from xrec.data.catalog import Catalog
-    from xrec.data.interactions import Interactions
-
-    data = spec.data
-    catalog_path, inter_path = spec.resolve(data["catalog"]), spec.resolve(data["interactions"])
-    for key, p in (("catalog", catalog_path), ("interactions", inter_path)):
-        if not p.is_file():
-            raise ConfigError(f"data.{key}: file not found: {p}")
-    item_col = data.get("item_col", "item")
-    catalog = Catalog.from_frame(
-        # Ids are read as text in both files, else "007" in the catalog would become 7 and
-        # no longer match the interactions' "007".
-        _read_csv(catalog_path, "catalog", {item_col: str}),
-        item_col=data.get("item_col", "item"),
-        categorical=data.get("categorical", ()),
-        multilabel=data.get("multilabel", ()),
-        numeric=data.get("numeric", ()),
-        text=data.get("text", ()),
-        image=data.get("image"),
-        image_root=spec.resolve(data.get("image_root", str(catalog_path.parent))),
-    )
-    frame = _read_csv(inter_path, "interactions", {data.get("user_col", "user"): str, item_col: str})
-    interactions = Interactions.from_frame(
-        frame,
-        user_col=data.get("user_col", "user"),
-        item_col=data.get("item_col", "item"),
-        time_col=data.get("time_col", "timestamp"),
-        weight_col=data.get("weight_col"),
-        catalog=catalog,
-    )
-    return Dataset(catalog, interactions, name=data.get("name", catalog_path.stem))
-
-
-def _read_csv(path: Path, key: str, dtype: dict[str, type]) -> pd.DataFrame:
-    try:
-        return pd.read_csv(path, dtype=dtype)
-    except (pd.errors.EmptyDataError, pd.errors.ParserError, UnicodeDecodeError) as exc:
-        raise DataError(f"data.{key}: cannot read {path} as CSV: {exc}") from exc
+    """The dataset a spec names (:func:`xrec.data.location.load_dataset` of ``spec.data``)."""
+    return load_dataset(spec.data, progress=progress)
 
 
 def build_sources(spec: ExperimentSpec, *, progress: bool = False) -> dict[str, Source]:
@@ -289,12 +237,9 @@ def _scorer_for(result: ExperimentResult, name: str | None):
 
 
 def data_hints(spec: ExperimentSpec) -> dict[str, Any]:
-    """The spec's ``[data]`` table with paths made absolute, so a blend file can find its data again."""
-    hints = dict(spec.data)
-    for key in ("folder", "catalog", "interactions", "image_root"):
-        if isinstance(hints.get(key), str):
-            hints[key] = str(spec.resolve(hints[key]).resolve())
-    return hints
+    """The spec's data location with paths made absolute, so a blend file can find its data again
+    (:meth:`xrec.data.location.DataLocation.to_hints`)."""
+    return spec.data.to_hints()
 
 
 def evidence_summary(result: ExperimentResult, name: str) -> dict[str, Any]:
@@ -343,7 +288,7 @@ def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progre
     # only each spec's primary scorer (and the sources it blends) is fitted and evaluated
     base = run_experiment(baseline, progress=progress, only=baseline.primary)
     # Relative paths are compared resolved: the same "items.csv" next to two specs may be two files.
-    same_data = data_hints(baseline) == data_hints(candidate)
+    same_data = baseline.data.same_data(candidate.data)
     cand = run_experiment(candidate, progress=progress, dataset=base.dataset if same_data else None, only=candidate.primary)
     if base.dataset.fingerprint() != cand.dataset.fingerprint():
         raise ConfigError("the two specs read different data (dataset fingerprints differ); a paired comparison needs the same data")
@@ -360,22 +305,7 @@ def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progre
 
 
 def runtime_for_blend_file(path: str | Path, *, data_folder: str | None = None, progress: bool = False):
-    """Load a blend file with the data its ``[dataset.load]`` hints name (or ``data_folder``)."""
-    from xrec.blendfile import read_blend
-    from xrec.runtime import load_blend
-    from xrec.spec import parse_spec
+    """Load a blend file with the data it records (see :func:`xrec.runtime.runtime_for_blend_file`)."""
+    from xrec.runtime import runtime_for_blend_file as load
 
-    blend_spec = read_blend(path)
-    hints = dict(blend_spec.dataset_load or {})
-    if not hints:
-        raise ConfigError(f"{path}: the blend file records no [dataset.load] hints; load it from Python with xrec.runtime.load_blend(path, dataset)")
-    if data_folder is not None:
-        hints["folder"] = data_folder
-        if hints.get("dataset") == "files":
-            # CSV files take no folder: look for the recorded file names in the given one.
-            for key in ("catalog", "interactions", "image_root"):
-                if isinstance(hints.get(key), str):
-                    hints[key] = str(Path(data_folder) / Path(hints[key]).name)
-    spec = parse_spec({"data": hints, "sources": {"_": {"kind": "popularity"}}})
-    dataset = load_spec_dataset(spec, progress=progress)
-    return load_blend(path, dataset, progress=progress)
+    return load(path, data_folder=data_folder, progress=progress)

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import os
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -21,6 +22,7 @@ import scipy.sparse as sp
 from xrec._validation import check_int
 from xrec.blendfile import BlendSpec, ranking_digest, read_blend
 from xrec.data.dataset import Dataset
+from xrec.data.location import DataLocation, load_dataset
 from xrec.errors import ConfigError, DataError, FingerprintMismatch
 from xrec.evaluate._ranking import top_k_items
 from xrec.fold import Fold
@@ -180,6 +182,38 @@ def load_blend(path: str | os.PathLike, dataset: Dataset, *, progress: bool = Fa
                 "(load_blend(..., verify=False) serves anyway)"
             )
     return BlendRuntime(spec=spec, dataset=dataset, fold=fold, scorer=scorer)
+
+
+def runtime_for_blend_file(
+    path: str | os.PathLike, *, data_folder: str | os.PathLike | None = None, progress: bool = False
+) -> BlendRuntime:
+    """Load a blend file with the data its ``[dataset.load]`` table records (or found in ``data_folder``).
+
+    Parameters
+    ----------
+    path
+        A blend file written by ``xrec export`` (which records where its data lives).
+    data_folder
+        Look for the data here instead (the data was moved): see
+        :meth:`~xrec.data.location.DataLocation.with_folder`. The folder also becomes the one
+        the data must lie inside.
+    progress
+        Show progress bars while the data is read and the sources are fitted.
+
+    Raises
+    ------
+    ConfigError
+        The file records no data location, or the location is unusable (missing files, ...).
+    """
+    spec = read_blend(path)
+    if not spec.dataset_load:
+        raise ConfigError(
+            f"{path}: the blend file records no [dataset.load] table; load it from Python with xrec.runtime.load_blend(path, dataset)"
+        )
+    location = DataLocation.from_hints(spec.dataset_load)
+    if data_folder is not None:
+        location = location.with_folder(Path(data_folder))
+    return load_blend(path, load_dataset(location, progress=progress), progress=progress)
 
 
 def _fit(scorer: Any, fold: Fold, progress: bool) -> Any:

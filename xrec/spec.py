@@ -46,13 +46,29 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     [blends.rrf]                 # a tuning-free fusion rule
     fusion = "rrf"               # rrf (k = 60) | combsum | combmnz (depth = 100)
 
-For ``dataset = "files"`` the ``[data]`` table also takes ``catalog`` and
-``interactions`` (CSV paths, relative to the spec file) and the column
-declarations ``item_col``, ``user_col``, ``time_col``, ``weight_col``,
-``categorical``, ``multilabel``, ``numeric``, ``text``, ``image``, ``image_root`` and
-``name`` (defaults: ``item_col = "item"``, ``user_col = "user"``,
-``time_col = "timestamp"``, images relative to the catalog's folder, name = the catalog
-file's stem).
+The ``[data]`` table is checked by :class:`xrec.data.location.DataLocation` (its module
+docstring lists every key). For ``dataset = "files"`` it names the catalog and interactions
+files, CSV or Parquet by extension, relative to the spec file, and maps your column names
+onto xrec's::
+
+    [data]
+    dataset = "files"
+    catalog = "items.parquet"        # .csv, .tsv (optionally .gz, .zip, ...), .parquet, .pq
+    interactions = "events.csv"
+    item_col = "sku"                 # default "item"
+    user_col = "customer"            # default "user"
+    time_col = "ts"                  # default "timestamp": numbers (seconds) or dates
+    weight_col = "quantity"          # optional
+    categorical = ["brand", "type"]  # or one name: categorical = "brand"
+    text = ["title", "description"]
+    image = "picture"                # relative paths read from image_root (default: the catalog's folder)
+    # name = "shop"                  # default: the catalog file's name without extension
+    # allow_outside = true           # read data from outside this spec's folder
+
+In CSV files only an empty field is a missing value (``NA``, ``null`` and ``None`` are text).
+Data paths, and the catalog's image paths, must lie inside the spec file's folder (also after
+following ``..`` and symbolic links) unless ``allow_outside = true``; values from files outside it are never quoted in
+error messages.
 """
 
 from __future__ import annotations
@@ -63,13 +79,10 @@ from pathlib import Path
 from typing import Any
 
 from xrec._validation import check_int
+from xrec.data._readers import path_problem
+from xrec.data.location import DataLocation
 from xrec.errors import ConfigError
 
-_DATASETS = ("movielens", "demo_shop", "files")
-_DATA_KEYS = {
-    "dataset", "folder", "catalog", "interactions", "item_col", "user_col", "time_col", "weight_col",
-    "categorical", "multilabel", "numeric", "text", "image", "image_root", "name",
-}
 _SPLIT_KEYS = {"rule", "seed", "validation", "test_fraction", "cutoff", "cold_fraction", "min_train", "new_share", "cold_users"}
 _EVAL_KEYS = {
     "ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size",
@@ -83,9 +96,12 @@ _TOP_KEYS = {"data", "split", "evaluate", "sources", "blends", "name"}
 
 @dataclass
 class ExperimentSpec:
-    """A validated experiment spec (see the module docstring for the file format)."""
+    """A validated experiment spec (see the module docstring for the file format).
 
-    data: dict[str, Any]
+    ``data`` is the checked ``[data]`` table: where the dataset lives, read from ``base_dir``.
+    """
+
+    data: DataLocation
     split: dict[str, Any] = field(default_factory=dict)
     evaluate: dict[str, Any] = field(default_factory=dict)
     sources: dict[str, dict[str, Any]] = field(default_factory=dict)
@@ -184,15 +200,8 @@ def _check_blend(table: dict, where: str, sources: dict, *, learning_allowed: bo
 def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentSpec:
     """Validate a spec already read into a dict; errors name the offending field."""
     _check_keys(raw, _TOP_KEYS, "spec")
-    data = _check_table(raw.get("data", {}), "data")
-    _check_keys(data, _DATA_KEYS, "data")
-    dataset = data.get("dataset", "movielens")
-    if dataset not in _DATASETS:
-        raise ConfigError(f"data.dataset: must be one of {list(_DATASETS)}, got {dataset!r}")
-    if dataset == "files":
-        for key in ("catalog", "interactions"):
-            if not isinstance(data.get(key), str):
-                raise ConfigError(f"data.{key}: a CSV path is required when data.dataset = 'files'")
+    base_dir = base_dir or Path.cwd()
+    data = DataLocation.from_table(raw.get("data", {}), base_dir)
     split = _check_table(raw.get("split", {}), "split")
     _check_keys(split, _SPLIT_KEYS, "split")
     evaluate = _check_table(raw.get("evaluate", {}), "evaluate")
@@ -232,6 +241,8 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
         _check_blend(table, where, sources, learning_allowed=split.get("validation", True))
     for key in ("baseline", "primary"):
         value = evaluate.get(key)
+        if value is not None and not isinstance(value, str):
+            raise ConfigError(f"evaluate.{key}: the name of a source or blend, got {value!r}")
         if value is not None and value not in sources and value not in blends:
             raise ConfigError(f"evaluate.{key}: {value!r} is neither a source nor a blend")
     return ExperimentSpec(
@@ -241,7 +252,7 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
         sources={k: dict(v) for k, v in sources.items()},
         blends={k: dict(v) for k, v in blends.items()},
         name=str(raw.get("name", "experiment")),
-        base_dir=base_dir or Path.cwd(),
+        base_dir=base_dir,
     )
 
 
@@ -260,10 +271,14 @@ def load_spec(path_or_name: str | Path) -> ExperimentSpec:
         builtin = BUILTIN_DIR / f"{path_or_name}.toml"
         if builtin.is_file():
             path = builtin
+        elif path.exists():  # a folder, a device such as /dev/null, ...: say what it is
+            raise ConfigError(f"spec: {path_problem(path, 'spec file')}")
         else:
             raise ConfigError(f"no spec file {str(path_or_name)!r} and no built-in spec of that name; built-in: {builtin_specs()}")
     try:
         raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"{path}: not UTF-8 text (byte {exc.start} cannot be decoded); a spec file is UTF-8 TOML") from None
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{path}: not valid TOML: {exc}") from exc
     base = path.parent if path.parent != BUILTIN_DIR else Path.cwd()

@@ -10,10 +10,12 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from xrec.data._report import raise_if_any
+from xrec.data._columns import column_name, column_names
+from xrec.data._report import raise_if_any, unstorable_text_mask
 from xrec.errors import DataError
 
 ITEM = "item"
+_NOT_TEXT = "have {} that is not text (bytes, or a lone surrogate)"
 
 
 @dataclass(frozen=True)
@@ -92,10 +94,10 @@ class Catalog:
         frame: pd.DataFrame,
         *,
         item_col: str = "item",
-        categorical: Sequence[str] = (),
-        multilabel: Sequence[str] = (),
-        numeric: Sequence[str] = (),
-        text: Sequence[str] = (),
+        categorical: str | Sequence[str] = (),
+        multilabel: str | Sequence[str] = (),
+        numeric: str | Sequence[str] = (),
+        text: str | Sequence[str] = (),
         image: str | None = None,
         image_root: str | Path | None = None,
         multilabel_sep: str = "|",
@@ -110,7 +112,8 @@ class Catalog:
         item_col
             Column of item ids (stored as str, renamed ``item``).
         categorical, multilabel, numeric, text, image
-            Columns per modality (see :class:`CatalogSchema`). Multilabel cells may be
+            Columns per modality (see :class:`CatalogSchema`): a list of names, or one name as a
+            string (``categorical="brand"`` is the column ``brand``). Multilabel cells may be
             ``multilabel_sep``-joined strings (``"a|b|c"``) or lists; labels are stored as sorted tuples.
         image_root
             Folder that relative image paths are read from.
@@ -123,14 +126,25 @@ class Catalog:
         ------
         DataError
             On an empty frame, a column declared twice, missing declared columns, duplicate
-            or missing item ids, non-numeric, NaN or infinite values in numeric columns,
-            missing categorical values, non-string text, or missing image files.
+            or missing item ids, ids or text that cannot be stored as text (``bytes``, lone
+            surrogates), non-numeric, missing or infinite values in numeric columns, missing
+            categorical values, non-string text, or missing image files. Messages name the
+            rows, numbered from 1.
+        ConfigError
+            A column declaration is not a name or a list of names.
         """
         if not isinstance(frame, pd.DataFrame):
             raise DataError(f"catalog must be a pandas DataFrame, got {type(frame).__name__}")
         if frame.empty:
             raise DataError("catalog is empty: it needs at least one item")
-        schema = CatalogSchema(tuple(categorical), tuple(multilabel), tuple(numeric), tuple(text), image)
+        item_col = column_name(item_col, "item_col")
+        schema = CatalogSchema(
+            column_names(categorical, "categorical"),
+            column_names(multilabel, "multilabel"),
+            column_names(numeric, "numeric"),
+            column_names(text, "text"),
+            column_name(image, "image", optional=True),
+        )
         declared = (item_col, *schema.columns)
         dupes = sorted({c for c in declared if declared.count(c) > 1})
         if dupes:
@@ -138,14 +152,22 @@ class Catalog:
         missing = [c for c in declared if c not in frame.columns]
         if missing:
             raise DataError(f"catalog lacks declared columns {missing}; it has {list(frame.columns)}")
+        if item_col != ITEM and ITEM in frame.columns:
+            raise DataError(f"catalog: column {ITEM!r} would clash with the item ids of {item_col!r} (stored as {ITEM!r}); rename or drop it")
+        repeated = sorted({str(c) for c in frame.columns if list(frame.columns).count(c) > 1})
+        if repeated:
+            raise DataError(f"catalog: columns {repeated} appear more than once")
         items = frame.reset_index(drop=True).copy()
         raise_if_any(items, items[item_col].isna(), "have no item id", [item_col], "catalog")
+        raise_if_any(items, unstorable_text_mask(items[item_col]), _NOT_TEXT.format("an item id"), [item_col], "catalog")
+        for col in (*schema.categorical, *schema.multilabel, *schema.text, *([schema.image] if schema.image else [])):
+            raise_if_any(items, unstorable_text_mask(items[col]), _NOT_TEXT.format(f"a value in {col!r}"), [item_col, col], "catalog")
         items[item_col] = items[item_col].astype(str)
         raise_if_any(items, items[item_col].duplicated(keep=False), "share an item id", [item_col], "catalog")
         for col in schema.numeric:
             values = pd.to_numeric(items[col], errors="coerce")
             raise_if_any(items, values.isna() & items[col].notna(), f"have a non-numeric {col!r}", [item_col, col], "catalog")
-            raise_if_any(items, values.isna(), f"have NaN in numeric column {col!r}", [item_col, col], "catalog")
+            raise_if_any(items, values.isna(), f"have a missing or NaN value in numeric column {col!r}", [item_col, col], "catalog")
             raise_if_any(items, np.isinf(values.to_numpy(dtype="float64")), f"have an infinite value in numeric column {col!r}", [item_col, col], "catalog")
             items[col] = values.astype("float64")
         for col in schema.categorical:

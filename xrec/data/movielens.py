@@ -16,6 +16,7 @@ import numpy as np
 import pandas as pd
 from tqdm.auto import tqdm
 
+from xrec.data._report import values_hidden
 from xrec.data.catalog import Catalog
 from xrec.data.dataset import Dataset
 from xrec.data.interactions import Interactions
@@ -95,12 +96,15 @@ def load_movielens(folder: str | Path | None = None, *, progress: bool = False) 
     if not root.is_dir():
         raise DataError(f"MovieLens folder {str(root)!r} does not exist or is not a folder")
     root, layout = _find_layout(root)
-    if layout == "ml-latest":
-        movies, ratings = _read_latest(root, progress)
-    elif layout == "ml-1m":
-        movies, ratings = _read_1m(root, progress)
-    else:
-        movies, ratings = _read_100k(root, progress)
+    reader = {"ml-latest": _read_latest, "ml-1m": _read_1m}.get(layout, _read_100k)
+    try:
+        movies, ratings = reader(root, progress)
+    except DataError:
+        raise
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, ValueError, OSError) as exc:
+        # The parser's own message may quote the file; it is left out when values are hidden.
+        detail = "" if values_hidden() else f": {str(exc).strip() or type(exc).__name__}"
+        raise DataError(f"MovieLens folder {str(root)!r} ({layout} layout): a file cannot be read{detail}") from None
     name = root.name if root.name.startswith("ml-") else layout
     return _build(movies, ratings, f"movielens-{name}", root)
 
