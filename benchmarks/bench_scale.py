@@ -17,7 +17,10 @@ import this module, add its own engines and call ``main()``; the per-case subpro
 that script, so its engines exist there too): ``evaluate-blend`` (the general path,
 ``evaluate(Blend(...), fold)``, as a baseline), ``chunked`` (full ranking, :func:`evaluate_blend_chunked`,
 one worker thread per CPU), ``chunked-1`` (one thread), ``candidates-faiss`` and
-``candidates-numpy`` (:func:`evaluate_candidates`, top-100 per source), ``dask-1`` and
+``candidates-numpy`` (:func:`evaluate_candidates`, top-100 per source), ``screen``
+(:func:`evaluate_screened`; its lists are built once per catalog, so only the rest is
+extrapolated), ``screen-vs-full`` (in ONE process: full ranking on the sample, the
+screen on every user, metrics compared on the sample, speed-up reported), ``dask-1`` and
 ``dask-2`` (:func:`evaluate_blend_sharded`: the chunked evaluation sharded by users over a
 Dask LocalCluster of 1 or 2 single-thread worker processes; ``wall_s`` includes starting
 the cluster, reported apart with the sharded evaluation's own time; the RSS columns are
@@ -66,7 +69,7 @@ GROWTH = ("grow-1", "grow-2", "grow-3", "grow-4", "ml-20m")
 #: engines run per case when --engines is not given (others: ["chunked"])
 DEFAULT_ENGINES = {
     "ml-1m": ["evaluate-blend", "chunked", "chunked-1"],
-    "catalog-1m": ["chunked", "candidates-faiss", "candidates-numpy"],
+    "catalog-1m": ["chunked", "candidates-numpy", "screen", "screen-vs-full"],
     "ml-20m": ["chunked", "dask-1", "dask-2"],
 }
 
@@ -100,6 +103,69 @@ def _candidates(backend: str, top_n: int = 100) -> Callable:
         }
 
     return run
+
+
+def _screen_summary(res, n_users: int, n_eval: int, wall: float) -> dict:
+    lists_s = res.settings["lists_s"]
+    return {
+        "ranked_in_full_share": res.certified_share,
+        "exact_share@10": res.exact_share(10),
+        "ndcg@10": float(res.per_user["ndcg@10"].mean()),
+        "lists_s": lists_s,
+        "n_lists": res.settings["n_lists"],
+        "probes": res.settings["probes"],
+        # The lists are built once per catalog; only the rest grows with the users.
+        "wall_all_users_s": lists_s + (wall - lists_s) * n_users / n_eval,
+    }
+
+
+def _screen(problem, users, case):
+    """:func:`evaluate_screened` on the case's users (lists built once, then extrapolated)."""
+    import time
+
+    from xrec.evaluate import evaluate_screened
+
+    t0 = time.perf_counter()
+    res = evaluate_screened(problem.sources, problem.weights, problem.train, problem.heldout, users=users, ks=KS)
+    wall = time.perf_counter() - t0
+    n_eval = problem.n_users if users is None else len(users)
+    return _screen_summary(res, problem.n_users, n_eval, wall)
+
+
+def _screen_vs_full(problem, users, case):
+    """Full ranking on the sample and the screen on EVERY user, in one process.
+
+    The screen's time for all users is measured, not extrapolated; the full ranking's is
+    extrapolated from the sample (all users would take half an hour); the per-user metrics
+    of the sample must be equal (checked here).
+    """
+    import time
+
+    from xrec.evaluate import evaluate_blend_chunked, evaluate_screened
+
+    sample = np.arange(problem.n_users) if users is None else users
+    t0 = time.perf_counter()
+    card = evaluate_blend_chunked(problem.sources, problem.weights, problem.train, problem.heldout, users=sample, ks=KS)
+    full_s = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    res = evaluate_screened(problem.sources, problem.weights, problem.train, problem.heldout, ks=KS)
+    screen_s = time.perf_counter() - t0
+    cols = [c for c in card.per_user.columns if c != "user"]
+    mine = res.per_user.set_index("user").loc[sample, cols].to_numpy()
+    full_all = full_s * problem.n_users / len(sample)
+    return {
+        "wall_all_users_s": None,  # two engines in this row: see the fields below
+        "full_sample_users": len(sample),
+        "full_sample_s": full_s,
+        "full_all_users_s": full_all,
+        "screen_all_users_s": screen_s,
+        "speedup": full_all / screen_s,
+        "equal_on_sample": bool(np.array_equal(mine, card.per_user[cols].to_numpy())),
+        "ranked_in_full_share": res.certified_share,
+        "exact_share@10": res.exact_share(10),
+        "lists_s": res.settings["lists_s"],
+        "ndcg@10": float(res.per_user["ndcg@10"].mean()),
+    }
 
 
 def _evaluate_blend(problem, users, case):
@@ -145,6 +211,8 @@ ENGINES: dict[str, Callable] = {
     "chunked-1": _chunked(1),
     "candidates-faiss": _candidates("faiss"),
     "candidates-numpy": _candidates("numpy"),
+    "screen": _screen,
+    "screen-vs-full": _screen_vs_full,
     "dask-1": _dask(1),
     "dask-2": _dask(2),
 }
@@ -237,8 +305,16 @@ def to_markdown(rows: list[dict], exponents: dict[str, float | None]) -> str:
     ]
     for r in rows:
         notes = [f"load {r['load_1min']:.1f}"]
-        if "wall_all_users_s" in r:
+        if r.get("wall_all_users_s") is not None:
             notes.append(f"all {r['users']:,} users ≈ {r['wall_all_users_s']:,.0f} s (extrapolated)")
+        if "speedup" in r:
+            notes.append(
+                f"one process: full ranking of {r['full_sample_users']:,} users {r['full_sample_s']:.1f} s → all users ≈ "
+                f"{r['full_all_users_s']:,.0f} s (extrapolated); screen of ALL users {r['screen_all_users_s']:.1f} s (measured, "
+                f"lists {r['lists_s']:.1f} s): **{r['speedup']:.1f}× faster**; metrics equal on the sample: {r['equal_on_sample']}"
+            )
+        if "ranked_in_full_share" in r:
+            notes.append(f"screen: ranked in full {r['ranked_in_full_share']:.1%}, exact@10 {r['exact_share@10']:.1%}, lists {r['lists_s']:.1f} s")
         if "certified_share" in r:
             notes.append(f"top-{r['top_n']}: certified {r['certified_share']:.1%}, exact@10 {r['exact_share@10']:.1%}")
         if "cluster_start_s" in r:

@@ -134,6 +134,20 @@ def _fold(catalog: Catalog, heldout_seed: int = 0) -> Fold:
     )
 
 
+def _own_files(cache: str) -> Path:
+    """Seeded item vectors (.npy + ids) and a ranking file (CSV) beside the cache folder, written once."""
+    folder = Path(cache).parent / "own_files"
+    if not folder.is_dir():
+        folder.mkdir(parents=True)
+        rng = np.random.default_rng(7)
+        order = rng.permutation(N_ITEMS)
+        np.save(folder / "vectors.npy", rng.standard_normal((N_ITEMS, 5)).astype(np.float32))
+        (folder / "ids.txt").write_text("\n".join(f"i{j}" for j in order), encoding="utf-8")
+        rows = [(f"u{u}", f"i{j}", float(s)) for u in range(N_USERS - 2) for s, j in enumerate(rng.permutation(N_ITEMS)[:4])]
+        pd.DataFrame(rows, columns=["user", "item", "rank"]).to_csv(folder / "ranking.csv", index=False)
+    return folder
+
+
 # kind -> (cache folder -> unfitted source with small, fast settings)
 FACTORIES: dict[str, Callable[[str], Source]] = {
     "popularity": lambda cache: make_source("popularity"),
@@ -148,6 +162,10 @@ FACTORIES: dict[str, Callable[[str], Source]] = {
     "mapped_factors": lambda cache: make_source(
         "mapped_factors", modalities=["attributes", "text"], als={"factors": 4, "iterations": 5, "num_threads": 1}, cache_dir=cache
     ),
+    "vectors": lambda cache: make_source(
+        "vectors", path=str(_own_files(cache) / "vectors.npy"), ids=str(_own_files(cache) / "ids.txt"), center=True
+    ),
+    "ranking": lambda cache: make_source("ranking", path=str(_own_files(cache) / "ranking.csv"), depth=3),
 }
 
 

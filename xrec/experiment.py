@@ -33,6 +33,8 @@ def build_sources(spec: ExperimentSpec, *, progress: bool = False) -> dict[str, 
     for name, table in spec.sources.items():
         settings = {k: v for k, v in table.items() if k != "kind"}
         cls = source_class(table["kind"])
+        if cls is not None:  # file paths in a spec are relative to the spec file
+            settings = cls.resolve_paths(settings, spec.resolve)
         if progress and cls is not None and "progress" in setting_names(cls):
             settings.setdefault("progress", True)
         try:

@@ -46,6 +46,17 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     [blends.rrf]                 # a tuning-free fusion rule
     fusion = "rrf"               # rrf (k = 60) | combsum | combmnz (depth = 100)
 
+Source kinds (``kind`` in ``[sources.NAME]``; the other keys are the source class's
+settings): ``popularity``, ``als``, ``bpr``, ``item_knn``, ``attributes``, ``text``,
+``image``, ``cross_modal``, ``early_fusion``, ``vectors`` (your item vectors from
+``.npy`` + id file, Parquet or ``.safetensors``: :class:`xrec.sources.VectorSource`) and
+``ranking`` (your current ranking from CSV or Parquet: :class:`xrec.sources.RankingSource`),
+for example::
+
+    [sources.current]
+    kind = "ranking"
+    path = "current.csv"         # relative to the spec file, like every file setting
+
 The ``[data]`` table is checked by :class:`xrec.data.location.DataLocation` (its module
 docstring lists every key). For ``dataset = "files"`` it names the catalog and interactions
 files, CSV or Parquet by extension, relative to the spec file, and maps your column names

@@ -3,6 +3,7 @@
 from xrec.evaluate._candidates import CandidateEvaluation, evaluate_candidates, top_n_items
 from xrec.evaluate._chunked import evaluate_blend_chunked
 from xrec.evaluate._metrics import ALL_METRICS, metrics_from_ranks
+from xrec.evaluate._screen import evaluate_screened
 from xrec.evaluate._ranking import UNRANKED, BlockRanks, count_at_least, rank_heldout, top_k_items
 from xrec.evaluate.compare import Comparison, compare
 from xrec.evaluate.evaluator import as_score_fn, evaluate, evaluate_blocks
@@ -29,6 +30,7 @@ __all__ = [
     "evaluate_blocks_sharded",
     "evaluate_sharded",
     "evaluate_candidates",
+    "evaluate_screened",
     "metrics_from_ranks",
     "rank_heldout",
     "top_k_items",

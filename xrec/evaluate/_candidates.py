@@ -41,7 +41,7 @@ next to their share: a bound is never presented as a measurement.
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -147,7 +147,11 @@ class CandidateEvaluation:
         else a lower bound; :data:`~xrec.evaluate.UNRANKED` for items seen in training),
         ``certified``, ``union_size`` (candidates ranked for that user).
     ks, top_n, n_items, backend, name
-        Settings of the run.
+        Settings of the run (``backend`` ``"screen"`` and ``top_n`` 0 for
+        :func:`~xrec.evaluate.evaluate_screened`, whose ``union_size`` counts the items
+        scored for the user).
+    settings
+        Further counts of the run (the screen's lists, probes and users ranked in full).
     """
 
     per_user: pd.DataFrame
@@ -157,6 +161,7 @@ class CandidateEvaluation:
     n_items: int
     backend: str
     name: str = "blend"
+    settings: dict = field(default_factory=dict)
 
     @property
     def certified_share(self) -> float:
@@ -355,6 +360,12 @@ def evaluate_candidates(
         return out
 
     parts = run_chunks(work, len(users), int(chunk_size), threads, name, progress)
+    per_user, ranks = collect_parts(parts, users, ks, metrics)
+    return CandidateEvaluation(per_user, ranks, ks, top_n, n_items, backend, name)
+
+
+def collect_parts(parts: list[dict], users: np.ndarray, ks: tuple[int, ...], metrics: tuple[str, ...]) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Per-user and per-held-out-item frames of a candidate run from its chunks' outputs."""
     columns: dict[str, np.ndarray] = {"user": users, "certified": np.concatenate([p["certified"] for p in parts])}
     for k in ks:
         columns[f"exact@{k}"] = np.concatenate([p[f"exact@{k}"] for p in parts])
@@ -371,4 +382,4 @@ def evaluate_candidates(
             "union_size": np.concatenate([p["_size"] for p in parts]),
         }
     )
-    return CandidateEvaluation(pd.DataFrame(columns), ranks, ks, top_n, n_items, backend, name)
+    return pd.DataFrame(columns), ranks

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import inspect
+from collections.abc import Callable, Mapping
 from abc import ABC, abstractmethod
 from typing import Any, ClassVar, Self
 
@@ -25,6 +26,9 @@ class Source(ABC):
     """
 
     kind: ClassVar[str] = ""
+    #: settings that hold file paths (a path, a table with "path" / "ids" keys, or a table
+    #: of such tables); a spec gives them relative to the spec file
+    path_settings: ClassVar[tuple[str, ...]] = ()
 
     def __init_subclass__(cls, **kwargs: Any) -> None:
         super().__init_subclass__(**kwargs)
@@ -32,6 +36,33 @@ class Source(ABC):
             if cls.kind in _REGISTRY and _REGISTRY[cls.kind] is not cls:
                 raise TypeError(f"source kind {cls.kind!r} registered twice")
             _REGISTRY[cls.kind] = cls
+
+    @classmethod
+    def resolve_paths(cls, settings: dict[str, Any], resolve: Callable[[str], Any]) -> dict[str, Any]:
+        """``settings`` with the file paths of :attr:`path_settings` passed through ``resolve``.
+
+        A setting may be a path, a table whose ``"path"`` and ``"ids"`` entries are paths, or
+        a table of paths or of such tables; anything else is left as it is (and checked when
+        fitting).
+        """
+
+        def one_file(value: Any) -> Any:
+            if isinstance(value, str):
+                return str(resolve(value))
+            if isinstance(value, Mapping) and "path" in value:
+                return {k: str(resolve(v)) if k in ("path", "ids") and isinstance(v, str) else v for k, v in value.items()}
+            return value
+
+        out = dict(settings)
+        for key in cls.path_settings:
+            if key not in out:
+                continue
+            value = out[key]
+            if isinstance(value, Mapping) and "path" not in value:
+                out[key] = {k: one_file(v) for k, v in value.items()}
+            else:
+                out[key] = one_file(value)
+        return out
 
     @abstractmethod
     def fit(self, fold: Fold) -> Self:

@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
-from typing import Any
+from collections.abc import Mapping, Sequence
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -11,6 +11,7 @@ from xrec.data.catalog import Catalog
 from xrec.errors import ConfigError, DataError
 from xrec.sources._item_vectors import clip_vectors, image_vectors, text_vectors
 from xrec.sources._profiles import ProfileSource
+from xrec.sources.vectors import vectors_from_setting
 
 __all__ = ["MODALITIES", "CrossModalSource"]
 
@@ -61,6 +62,12 @@ class CrossModalSource(ProfileSource):
         open_clip architecture name and the path of its weights file.
     half_life_days, cache_dir, progress
         See :class:`TextSource`.
+    image_vectors, text_vectors
+        Your own vectors for a side, in place of the encoder's: a vector file path, or a
+        table of :func:`~xrec.sources.vectors.read_item_vectors` options
+        (``{ path = "v.npy", ids = "ids.txt" }``); relative to the spec file in a spec. Only
+        with the ``"cca"`` and ``"ridge"`` bridges, which learn the link from the catalog's
+        own pairs.
 
     Attributes
     ----------
@@ -78,6 +85,7 @@ class CrossModalSource(ProfileSource):
     """
 
     kind = "cross_modal"
+    path_settings: ClassVar[tuple[str, ...]] = ("image_vectors", "text_vectors")
 
     def __init__(
         self,
@@ -99,6 +107,8 @@ class CrossModalSource(ProfileSource):
         half_life_days: float | None = None,
         cache_dir: str | None = None,
         progress: bool = False,
+        image_vectors: str | Mapping[str, Any] | None = None,
+        text_vectors: str | Mapping[str, Any] | None = None,
     ) -> None:
         self.profile = profile
         self.items = items
@@ -118,6 +128,8 @@ class CrossModalSource(ProfileSource):
         self.half_life_days = half_life_days
         self.cache_dir = cache_dir
         self.progress = progress
+        self.image_vectors = image_vectors
+        self.text_vectors = text_vectors
 
     def _check(self) -> None:
         for name in ("profile", "items"):
@@ -126,6 +138,9 @@ class CrossModalSource(ProfileSource):
                 raise ConfigError(f"cross_modal setting {name!r} must be one of {list(MODALITIES)}, got {value!r}")
         if self.bridge not in ("conse", "cca", "ridge", "clip"):
             raise ConfigError(f"cross_modal setting 'bridge' must be 'conse', 'cca', 'ridge' or 'clip', got {self.bridge!r}")
+        own = [name for name in ("image_vectors", "text_vectors") if getattr(self, name) is not None]
+        if own and self.bridge not in ("cca", "ridge"):
+            raise ConfigError(f"cross_modal settings {own}: your own vectors work with the 'cca' and 'ridge' bridges, not {self.bridge!r}")
 
     def _make_bridge(self) -> Any:
         from xrec.encoders.bridge import make_bridge
@@ -154,10 +169,16 @@ class CrossModalSource(ProfileSource):
             }
         else:
             bridge = self._make_bridge()
-            text, text_ok = text_vectors(catalog, self.text_columns, self.text_encoder, **opts)
-            image, image_ok = image_vectors(
-                catalog, self.image_encoder, probs=bridge.input == "probs", crop=self.image_crop, **opts
-            )
+            if self.text_vectors is not None:
+                text, text_ok = vectors_from_setting(catalog, self.text_vectors, "text_vectors", progress=self.progress)
+            else:
+                text, text_ok = text_vectors(catalog, self.text_columns, self.text_encoder, **opts)
+            if self.image_vectors is not None:
+                image, image_ok = vectors_from_setting(catalog, self.image_vectors, "image_vectors", progress=self.progress)
+            else:
+                image, image_ok = image_vectors(
+                    catalog, self.image_encoder, probs=bridge.input == "probs", crop=self.image_crop, **opts
+                )
             both = text_ok & image_ok
             if bridge.input == "probs":
                 bridge.fit(image[image_ok])  # unpaired: ConSE reads only the catalog's class prior
