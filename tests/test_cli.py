@@ -82,6 +82,23 @@ def test_export_then_recommend_round_trip(tmp_path, capsys):
     assert not {r["item"] for r in recs["u1"]} & train_u1
 
 
+def test_export_bundle_then_recommend_from_it_with_filters(tmp_path, capsys):
+    spec = _write_files_spec(tmp_path)
+    folder = tmp_path / "mix-bundle"
+    assert main(["export", str(spec), "--bundle", str(folder), "-q"]) == 0
+    assert (folder / "manifest.json").is_file() and (folder / "blend.toml").is_file()
+    capsys.readouterr()
+    filters = json.dumps({"attributes": {"kind": "b"}})
+    assert main(["recommend", str(folder), "--user", "u1", "-k", "4", "--filters", filters, "--json"]) == 0
+    recs = json.loads(capsys.readouterr().out)["u1"]
+    # u1 buys from the "a" half (i0..i19); the filter asks for "b" items (i20..i39) only
+    assert len(recs) == 4 and all(int(r["item"][1:]) >= 20 for r in recs)
+    assert main(["recommend", str(folder), "--user", "u1", "--filters", '{"attributes": {"kind": {"is": "b"}}}']) == 2
+    assert "filters.attributes.kind.is" in capsys.readouterr().err
+    assert main(["export", str(spec), "-q"]) == 2
+    assert "--bundle" in capsys.readouterr().err
+
+
 def test_compare_two_specs(tmp_path, capsys):
     a = _write_files_spec(tmp_path, weights="{ pop = 1.0 }", name="a")
     b = _write_files_spec(tmp_path, weights="{ knn = 1.0 }", name="b")
@@ -101,7 +118,7 @@ def test_errors_are_reported_without_traceback(tmp_path, capsys):
 
 
 def test_help_everywhere():
-    for args in ([], ["run"], ["compare"], ["export"], ["recommend"], ["demo"]):
+    for args in ([], ["run"], ["compare"], ["export"], ["recommend"], ["demo"], ["serve"]):
         proc = subprocess.run([sys.executable, "-m", "xrec.cli", *args, "--help"], capture_output=True, text=True)
         assert proc.returncode == 0 and "usage: xrec" in proc.stdout
 

@@ -39,6 +39,18 @@ def test_blend_file_reproduces_the_evaluated_rankings(demo):
     assert len(recs) == 10 and recs["rank"].tolist() == list(range(1, 11))
 
 
+def test_demo_bundle_holds_the_same_blend_and_loads_without_data(demo):
+    from xrec.blendfile import read_blend
+    from xrec.bundle import load_bundle
+
+    out, summary = demo
+    assert summary["paths"]["bundle"] == str(out / "bundle")
+    bundle = load_bundle(out / "bundle")  # verifies every file and the ranking digest, refits nothing
+    assert bundle.spec.to_dict() == read_blend(out / "blend.toml").to_dict()
+    recs = bundle.recommend(bundle.user_ids[0], 10)
+    assert recs["item"].tolist() == load_blend(out / "blend.toml", load_demo_shop()).recommend(bundle.user_ids[0], 10)["item"].tolist()
+
+
 def test_blend_is_not_below_the_best_single_source(demo):
     _, summary = demo
     # On the mixed split (20% of the held-out purchases on new items, about 1,000 known-item users)

@@ -304,6 +304,19 @@ def test_mixer_export_button_writes_a_blend_file(data, mixer):
     mixer.path_box.value = str(path)
 
 
+def test_mixer_bundle_button_writes_a_bundle_that_ranks_like_the_blend(data, mixer):
+    from xrec.bundle import load_bundle
+
+    mixer.set_weights({"pop": 0.25, "als": 1.0, "genres": 0.1})
+    mixer.bundle_button.click()
+    folder = Path(mixer.path_box.value).with_suffix("")
+    assert "wrote" in mixer.status.value and str(folder) in mixer.status.value, mixer.status.value
+    bundle = load_bundle(folder)
+    assert {n: s.weight for n, s in bundle.spec.sources.items()} == {"pop": 0.25, "als": 1.0, "genres": 0.1}
+    users = mixer.users_[:20]
+    np.testing.assert_array_equal(bundle.scorer.score(users), mixer.blend().score(users))
+
+
 def test_mixer_refuses_bad_settings(data):
     dataset, fold, sources, cards = data
     with pytest.raises(ConfigError, match="not fitted"):

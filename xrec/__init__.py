@@ -3,11 +3,13 @@
 The main names are re-exported here; each subpackage documents its own:
 ``xrec.data`` (catalog, interactions, loaders), ``xrec.split``, ``xrec.sources``,
 ``xrec.encoders``, ``xrec.blend``, ``xrec.evaluate``, ``xrec.blendfile``, ``xrec.runtime``,
-``xrec.notebook``.
+``xrec.bundle`` (blend file + learned artifacts, served without refitting), ``xrec.serve``
+(the HTTP service), ``xrec.notebook``.
 """
 
 from xrec.blend import Blend, CombMNZ, CombSum, ReciprocalRankFusion
 from xrec.blendfile import read_blend, save_blend
+from xrec.bundle import Bundle, load_bundle, save_bundle
 from xrec.data import Catalog, CatalogSchema, Dataset, Interactions, load_movielens, read_catalog, read_interactions
 from xrec.data.demo import load_demo_shop
 from xrec.errors import ConfigError, DataError, FingerprintMismatch, NotFittedError, XrecError
@@ -23,6 +25,7 @@ __version__ = "0.1.0"
 __all__ = [
     "Blend",
     "BlendRuntime",
+    "Bundle",
     "Catalog",
     "CatalogSchema",
     "CombMNZ",
@@ -45,6 +48,7 @@ __all__ = [
     "XrecError",
     "compare",
     "load_blend",
+    "load_bundle",
     "load_demo_shop",
     "load_movielens",
     "make_source",
@@ -52,6 +56,7 @@ __all__ = [
     "read_catalog",
     "read_interactions",
     "save_blend",
+    "save_bundle",
     "source_kinds",
     "split_dataset",
 ]

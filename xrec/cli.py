@@ -62,8 +62,26 @@ def _cmd_export(args: argparse.Namespace) -> int:
     from xrec.experiment import export_spec
     from xrec.spec import load_spec
 
-    path = export_spec(_with_cluster_flags(load_spec(args.spec), args), args.output, scorer=args.scorer, progress=not args.quiet)
-    print(f"blend file written: {path}")
+    export_spec(_with_cluster_flags(load_spec(args.spec), args), args.output, scorer=args.scorer, progress=not args.quiet,
+                bundle=args.bundle)
+    if args.output:
+        print(f"blend file written: {args.output}")
+    if args.bundle:
+        print(f"bundle written: {args.bundle}")
+    return 0
+
+
+def _cmd_serve(args: argparse.Namespace) -> int:
+    import os
+
+    from xrec.serve import serve
+
+    if not 0 < args.port < 65536:
+        from xrec.errors import ConfigError
+
+        raise ConfigError(f"--port: must be between 1 and 65535, got {args.port}")
+    print(f"serving {args.bundle} on http://{args.host}:{args.port} (Ctrl+C stops, kill -HUP {os.getpid()} reloads)", flush=True)
+    serve(args.bundle, host=args.host, port=args.port, log_level=args.log_level)
     return 0
 
 
@@ -73,8 +91,17 @@ def _cmd_recommend(args: argparse.Namespace) -> int:
 
     if args.k < 1:  # checked before the refit, which can take a while
         raise ConfigError(f"-k: must be at least 1, got {args.k}")
-    runtime = runtime_for_blend_file(args.blend_file, data_folder=args.data, progress=not args.quiet and not args.json)
-    frames = {user: runtime.recommend(user, k=args.k, unknown=args.unknown) for user in args.user}
+    if Path(args.blend_file).is_dir():  # a bundle: nothing to refit, filters allowed
+        from xrec.bundle import load_bundle
+
+        filters = _json_option(args.filters, "--filters")
+        runtime = load_bundle(args.blend_file)
+        frames = {user: runtime.recommend(user, k=args.k, unknown=args.unknown, filters=filters) for user in args.user}
+    else:
+        if args.filters is not None:
+            raise ConfigError("--filters: needs a bundle folder (xrec export --bundle); a blend file alone holds no catalog table")
+        runtime = runtime_for_blend_file(args.blend_file, data_folder=args.data, progress=not args.quiet and not args.json)
+        frames = {user: runtime.recommend(user, k=args.k, unknown=args.unknown) for user in args.user}
     if args.json:
         _print_json({user: frame.to_dict(orient="records") for user, frame in frames.items()})
     else:
@@ -82,6 +109,17 @@ def _cmd_recommend(args: argparse.Namespace) -> int:
             print(f"user {user}")
             print(frame.to_string(index=False))
     return 0
+
+
+def _json_option(text: str | None, option: str) -> Any:
+    from xrec.errors import ConfigError
+
+    if text is None:
+        return None
+    try:
+        return json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise ConfigError(f"{option}: not valid JSON ({exc})") from None
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
@@ -98,7 +136,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    """The ``xrec`` argument parser with its subcommands (demo, run, compare, export, recommend)."""
+    """The ``xrec`` argument parser with its subcommands (demo, run, compare, export, recommend, serve)."""
     parser = argparse.ArgumentParser(
         prog="xrec",
         description="Prototype cross-modal recommenders: evaluate sources and blends offline, compare them, export the winner.",
@@ -146,7 +184,9 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("export", help="write a blend file for a spec's scorer", description=(
         "Fit, evaluate on the test split and write the blend file (TOML) that a service loads."))
     p.add_argument("spec", help="spec file or built-in name")
-    p.add_argument("-o", "--output", required=True, help="blend file to write (.toml)")
+    p.add_argument("-o", "--output", default=None, help="blend file to write (.toml)")
+    p.add_argument("--bundle", default=None, metavar="DIR",
+                   help="also (or instead) write a bundle folder: the blend file plus every learned artifact, servable with 'xrec serve'")
     p.add_argument("--scorer", default=None, help="which source or blend to export (default: the spec's primary)")
     cluster(p)
     common(p, json_flag=False)
@@ -154,14 +194,26 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("recommend", help="top-K items for users from a blend file", description=(
         "Load a blend file, refit its sources on the recorded data and split, and list the top-K items."))
-    p.add_argument("blend_file", help="blend file written by 'xrec export' or 'xrec demo'")
+    p.add_argument("blend_file", help="blend file written by 'xrec export' or 'xrec demo', or a bundle folder (no refit)")
     p.add_argument("--user", action="append", required=True, help="user id (repeat for several)")
     p.add_argument("-k", type=int, default=10, help="list length (default: %(default)s)")
     p.add_argument("--unknown", choices=("error", "popular"), default="error",
                    help="a user the blend file does not know: an error, or the most popular items (default: %(default)s)")
+    p.add_argument("--filters", default=None, metavar="JSON",
+                   help='item conditions, bundles only, e.g. \'{"attributes": {"price": {"max": 20}}}\' (see the README)')
     p.add_argument("--data", default=None, help="folder the data moved to (a MovieLens or demo-shop folder, or the one holding the data files), when it is not where the blend file records")
     common(p)
     p.set_defaults(func=_cmd_recommend)
+
+    p = sub.add_parser("serve", help="serve a bundle over HTTP (JSON)", description=(
+        "Verify a bundle folder and answer recommendation, similar-item and text-search requests over HTTP. "
+        "POST /reload or SIGHUP swaps in the folder's current bundle."))
+    p.add_argument("bundle", help="bundle folder written by 'xrec export --bundle' or 'xrec demo'")
+    p.add_argument("--port", type=int, default=8000, help="TCP port (default: %(default)s)")
+    p.add_argument("--host", default="127.0.0.1", help="address to bind (default: %(default)s, this machine only)")
+    p.add_argument("--log-level", default="warning", choices=("critical", "error", "warning", "info", "debug"),
+                   help="server log level; 'info' logs every request (default: %(default)s)")
+    p.set_defaults(func=_cmd_serve)
     return parser
 
 

@@ -19,7 +19,8 @@ code doubles as a worked example of a full study:
    content-only source on new items (both chosen on validation), and the mapped source
    against attributes and text on new items (full ranking, and among new items only);
 5. explain: hit rate per planted taste (which signal finds which taste);
-6. write ``scorecards.json``, ``blend.toml`` (the gated blend) and ``report.html``.
+6. write ``scorecards.json``, ``blend.toml`` (the gated blend), ``report.html`` and ``bundle/`` (the blend file
+   with every learned artifact, servable by ``xrec serve``) to the output folder.
 """
 
 from __future__ import annotations
@@ -149,7 +150,7 @@ def run_demo(
     Parameters
     ----------
     output
-        Folder for ``scorecards.json``, ``blend.toml`` and ``report.html`` (created).
+        Folder for ``scorecards.json``, ``blend.toml``, ``report.html`` and ``bundle/`` (created).
     shop
         Demo shop folder; default the one shipped in the repository.
     progress
@@ -300,6 +301,10 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
     }
     blend_path = save_blend(out / "blend.toml", blend, dataset=dataset, split_settings=split.settings, fold="test",
                             evidence=evidence, dataset_load=dataset_load)
+    from xrec.bundle import save_bundle
+
+    bundle_path = save_bundle(out / "bundle", blend, dataset=dataset, split_settings=split.settings, fold="test",
+                              evidence=evidence, dataset_load=dataset_load)
 
     row = vs_best.table
     row = row[(row["metric"] == METRIC) & (row["candidate"] == "learned blend")].iloc[0]
@@ -341,7 +346,7 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
         "Comparison vs popularity": vs_pop,
     }
     report_path = charts_to_html(sections, "xrec demo shop report", out / "report.html", intro_html=intro)
-    return {"scorecards": scorecard_path, "blend": blend_path, "report": report_path}
+    return {"scorecards": scorecard_path, "blend": blend_path, "report": report_path, "bundle": bundle_path}
 
 
 def _band_details(gated) -> dict[str, Any]:

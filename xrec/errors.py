@@ -19,6 +19,10 @@ class FingerprintMismatch(ConfigError):
     """A blend file was produced on different data than the data it is applied to."""
 
 
+class BundleError(ConfigError):
+    """A bundle folder is incomplete, altered or unreadable; the message names the file."""
+
+
 class NotFittedError(XrecError, RuntimeError):
     """An estimator was used before ``fit`` (or a blend engine before ``prepare``).
 

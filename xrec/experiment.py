@@ -10,7 +10,7 @@ import pandas as pd
 
 from xrec.data.dataset import Dataset
 from xrec.data.location import load_dataset
-from xrec.errors import ConfigError
+from xrec.errors import ConfigError, DataError
 from xrec.spec import ExperimentSpec
 from xrec.sources.base import Source, make_source
 
@@ -25,6 +25,13 @@ def build_sources(spec: ExperimentSpec, *, progress: bool = False) -> dict[str, 
 
     With ``progress``, sources that can show their own bars (encoders, implicit models) do,
     unless the spec sets their ``progress`` explicitly.
+
+    Raises
+    ------
+    ConfigError
+        A file setting (:attr:`~xrec.sources.base.Source.path_settings`) leads outside the
+        spec's folder (``..``, an absolute path, a symbolic link) without
+        ``data.allow_outside = true``; the message names it, e.g. ``sources.current.path``.
     """
     from xrec._settings import setting_names
     from xrec.sources.base import source_class
@@ -33,7 +40,8 @@ def build_sources(spec: ExperimentSpec, *, progress: bool = False) -> dict[str, 
     for name, table in spec.sources.items():
         settings = {k: v for k, v in table.items() if k != "kind"}
         cls = source_class(table["kind"])
-        if cls is not None:  # file paths in a spec are relative to the spec file
+        if cls is not None:  # file paths in a spec are relative to the spec file, and stay inside its folder
+            _check_inside(spec, name, cls.path_fields(settings))
             settings = cls.resolve_paths(settings, spec.resolve)
         if progress and cls is not None and "progress" in setting_names(cls):
             settings.setdefault("progress", True)
@@ -42,6 +50,47 @@ def build_sources(spec: ExperimentSpec, *, progress: bool = False) -> dict[str, 
         except ConfigError as exc:
             raise ConfigError(f"sources.{name}: {exc}") from exc
     return out
+
+
+def _check_inside(spec: ExperimentSpec, name: str, fields: dict[str, str]) -> None:
+    """Refuse a source file path that leads outside the spec's folder (``..``, absolute, or a
+    symbolic link out), the rule of the ``[data]`` table with its opt-out ``data.allow_outside``."""
+    if spec.data.allow_outside:
+        return
+    for field, value in fields.items():
+        path = spec.resolve(value)
+        if not spec.data.inside(path):
+            raise ConfigError(
+                f"sources.{name}.{field}: {value!r} leads outside the spec's folder {str(spec.data.base.resolve())!r} "
+                f"(to {str(path.resolve())!r}); move the file inside it, or set data.allow_outside = true"
+            )
+
+
+def _outside_fields(spec: ExperimentSpec, name: str) -> list[str]:
+    """The file settings of source ``name`` that lie outside the spec's folder (allowed by ``data.allow_outside``)."""
+    from xrec.sources.base import source_class
+
+    table = spec.sources[name]
+    cls = source_class(table["kind"])
+    if cls is None:
+        return []
+    fields = cls.path_fields({k: v for k, v in table.items() if k != "kind"})
+    return [f"sources.{name}.{field}" for field, value in fields.items() if not spec.data.inside(spec.resolve(value))]
+
+
+def _fit_source(spec: ExperimentSpec, name: str, source: Source, fold: Any) -> Source:
+    """``source.fit(fold)``; when it reads a file from outside the spec's folder, a
+    :class:`DataError` names the setting but quotes nothing from the file."""
+    try:
+        return source.fit(fold)
+    except DataError:
+        outside = _outside_fields(spec, name)
+        if not outside:
+            raise
+        raise DataError(
+            f"{', '.join(outside)}: the file cannot be used as this source's input "
+            "(details not shown: the file lies outside the spec's folder)"
+        ) from None
 
 
 @dataclass
@@ -138,7 +187,7 @@ def run_experiment(
         else:
             raise ConfigError(f"no source or blend named {only!r}; known: {sorted([*sources, *blends])}")
     for name, source in _progress(sources.items(), progress, "fitting sources"):
-        source.fit(fold)
+        _fit_source(spec, name, source, fold)
     scorers: dict[str, Any] = dict(sources) if only is None or only in sources else {}
     learned: dict[str, Any] = {}
     valid_sources: dict[Any, Any] = {}  # sources fitted on the validation split, and searches done on them
@@ -191,7 +240,7 @@ def _build_blend(spec, table, sources, split, valid_sources, learned, name, prog
     built = build_sources(spec, progress=progress)
     for n in names:
         if n not in valid_sources:
-            valid_sources[n] = built[n].fit(split.validation)
+            valid_sources[n] = _fit_source(spec, n, built[n], split.validation)
     metric = table.get("metric", "ndcg@10")
     k = parse_metric_column(metric)[1]
     seed = int(table.get("seed", 0))
@@ -264,23 +313,52 @@ def evidence_summary(result: ExperimentResult, name: str) -> dict[str, Any]:
     return evidence
 
 
-def export_spec(spec: ExperimentSpec, output: str | Path, *, scorer: str | None = None, progress: bool = False) -> Path:
-    """Run ``spec`` and write the blend file of one of its scorers (default: the primary)."""
+def export_spec(
+    spec: ExperimentSpec,
+    output: str | Path | None = None,
+    *,
+    scorer: str | None = None,
+    progress: bool = False,
+    bundle: str | Path | None = None,
+) -> Path:
+    """Run ``spec`` and write the blend file of one of its scorers (default: the primary).
+
+    With ``bundle`` (a folder), also write a bundle there (see :func:`xrec.bundle.save_bundle`):
+    the blend file plus every learned artifact, loadable without the data. Returns the
+    blend file's path, or the bundle folder when no ``output`` is given.
+    """
     from xrec.blendfile import save_blend
 
     # Checked before the (long) run, not after it.
-    output = Path(output)
-    if output.is_dir():
-        raise ConfigError(f"--output: {str(output)!r} is a folder; give the blend file's path, e.g. {str(output / 'blend.toml')!r}")
-    if not output.parent.is_dir():
-        raise ConfigError(f"--output: folder {str(output.parent)!r} does not exist")
+    if output is None and bundle is None:
+        raise ConfigError("--output: give a blend file to write, a --bundle folder, or both")
+    if output is not None:
+        output = Path(output)
+        if output.is_dir():
+            raise ConfigError(f"--output: {str(output)!r} is a folder; give the blend file's path, e.g. {str(output / 'blend.toml')!r}")
+        if not output.parent.is_dir():
+            raise ConfigError(f"--output: folder {str(output.parent)!r} does not exist")
+    if bundle is not None:
+        bundle = Path(bundle)
+        if not (bundle.parent if str(bundle.parent) else Path(".")).is_dir():
+            raise ConfigError(f"--bundle: folder {str(bundle.parent)!r} does not exist")
+        if bundle.exists() and not bundle.is_dir():
+            raise ConfigError(f"--bundle: {str(bundle)!r} exists and is not a folder")
     result = run_experiment(spec, progress=progress)
     name, blend = _scorer_for(result, scorer)
     evidence = evidence_summary(result, name)
-    return save_blend(
-        output, blend, dataset=result.dataset, split_settings=result.split.settings,
-        evidence=evidence, fold="test", dataset_load=data_hints(spec),
-    )
+    options = {
+        "dataset": result.dataset, "split_settings": result.split.settings, "evidence": evidence,
+        "fold": "test", "dataset_load": data_hints(spec),
+    }
+    written = None
+    if bundle is not None:
+        from xrec.bundle import save_bundle
+
+        written = save_bundle(bundle, blend, **options)
+    if output is not None:
+        written = save_blend(output, blend, **options)
+    return written
 
 
 def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progress: bool = False):

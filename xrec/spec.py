@@ -57,6 +57,12 @@ for example::
     kind = "ranking"
     path = "current.csv"         # relative to the spec file, like every file setting
 
+Source file settings (``vectors``: ``path``, ``ids``; ``ranking``: ``path``; ``cross_modal``:
+``image_vectors``, ``text_vectors``; ``early_fusion``: ``vectors``) follow the rule of the data
+paths below: inside the spec file's folder unless ``data.allow_outside = true``, errors naming
+the setting (``sources.current.path``), nothing quoted from a file outside. Blend files record
+them absolute and are read as recorded (the check ran when the spec did).
+
 The ``[data]`` table is checked by :class:`xrec.data.location.DataLocation` (its module
 docstring lists every key). For ``dataset = "files"`` it names the catalog and interactions
 files, CSV or Parquet by extension, relative to the spec file, and maps your column names

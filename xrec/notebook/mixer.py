@@ -90,7 +90,7 @@ class WeightMixer:
     ----------
     sliders
         Source name -> ``ipywidgets.FloatSlider``.
-    normalizer_menu, k_menu, path_box, export_button, pin_button, status, output
+    normalizer_menu, k_menu, path_box, export_button, bundle_button, pin_button, status, output
         The other controls; ``output`` holds the chart.
     widget
         The whole panel (an ``ipywidgets.VBox``); a notebook cell displays it.
@@ -201,6 +201,8 @@ class WeightMixer:
         self.path_box = w.Text(value=str(export_path), description="blend file", layout=w.Layout(width="420px"))
         self.export_button = w.Button(description="Export blend file", icon="download", button_style="primary")
         self.export_button.on_click(lambda _b: self._export_clicked())
+        self.bundle_button = w.Button(description="Export bundle", icon="archive", tooltip="blend file + learned artifacts, for xrec serve")
+        self.bundle_button.on_click(lambda _b: self._export_clicked(bundle=True))
         self.pin_button = w.Button(description="Pin as baseline", icon="thumb-tack")
         self.pin_button.on_click(lambda _b: self.pin_baseline())
         self.status = w.HTML()
@@ -215,7 +217,7 @@ class WeightMixer:
                 header,
                 w.HBox([w.VBox(list(self.sliders.values())), w.VBox([self.normalizer_menu, self.k_menu, self.pin_button])]),
                 self.output,
-                w.HBox([self.path_box, self.export_button]),
+                w.HBox([self.path_box, self.export_button, self.bundle_button]),
                 self.status,
             ]
         )
@@ -456,12 +458,15 @@ class WeightMixer:
         self.status.value = f'<span style="color:{color}">{text if not error else html.escape(text)}</span>'
 
     # ------------------------------------------------------------------ export
-    def export(self, path: str | os.PathLike | None = None) -> Path:
+    def export(self, path: str | os.PathLike | None = None, *, bundle: bool = False) -> Path:
         """Write the current blend as a blend file (default: the path box) and return its path.
 
-        The evidence table records the mixer's users, metrics and baseline.
+        The evidence table records the mixer's users, metrics and baseline. With ``bundle``,
+        write a bundle folder instead (:func:`xrec.bundle.save_bundle`: the blend file plus
+        every learned artifact), named as the path without its ``.toml`` suffix.
         """
         from xrec.blendfile import save_blend
+        from xrec.bundle import save_bundle
 
         if self.dataset is None:
             raise ConfigError("export needs the dataset the fold was split from: WeightMixer(..., dataset=dataset)")
@@ -478,11 +483,14 @@ class WeightMixer:
             "baseline": self.baseline_name_,
             "baseline_metrics": {c: float(base[c].mean()) for c in self._columns},
         }
-        return save_blend(path, self.blend(), dataset=self.dataset, split_settings=self.fold.settings, evidence=evidence)
+        if bundle:
+            path = path.with_suffix("") if path.suffix == ".toml" else path
+        save = save_bundle if bundle else save_blend
+        return save(path, self.blend(), dataset=self.dataset, split_settings=self.fold.settings, evidence=evidence)
 
-    def _export_clicked(self) -> None:
+    def _export_clicked(self, *, bundle: bool = False) -> None:
         try:
-            written = self.export()
+            written = self.export(bundle=bundle)
         except (XrecError, OSError) as exc:
             self._say(f"export failed: {exc}", error=True)
             return

@@ -27,7 +27,8 @@ class Source(ABC):
 
     kind: ClassVar[str] = ""
     #: settings that hold file paths (a path, a table with "path" / "ids" keys, or a table
-    #: of such tables); a spec gives them relative to the spec file
+    #: of such tables); a spec gives them relative to the spec file, inside its folder unless
+    #: ``data.allow_outside`` (checked by :func:`xrec.experiment.build_sources`)
     path_settings: ClassVar[tuple[str, ...]] = ()
 
     def __init_subclass__(cls, **kwargs: Any) -> None:
@@ -45,12 +46,35 @@ class Source(ABC):
         a table of paths or of such tables; anything else is left as it is (and checked when
         fitting).
         """
+        return cls._map_paths(settings, lambda field, value: str(resolve(value)))
 
-        def one_file(value: Any) -> Any:
+    @classmethod
+    def path_fields(cls, settings: dict[str, Any]) -> dict[str, str]:
+        """The file paths in ``settings`` by dotted field name (``"path"``, ``"vectors.image.path"``, ...).
+
+        The same paths :meth:`resolve_paths` passes through its function, as written.
+        """
+        found: dict[str, str] = {}
+
+        def collect(field: str, value: str) -> str:
+            found[field] = value
+            return value
+
+        cls._map_paths(settings, collect)
+        return found
+
+    @classmethod
+    def _map_paths(cls, settings: dict[str, Any], change: Callable[[str, str], str]) -> dict[str, Any]:
+        """``settings`` with each path of :attr:`path_settings` replaced by ``change(field, path)``."""
+
+        def one_file(field: str, value: Any) -> Any:
             if isinstance(value, str):
-                return str(resolve(value))
+                return change(field, value)
             if isinstance(value, Mapping) and "path" in value:
-                return {k: str(resolve(v)) if k in ("path", "ids") and isinstance(v, str) else v for k, v in value.items()}
+                return {
+                    k: change(f"{field}.{k}", v) if k in ("path", "ids") and isinstance(v, str) else v
+                    for k, v in value.items()
+                }
             return value
 
         out = dict(settings)
@@ -59,9 +83,9 @@ class Source(ABC):
                 continue
             value = out[key]
             if isinstance(value, Mapping) and "path" not in value:
-                out[key] = {k: one_file(v) for k, v in value.items()}
+                out[key] = {k: one_file(f"{key}.{k}", v) for k, v in value.items()}
             else:
-                out[key] = one_file(value)
+                out[key] = one_file(key, value)
         return out
 
     @abstractmethod
