@@ -19,8 +19,15 @@ Reported: items/s for each, cold/direct (the cost of writing) and warm/cold spee
 nothing, 384-d, ``--store`` items): microseconds per item to write and to read. Wall-clock figures depend on the machine and its load; the ratios
 are what to compare.
 
+Then, per path (see ``benchmarks/_encoder_paths.py``): images/s and texts/s for PyTorch
+eager, ONNX Runtime and int8 text at batch sizes 1/8/32/64 and 1/2 threads, each as a
+share of the machine's measured float32 FLOP rate; cold encoding of demo-shop items with
+the old and new defaults; int8 text quality. All in one process, so the ratios hold even
+when other work loads the machine (the absolute rates do not).
+
 Run: ``python benchmarks/bench_encoders.py [--texts 1000] [--images 200] [--store 10000]
-[--repeats 3] [--threads 2]`` (``0`` skips a part).
+[--repeats 3] [--threads 2] [--path-images 32] [--path-texts 64] [--demo 128] [--quality 0]``
+(``0`` skips a part).
 """
 
 from __future__ import annotations
@@ -195,9 +202,14 @@ def main(argv: list[str] | None = None) -> list[dict]:
     parser.add_argument("--repeats", type=int, default=3)
     parser.add_argument("--threads", type=int, default=2, help="torch threads for the encoders")
     parser.add_argument("--store", type=int, default=10_000, help="items for the cache-only measurement (0: skip)")
+    parser.add_argument("--path-images", type=int, default=32, help="images per path measurement (0: skip paths)")
+    parser.add_argument("--path-texts", type=int, default=64, help="texts per path measurement (0: skip)")
+    parser.add_argument("--demo", type=int, default=128, help="demo-shop items encoded cold, old vs new defaults (0: skip)")
+    parser.add_argument("--quality", type=int, default=0, help="demo-shop items for the int8 quality check (0: skip)")
     parser.add_argument("--progress", action="store_true")
     args = parser.parse_args(argv)
     rows = []
+    rows += paths_report(args)
     if args.store:
         rows.append(store_overhead(args.store, 384, args.repeats))
     if args.texts:
@@ -215,6 +227,78 @@ def main(argv: list[str] | None = None) -> list[dict]:
 
         rows.append(run("image", image_encoder, make_images(args.images), args.repeats, args.progress))
     return rows
+
+
+def paths_report(args) -> list[dict]:
+    """The per-path table, the FLOP limit, cold demo encoding and int8 quality (see the module docstring)."""
+    import _encoder_paths as paths
+
+    rows: list[dict] = []
+    if not (args.path_images or args.path_texts or args.demo or args.quality):
+        return rows
+    limits = paths.Limit()
+    table = []
+    if args.path_images:
+        image_rows, flops = paths.image_paths(make_images(max(args.path_images, 64), seed=2), limits, args.path_images)
+        print(f"EfficientNet-Lite0: {flops / 1e9:.3f} GFLOPs per image (FlopCounterMode)", flush=True)
+        table += image_rows
+    if args.path_texts:
+        texts = _demo_texts(args.path_texts)
+        text_rows, flops = paths.text_paths(texts, limits, args.path_texts)
+        print(f"MiniLM-L6: {flops / 1e9:.3f} GFLOPs per text as run ({np.mean([len(t) for t in texts]):.0f} characters "
+              "on average, length-sorted batches with padding; FlopCounterMode)", flush=True)
+        table += text_rows
+    if table:
+        print("float32 matmul probe, best over the run: "
+              + ", ".join(f"{t} thread(s) {v / 1e9:.1f} GFLOP/s" for t, v in limits.best.items())
+              + "; limit used: " + ", ".join(f"{t} thread(s) {limits.rate(t) / 1e9:.1f}" for t in limits.best), flush=True)
+    for r in table:
+        print(f"  {r['what']:>18} {r['path']:>5} threads {r['threads']} batch {r['batch']:>2}: "
+              f"{r['per_s']:7.1f}/s  {100 * r['share']:5.1f}% of the FLOP limit"
+              + (" (float32-equivalent)" if r["path"] == "int8" else ""), flush=True)
+    _print_ratios(table)
+    rows += table
+    if args.demo:
+        cold = paths.demo_cold(args.demo)
+        before, after = cold["before (PyTorch eager)"], cold["after (ONNX Runtime)"]
+        print(f"demo shop, {cold['n']} items' images + texts into an empty cache: before {before:.1f} s, "
+              f"after {after:.1f} s (x{before / after:.2f})", flush=True)
+        rows.append({"what": "demo cold", **cold})
+    if args.quality:
+        q = paths.int8_quality(args.quality)
+        print(f"int8 text on {q['n']} demo-shop texts: cosine to fp32 mean {q['cos_mean']:.4f}, 5th percentile "
+              f"{q['cos_p05']:.4f}, min {q['cos_min']:.4f}; ridge bridge recall@10 fp32 {q['bridge_recall_fp32']:.4f} "
+              f"vs int8 {q['bridge_recall_int8']:.4f}", flush=True)
+        rows.append({"what": "int8 quality", **q})
+    return rows
+
+
+def _demo_texts(n: int) -> list[str]:
+    """The first ``n`` demo-shop item texts (name + description, ~200 characters), else generated ones."""
+    try:
+        from xrec.data.demo import load_demo_shop
+        from xrec.encoders.cache import catalog_texts
+
+        return catalog_texts(load_demo_shop().catalog, None)[:n]
+    except Exception:  # the demo shop is missing: fall back to the word-list texts
+        return make_texts(n)
+
+
+def _print_ratios(table: list[dict]) -> None:
+    best = {}
+    for r in table:
+        key = (r["what"], r["path"])
+        if key not in best or r["per_s"] > best[key]["per_s"]:
+            best[key] = r
+    for what, fast, slow in (("image", "onnx", "torch"), ("image forward only", "onnx", "torch"), ("text", "int8", "fp32")):
+        if (what, fast) in best and (what, slow) in best:
+            a, b = best[(what, fast)], best[(what, slow)]
+            print(f"{what}: best {fast} {a['per_s']:.1f}/s (batch {a['batch']}, {a['threads']} threads) vs best {slow} "
+                  f"{b['per_s']:.1f}/s (batch {b['batch']}, {b['threads']} threads): x{a['per_s'] / b['per_s']:.2f}", flush=True)
+            rate = {(r["path"], r["threads"], r["batch"]): r["per_s"] for r in table if r["what"] == what}
+            ratios = [rate[(fast, t, bs)] / rate[(slow, t, bs)] for (p, t, bs) in rate if p == fast and (slow, t, bs) in rate]
+            print(f"  {fast}/{slow} at the same threads and batch: median x{np.median(ratios):.2f} "
+                  f"(range x{min(ratios):.2f} to x{max(ratios):.2f}, {len(ratios)} settings)", flush=True)
 
 
 if __name__ == "__main__":

@@ -67,6 +67,31 @@ def test_run_prints_scorecards_and_json(tmp_path, capsys):
     assert payload["comparison"]["baseline"] == "pop"
 
 
+def test_run_by_segments_prints_and_writes_the_tables(tmp_path, capsys):
+    spec = _write_files_spec(tmp_path)
+    by = ["--by", "item_segment", "--by", "user_segment", "--by", "kind"]
+    assert main(["run", str(spec), "-q", *by]) == 0
+    out = capsys.readouterr().out
+    assert "Results by segment (hit_rate@5" in out and "by item_segment:" in out and "by kind:" in out
+    assert "Paired differences vs 'pop' by segment" in out
+    assert main(["run", str(spec), "--json", *by]) == 0
+    payload = json.loads(capsys.readouterr().out)
+    rows = pd.DataFrame(payload["segments"])
+    assert set(rows["by"]) == {"item_segment", "user_segment", "kind"}
+    assert set(rows["scorer"]) == {"pop", "knn", "kind", "mix"}
+    n_users = payload["scorecards"]["knn"]["n_users"]
+    for _, block in rows[(rows["scorer"] == "knn") & (rows["metric"] == "hit_rate@5")].groupby("by"):
+        assert block["n_users"].sum() == n_users  # every test user in exactly one segment
+        # The segment means, weighted by size, give back the overall mean (pandas as the reference).
+        overall = payload["scorecards"]["knn"]["hit_rate@5"]["mean"]
+        assert (block["mean"] * block["n_users"]).sum() / n_users == pytest.approx(overall)
+    assert set(rows.loc[rows["by"] == "kind", "segment"]) <= {"a", "b", "mixed"}
+    seg = pd.DataFrame(payload["comparison"]["segments"])
+    assert set(seg["by"]) == {"item_segment", "user_segment", "kind"} and "p_holm_segments" in seg
+    assert main(["run", str(spec), "-q", "--by", "colour"]) == 2
+    assert "catalog column" in capsys.readouterr().err
+
+
 def test_export_then_recommend_round_trip(tmp_path, capsys):
     spec = _write_files_spec(tmp_path)
     blend_path = tmp_path / "out" / "mix.toml"
@@ -105,6 +130,8 @@ def test_compare_two_specs(tmp_path, capsys):
     assert main(["compare", str(a), str(b), "--json", "-q"]) == 0
     payload = json.loads(capsys.readouterr().out)
     assert payload["candidates"] and payload["rows"]
+    assert main(["compare", str(a), str(b), "-q", "--by", "user_segment"]) == 0
+    assert "by segment" in capsys.readouterr().out
 
 
 def test_errors_are_reported_without_traceback(tmp_path, capsys):

@@ -88,7 +88,9 @@ def test_dims_identity_and_modalities(clip, tiny) -> None:
     assert clip.dim == clip.image.dim == clip.text.dim == TINY_CONFIG["embed_dim"]
     assert clip.image.modality == "image" and clip.text.modality == "text"
     assert clip.identity == f"open_clip:{TINY}:{sha[:16]}"
-    assert clip.image.identity == clip.identity + ":image" and clip.text.identity == clip.identity + ":text"
+    # ONNX Runtime (the default when installed, see tests/test_onnx_image.py) marks the image side
+    runtime = ":onnxruntime" if clip.image_runtime() == "onnx" else ""
+    assert clip.image.identity == clip.identity + ":image" + runtime and clip.text.identity == clip.identity + ":text"
     assert clip.image.cache_key != clip.text.cache_key
 
 

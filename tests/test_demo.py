@@ -31,6 +31,26 @@ def test_demo_writes_scorecards_blend_file_and_report(demo):
     assert "<script src=\"http" not in html  # viewable offline
 
 
+def test_demo_report_and_json_break_results_down_by_segment(demo):
+    import numpy as np
+    import pandas as pd
+
+    out, _ = demo
+    payload = json.loads((out / "scorecards.json").read_text(encoding="utf-8"))
+    rows = pd.DataFrame(payload["by_segment"]["scorecards"])
+    assert set(rows["by"]) == {"item_segment", "user_segment", "product_type"}
+    for (by, scorer), block in rows.groupby(["by", "scorer"]):
+        per_user = np.asarray(payload["scorecards"][scorer]["per_user"]["hit_rate@10"])
+        assert block["n_users"].sum() == len(per_user)  # every test user in one segment
+        # Size-weighted segment means give back the overall mean (the groupby identity; numpy as the reference).
+        assert (block["mean"] * block["n_users"]).sum() / len(per_user) == pytest.approx(per_user.mean())
+        assert (block["ci_low"].isna() == block["small"]).all()
+    segs = pd.DataFrame(payload["by_segment"]["comparison"])
+    assert {"learned blend", "gated blend"} == set(segs["candidate"]) and "p_holm_segments" in segs
+    html = (out / "report.html").read_text(encoding="utf-8")
+    assert "Results by segment (hit_rate@10)" in html and "Reading the segment panels" in html
+
+
 def test_blend_file_reproduces_the_evaluated_rankings(demo):
     out, _ = demo
     # load_blend refits the sources and verifies the recorded top-10 digest; a mismatch raises.

@@ -23,7 +23,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     from xrec.spec import load_spec
 
     spec = _with_cluster_flags(load_spec(args.spec), args)
-    result = run_experiment(spec, progress=not args.quiet and not args.json)
+    result = run_experiment(spec, progress=not args.quiet and not args.json, by=args.by or ())
     if args.json:
         _print_json(experiment_payload(result))
     else:
@@ -50,11 +50,23 @@ def _cmd_compare(args: argparse.Namespace) -> int:
     from xrec.spec import load_spec
 
     baseline, candidate = (_with_cluster_flags(load_spec(path), args) for path in (args.baseline, args.candidate))
-    comparison = compare_specs(baseline, candidate, progress=not args.quiet and not args.json)
+    if args.overlap is not None and args.overlap < 1:
+        from xrec.errors import ConfigError
+
+        raise ConfigError(f"--overlap: must be at least 1, got {args.overlap}")
+    comparison = compare_specs(baseline, candidate, progress=not args.quiet and not args.json, by=args.by or (),
+                               overlap=args.overlap)
     if args.json:
         _print_json(comparison.to_dict())
     else:
         print(format_comparison(comparison))
+        if len(comparison.segments):
+            from xrec._validation import parse_metric_column
+            from xrec.report import HEADLINE_METRICS, format_segment_comparison
+
+            for metric in comparison.segments["metric"].unique():
+                if parse_metric_column(metric)[0] in HEADLINE_METRICS:  # every metric: --json
+                    print("\n" + format_segment_comparison(comparison, metric))
     return 0
 
 
@@ -149,6 +161,11 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("--workers", type=int, default=None, metavar="N",
                        help="evaluate on a local Dask cluster of N worker processes, users sharded over them")
 
+    def segments(p: argparse.ArgumentParser) -> None:
+        p.add_argument("--by", action="append", default=None, metavar="SEGMENTS",
+                       help="also break results down by segment: item_segment (held-out item new / tail / head), "
+                            "user_segment (training-history length) or a catalog column; repeatable")
+
     def common(p: argparse.ArgumentParser, json_flag: bool = True) -> None:
         p.add_argument("-q", "--quiet", action="store_true", help="no progress bars")
         if json_flag:
@@ -169,6 +186,7 @@ def build_parser() -> argparse.ArgumentParser:
         "'movielens') and print a scorecard table with paired comparisons against the baseline."))
     p.add_argument("spec", help="spec file, or a built-in spec name")
     cluster(p)
+    segments(p)
     common(p)
     p.set_defaults(func=_cmd_run)
 
@@ -177,7 +195,11 @@ def build_parser() -> argparse.ArgumentParser:
         "differences with bootstrap confidence intervals and randomization p-values."))
     p.add_argument("baseline", help="baseline spec file or built-in name")
     p.add_argument("candidate", help="candidate spec file or built-in name")
+    p.add_argument("--overlap", type=int, default=None, metavar="K",
+                   help="also report the mean top-K overlap per user and the items that moved most "
+                        "(default: the baseline spec's evaluate.overlap, else off)")
     cluster(p)
+    segments(p)
     common(p)
     p.set_defaults(func=_cmd_compare)
 

@@ -258,6 +258,7 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
     from xrec._demo_cold import EXPORTED, parts_chart, side_rows
     from xrec.blendfile import save_blend
     from xrec.notebook.charts import charts_to_html, comparison_chart, metric_bars, weight_profile
+    from xrec.notebook.segment_charts import segment_section
 
     rows = side_rows(study["sides"])
 
@@ -285,6 +286,9 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
         "tastes": tastes.to_dict(orient="records"),
         "scorecards": {n: c.to_dict() for n, c in cards.items()},
     }
+    # Results by segment (held-out item new / tail / head, shopper history length, product type).
+    segment_sections, payload["by_segment"] = segment_section(
+        cards, split.test, best_single, ["learned blend", "gated blend"], ("item_segment", "user_segment", "product_type"))
     scorecard_path = out / "scorecards.json"
     tmp = scorecard_path.with_suffix(".json.tmp")
     tmp.write_text(json.dumps(payload, indent=1, default=json_default), encoding="utf-8")
@@ -342,6 +346,7 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
             "the item's training popularity, so its new-item band is learned on the new items of the mixed validation "
             "split while known items keep collaborative-heavy weights.</p>"
         ),
+        **segment_sections,
         f"Scorecard of the {EXPORTED}": card,
         "Comparison vs popularity": vs_pop,
     }

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -163,19 +164,30 @@ def evaluate_scorers(spec: ExperimentSpec, scorers: dict[str, Any], fold: Any, *
 
 
 def run_experiment(
-    spec: ExperimentSpec, *, progress: bool = False, dataset: Dataset | None = None, only: str | None = None
+    spec: ExperimentSpec,
+    *,
+    progress: bool = False,
+    dataset: Dataset | None = None,
+    only: str | None = None,
+    by: Sequence[str] = (),
 ) -> ExperimentResult:
     """Fit every source on the test fold's training rows, evaluate sources and blends, compare with the baseline.
 
     With ``only`` (a source or blend name) just that scorer and the sources it needs are
-    fitted and evaluated, and there is no comparison.
+    fitted and evaluated, and there is no comparison. With ``by`` (``"item_segment"``,
+    ``"user_segment"`` or catalog column names) every scorecard and the comparison are also
+    broken down by those segments (:func:`xrec.evaluate.segments.segment_labels`):
+    ``extras["segments"]`` holds the per-segment scorecard table, the comparison its
+    ``segments`` table.
     """
     from xrec.evaluate import compare
+    from xrec.evaluate.segments import segment_labels
     from xrec.split import split_dataset
 
     dataset = dataset or load_spec_dataset(spec, progress=progress)
     split = split_dataset(dataset, **spec.split)
     fold = split.test
+    labels = [segment_labels(fold, name) for name in dict.fromkeys(by)]  # bad names fail before any fitting
     sources = build_sources(spec, progress=progress)
     blends = dict(spec.blends)
     if only is not None:
@@ -199,10 +211,41 @@ def run_experiment(
     scorecards = evaluate_scorers(spec, scorers, fold, progress=progress)
     comparison = None
     baseline = spec.baseline
+    seed = int(spec.evaluate.get("seed", 0))
     if only is None and baseline is not None and len(scorecards) > 1:
         others = [card for name, card in scorecards.items() if name != baseline]
-        comparison = compare(scorecards[baseline], *others, seed=int(spec.evaluate.get("seed", 0)))
-    return ExperimentResult(spec, dataset, split, scorers, scorecards, comparison, extras={"learned": learned})
+        comparison = compare(scorecards[baseline], *others, seed=seed, by=labels or None)
+    extras: dict[str, Any] = {"learned": learned}
+    if labels:
+        extras["segments"] = pd.concat(
+            [card.by_segment(labels, seed=seed).assign(scorer=name) for name, card in scorecards.items()], ignore_index=True
+        )
+    overlap_k = int(spec.evaluate.get("overlap", 0))
+    if comparison is not None and overlap_k:
+        from xrec.evaluate.overlap import top_list_change
+
+        # How much of each top-K list changes against the baseline (evaluate.overlap = K).
+        extras["top_lists"] = {
+            name: top_list_change(scorers[baseline], scorers[name], fold, k=overlap_k, names=(baseline, name))
+            for name in scorecards if name != baseline
+        }
+    if only is None and spec.evaluate.get("pairs"):
+        extras["pairs"] = _paired_runs(spec, scorers, scorecards, fold, overlap_k)
+    return ExperimentResult(spec, dataset, split, scorers, scorecards, comparison, extras=extras)
+
+
+def _paired_runs(spec: ExperimentSpec, scorers: dict, scorecards: dict, fold: Any, overlap_k: int) -> list[dict[str, Any]]:
+    """``evaluate.pairs``: each (baseline, candidate) pair compared on its own, with top-list overlap."""
+    from xrec.evaluate import compare
+    from xrec.evaluate.overlap import top_list_change
+
+    runs = []
+    for base, cand in spec.evaluate["pairs"]:
+        run: dict[str, Any] = {"comparison": compare(scorecards[base], scorecards[cand], seed=int(spec.evaluate.get("seed", 0)))}
+        if overlap_k:
+            run["top_lists"] = top_list_change(scorers[base], scorers[cand], fold, k=overlap_k, names=(base, cand))
+        runs.append(run)
+    return runs
 
 
 def _blend_source_names(table: dict[str, Any], sources: dict[str, Source]) -> list[str]:
@@ -361,9 +404,17 @@ def export_spec(
     return written
 
 
-def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progress: bool = False):
-    """Paired comparison of the primary scorers of two specs; both must use the same data and split."""
+def compare_specs(
+    baseline: ExperimentSpec, candidate: ExperimentSpec, *, progress: bool = False, by: Sequence[str] = (), overlap: int | None = None
+):
+    """Paired comparison of the primary scorers of two specs; both must use the same data and split.
+
+    ``by`` breaks the comparison down by segments too, as in :func:`run_experiment`.
+    With ``overlap`` (default: the baseline spec's ``evaluate.overlap``) the comparison's
+    ``top_lists`` also holds the candidate's top-K overlap with the baseline per user.
+    """
     from xrec.evaluate import compare
+    from xrec.evaluate.segments import segment_labels
 
     # only each spec's primary scorer (and the sources it blends) is fitted and evaluated
     base = run_experiment(baseline, progress=progress, only=baseline.primary)
@@ -381,7 +432,17 @@ def compare_specs(baseline: ExperimentSpec, candidate: ExperimentSpec, *, progre
     if b_card.name == c_card.name:
         c_card.name = f"{c_card.name} ({candidate.name})"
         b_card.name = f"{b_card.name} ({baseline.name})"
-    return compare(b_card, c_card, seed=int(baseline.evaluate.get("seed", 0)))
+    labels = [segment_labels(base.split.test, name) for name in dict.fromkeys(by)]
+    comparison = compare(b_card, c_card, seed=int(baseline.evaluate.get("seed", 0)), by=labels or None)
+    k = overlap if overlap is not None else int(baseline.evaluate.get("overlap", 0))
+    if k:
+        from xrec.evaluate.overlap import top_list_change
+
+        # both primaries were fitted on folds of the same data and split: the same users and items
+        comparison.top_lists[c_card.name] = top_list_change(
+            base.scorers[baseline.primary], cand.scorers[candidate.primary], base.split.test, k=k, names=(b_card.name, c_card.name)
+        )
+    return comparison
 
 
 def runtime_for_blend_file(path: str | Path, *, data_folder: str | None = None, progress: bool = False):

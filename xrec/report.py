@@ -44,6 +44,7 @@ def format_comparison(comparison: Any, metrics: tuple[str, ...] | None = None) -
             f"diff {r['difference']:+.4f} [{r['ci_low']:+.4f}, {r['ci_high']:+.4f}] ({verdict})  "
             f"p={r['p_value']:.4f} holm={r['p_holm']:.4f}"
         )
+    lines += [change.describe() for change in getattr(comparison, "top_lists", {}).values()]
     return "\n".join(lines)
 
 
@@ -66,7 +67,57 @@ def format_experiment(result: ExperimentResult) -> str:
                   f"(best single source {rec['best_single']}: {rec['best_single_validation']:.4f}); weights {weights}{gated}"]
     if result.comparison is not None:
         parts += ["", format_comparison(result.comparison, HEADLINE_METRICS), "(every metric's comparison: --json)"]
+    if "segments" in result.extras:
+        headline = f"{HEADLINE_METRICS[0]}@{min(result.spec.ks)}"
+        parts += ["", format_segments(result.extras["segments"], headline)]
+        if result.comparison is not None:
+            parts += ["", format_segment_comparison(result.comparison, headline)]
+    changes = result.extras.get("top_lists", {})
+    if changes:
+        parts += ["", "Top-list overlap with the baseline (share of each user's top-K kept):"]
+        parts += [change.describe() for change in changes.values()]
+    for run in result.extras.get("pairs", []):
+        parts += ["", format_comparison(run["comparison"], HEADLINE_METRICS)]
+        if "top_lists" in run:
+            parts.append(run["top_lists"].describe())
     return "\n".join(parts)
+
+
+def format_segments(table: pd.DataFrame, metric: str) -> str:
+    """Per-segment means of ``metric``: one block per breakdown, scorers × segments, ``mean [CI]``.
+
+    ``table`` is :meth:`Scorecard.by_segment` output with a ``scorer`` column; small segments
+    show their mean and are marked ``small``; the header row gives each segment's user count.
+    """
+    rows = table[table["metric"] == metric]
+    lines = [f"Results by segment ({metric}, mean [95% bootstrap CI]; 'small': too few users for an interval):"]
+    for by, block in rows.groupby("by", sort=False):
+        sizes = block.drop_duplicates("segment").set_index("segment")["n_users"]
+        cells = {
+            (r["scorer"], f"{r['segment']} (n={sizes[r['segment']]})"): (
+                f"{r['mean']:.4f} small" if r["small"] else _fmt(r["mean"], r["ci_low"], r["ci_high"])
+            )
+            for _, r in block.iterrows()
+        }
+        frame = pd.Series(cells).unstack().loc[block["scorer"].unique(), [f"{s} (n={n})" for s, n in sizes.items()]]
+        lines += ["", f"by {by}:", frame.to_string()]
+    return "\n".join(lines)
+
+
+def format_segment_comparison(comparison: Any, metric: str) -> str:
+    """The comparison of ``metric`` within each segment: difference, CI and Holm-over-segments p."""
+    t = comparison.segments
+    t = t[t["metric"] == metric]
+    lines = [f"Paired differences vs {comparison.baseline!r} by segment ({metric}; holm: Holm over the segments):"]
+    for _, r in t.iterrows():
+        head = f"  {r['by']:<13} {str(r['segment']):<16} n={int(r['n_users']):<6} {r['candidate']:<22}"
+        if r["small"]:
+            lines.append(f"{head} diff {r['difference']:+.4f} (small segment: no interval, no test)")
+        else:
+            verdict = "excludes 0" if (r["ci_low"] > 0 or r["ci_high"] < 0) else "includes 0"
+            lines.append(f"{head} diff {r['difference']:+.4f} [{r['ci_low']:+.4f}, {r['ci_high']:+.4f}] ({verdict}) "
+                         f"p={r['p_value']:.4f} holm={r['p_holm_segments']:.4f}")
+    return "\n".join(lines)
 
 
 def random_hit_rate(fold: Any, ks: tuple[int, ...]) -> dict[int, float]:
@@ -104,4 +155,12 @@ def experiment_payload(result: ExperimentResult) -> dict[str, Any]:
         out["comparison"] = result.comparison.to_dict()
     if result.extras.get("learned"):
         out["learned"] = result.extras["learned"]
+    if "segments" in result.extras:
+        # One row per (breakdown, segment, metric, scorer); small segments have no interval (null).
+        rows = result.extras["segments"].astype(object).where(result.extras["segments"].notna(), None)
+        out["segments"] = rows.to_dict(orient="records")
+    if result.extras.get("top_lists"):
+        out["top_lists"] = {name: change.to_dict() for name, change in result.extras["top_lists"].items()}
+    if result.extras.get("pairs"):
+        out["pairs"] = [{key: value.to_dict() for key, value in run.items()} for run in result.extras["pairs"]]
     return out

@@ -18,6 +18,8 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     baseline = "popularity"      # the source or blend the others are compared with
     # primary = "als_genres"     # the scorer `xrec compare` / `xrec export` use (default: first blend)
     # protocol = "sampled"       # full ranking unless asked; sampled takes `negatives`
+    # overlap = 10               # also report each scorer's top-10 overlap with the baseline
+    # pairs = [["als", "als_genres"]]  # extra paired comparisons, each against its own baseline
     # workers = 2                # evaluate on a local Dask cluster of 2 processes, sharded by users
     # scheduler = "tcp://scheduler-host:8786"  # or on a running Dask cluster (not with `workers`)
     # shard_size = 8192          # users per Dask task (default: about 4 per worker; unused in one process)
@@ -103,7 +105,7 @@ from xrec.errors import ConfigError
 _SPLIT_KEYS = {"rule", "seed", "validation", "test_fraction", "cutoff", "cold_fraction", "min_train", "new_share", "cold_users"}
 _EVAL_KEYS = {
     "ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size",
-    "scheduler", "workers", "shard_size",
+    "scheduler", "workers", "shard_size", "overlap", "pairs",
 }
 _BLEND_KEYS = {"weights", "normalizer", "sources", "method", "metric", "gated", "fusion", "k", "depth", "seed"}
 _LEARN_METHODS = ("coordinate_ascent", "optuna", "logistic")
@@ -236,7 +238,7 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
     unknown = [m for m in metrics if m not in ALL_METRICS]
     if unknown:
         raise ConfigError(f"evaluate.metrics: unknown metric name(s) {unknown}; known: {list(ALL_METRICS)}")
-    for key, lowest in (("chunk_size", 1), ("negatives", 1), ("seed", 0), ("shard_size", 1)):
+    for key, lowest in (("chunk_size", 1), ("negatives", 1), ("seed", 0), ("shard_size", 1), ("overlap", 1)):
         _check_int(evaluate, key, lowest, "evaluate")
     from xrec.cluster import check_cluster_options
 
@@ -262,6 +264,13 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
             raise ConfigError(f"evaluate.{key}: the name of a source or blend, got {value!r}")
         if value is not None and value not in sources and value not in blends:
             raise ConfigError(f"evaluate.{key}: {value!r} is neither a source nor a blend")
+    pairs = evaluate.get("pairs", [])
+    if not isinstance(pairs, list) or not all(isinstance(p, list) and len(p) == 2 for p in pairs):
+        raise ConfigError(f"evaluate.pairs: must be a list of [baseline, candidate] name pairs, got {pairs!r}")
+    for pair in pairs:
+        for value in pair:
+            if value not in sources and value not in blends:
+                raise ConfigError(f"evaluate.pairs: {value!r} is neither a source nor a blend")
     return ExperimentSpec(
         data=data,
         split=split,

@@ -14,8 +14,10 @@ from xrec.errors import ConfigError
 
 __all__ = ["IMAGE_ENCODERS", "TEXT_ENCODERS", "make_clip_encoders", "make_image_encoder", "make_text_encoder"]
 
-TEXT_ENCODERS = ("minilm",)
-IMAGE_ENCODERS = ("efficientnet_lite0",)
+TEXT_ENCODERS = ("minilm", "minilm_int8")
+IMAGE_ENCODERS = ("efficientnet_lite0", "efficientnet_lite0_onnx", "efficientnet_lite0_torch")
+# Image encoder name -> runtime: the plain name takes the faster one installed.
+_IMAGE_RUNTIMES = {"efficientnet_lite0": "auto", "efficientnet_lite0_onnx": "onnx", "efficientnet_lite0_torch": "torch"}
 # One encoder (one loaded model) per name and error policy for the whole process: several
 # content sources fitted side by side would otherwise each load the same weights.
 _SHARED: dict[tuple[str, str, str], Encoder] = {}
@@ -26,7 +28,8 @@ def make_text_encoder(name: str = "minilm", *, on_error: str = "skip") -> Encode
     Parameters
     ----------
     name
-        ``"minilm"``: :class:`~xrec.encoders.text.MiniLMTextEncoder` (all-MiniLM-L6-v2, 384-d).
+        ``"minilm"``: :class:`~xrec.encoders.text.MiniLMTextEncoder` (all-MiniLM-L6-v2, 384-d);
+        ``"minilm_int8"``: the same with ``precision="int8"`` (its own cache entries).
     on_error
         Passed to the encoder: ``"skip"`` gives blank texts a zero row and a warning.
 
@@ -44,10 +47,11 @@ def make_text_encoder(name: str = "minilm", *, on_error: str = "skip") -> Encode
     key = ("text", name, on_error)
     if key in _SHARED:
         return _SHARED[key]
-    if name == "minilm":
+    if name in ("minilm", "minilm_int8"):
         from xrec.encoders.text import MiniLMTextEncoder
 
-        return _SHARED.setdefault(key, MiniLMTextEncoder(on_error=on_error))  # type: ignore[arg-type]
+        precision = "int8" if name == "minilm_int8" else "fp32"
+        return _SHARED.setdefault(key, MiniLMTextEncoder(on_error=on_error, precision=precision))  # type: ignore[arg-type]
     raise ConfigError(f"text encoder {name!r} is unknown; known: {list(TEXT_ENCODERS)} (CLIP: use kind 'cross_modal' with bridge='clip')")
 
 
@@ -58,7 +62,9 @@ def make_image_encoder(name: str = "efficientnet_lite0", *, on_error: str = "ski
     ----------
     name
         ``"efficientnet_lite0"``: :class:`~xrec.encoders.image.EfficientNetLite0Encoder`
-        (ImageNet-1k, 1,280-d pooled features).
+        (ImageNet-1k, 1,280-d pooled features) on ONNX Runtime when installed, else PyTorch;
+        ``"efficientnet_lite0_onnx"`` / ``"efficientnet_lite0_torch"`` name the runtime
+        (each has its own cache entries), e.g. to compare the two.
     on_error
         Passed to the encoder: ``"skip"`` gives unreadable images a zero row and a warning.
     crop
@@ -77,10 +83,10 @@ def make_image_encoder(name: str = "efficientnet_lite0", *, on_error: str = "ski
     key = ("image", name, on_error, crop)
     if key in _SHARED:
         return _SHARED[key]
-    if name == "efficientnet_lite0":
+    if name in _IMAGE_RUNTIMES:
         from xrec.encoders.image import EfficientNetLite0Encoder
 
-        encoder = EfficientNetLite0Encoder(on_error=on_error, crop=crop)  # type: ignore[arg-type]
+        encoder = EfficientNetLite0Encoder(on_error=on_error, crop=crop, runtime=_IMAGE_RUNTIMES[name])  # type: ignore[arg-type]
         encoder.check_settings()  # a bad crop fails here, before the encoder is shared
         return _SHARED.setdefault(key, encoder)
     raise ConfigError(f"image encoder {name!r} is unknown; known: {list(IMAGE_ENCODERS)}")

@@ -27,6 +27,7 @@ from xrec.encoders._image_io import (
     image_problems,
     report_problems,
 )
+from xrec.encoders._onnx_graph import OnnxGraph, graph_file, resolve_runtime
 from xrec.encoders.base import Encoder
 from xrec.errors import ConfigError, DataError
 
@@ -64,6 +65,14 @@ class ClipEncoders:
     max_pixels
         Pixel limit for images, checked before decoding (see
         :class:`~xrec.encoders.image.EfficientNetLite0Encoder`).
+    runtime
+        Runtime of the image tower: ``"auto"`` (default) runs it through ONNX Runtime when
+        ``onnxruntime`` and ``onnx`` are installed and the weights come from a file (the
+        exported graph is kept by the file's hash, see :mod:`xrec.encoders._onnx_graph`),
+        else PyTorch; ``"onnx"`` / ``"torch"`` choose. The text tower stays on PyTorch.
+        ONNX Runtime adds ``:onnxruntime`` to the image encoder's cache identity.
+    graph_dir
+        Folder for the exported graph; default the embedding cache folder.
 
     Attributes
     ----------
@@ -105,6 +114,8 @@ class ClipEncoders:
         num_threads: int | None = 2,
         on_error: OnError = "raise",
         max_pixels: int | None = DEFAULT_MAX_PIXELS,
+        runtime: str = "auto",
+        graph_dir: str | os.PathLike | None = None,
     ) -> None:
         self.model_name = model_name
         self.weights = weights
@@ -113,6 +124,8 @@ class ClipEncoders:
         self.num_threads = num_threads
         self.on_error = on_error
         self.max_pixels = max_pixels
+        self.runtime = runtime
+        self.graph_dir = graph_dir
         self.image = ClipImageEncoder(self)
         self.text = ClipTextEncoder(self)
 
@@ -120,7 +133,7 @@ class ClipEncoders:
         return (
             f"ClipEncoders(model_name={self.model_name!r}, weights={self.weights!r}, "
             f"pretrained_tag={self.pretrained_tag!r}, batch_size={self.batch_size}, "
-            f"num_threads={self.num_threads}, on_error={self.on_error!r})"
+            f"num_threads={self.num_threads}, on_error={self.on_error!r}, runtime={self.runtime!r})"
         )
 
     # -- settings -------------------------------------------------------------------------
@@ -213,8 +226,28 @@ class ClipEncoders:
             self.identity  # noqa: B018  (hash the file now, so identity is ready)
         self.tokenizer_ = open_clip.get_tokenizer(self.model_name)
         self.preprocess_ = preprocess
+        self.image_graph_ = None
+        if self.image_runtime() == "onnx":
+            import torch
+
+            size = getattr(model.visual, "image_size", 224)
+            side = int(max(size) if isinstance(size, (tuple, list)) else size)
+            self.image_graph_ = OnnxGraph(
+                _image_tower(model), torch.zeros((2, 3, side, side)), graph_file(self.graph_dir, f"open_clip-{self.model_name}",
+                                                                              self.weights_sha256_),
+                num_threads=self.num_threads, output_names=("vectors",),
+            )
         self.model_ = model
         return self
+
+    def image_runtime(self) -> str:
+        """``"onnx"`` or ``"torch"``: where the image tower runs (ONNX Runtime only for a weights file)."""
+        if self.weights is None:
+            if self.runtime == "onnx":
+                raise ConfigError("clip: runtime='onnx' needs a weights file (the graph is kept by the file's hash)")
+            resolve_runtime(self.runtime, "clip")  # an unknown value still fails
+            return "torch"
+        return resolve_runtime(self.runtime, "clip")
 
     def _image_size(self) -> int:
         size = getattr(self.model_.visual, "image_size", 224)
@@ -326,8 +359,19 @@ class ClipImageEncoder(_ClipPart):
             tensors.append(parent.preprocess_(img))
         return kept, (torch.stack(tensors) if tensors else None)
 
+    @property
+    def identity(self) -> str:  # type: ignore[override]
+        """The model's identity, ``:image``, and ``:onnxruntime`` when the tower runs there."""
+        base = f"{self.parent.identity}:{self.modality}"
+        return f"{base}:onnxruntime" if self.parent.image_runtime() == "onnx" else base
+
     def _forward(self, batch: Any) -> Any:
-        return self.parent.model_.encode_image(batch)
+        graph = getattr(self.parent, "image_graph_", None)
+        if graph is None:
+            return self.parent.model_.encode_image(batch)
+        import torch
+
+        return torch.from_numpy(graph.run(batch.numpy())[0])
 
 
 class ClipTextEncoder(_ClipPart):
@@ -360,3 +404,18 @@ class ClipTextEncoder(_ClipPart):
 
     def _forward(self, batch: Any) -> Any:
         return self.parent.model_.encode_text(batch)
+
+
+def _image_tower(model: Any) -> Any:
+    """The open_clip model's ``encode_image`` as a module (what is exported to ONNX)."""
+    import torch
+
+    class ImageTower(torch.nn.Module):
+        def __init__(self, net: Any) -> None:
+            super().__init__()
+            self.net = net
+
+        def forward(self, x: Any) -> Any:
+            return self.net.encode_image(x)
+
+    return ImageTower(model).eval()

@@ -23,6 +23,13 @@ file, an image over the pixel limit, a mode that cannot be converted) is reporte
 per item: by default :class:`~xrec.errors.DataError` lists the bad items; with
 ``on_error="skip"`` they get all-zero rows, ``False`` in the ``ok`` mask and a
 warning says how many were skipped.
+
+Runtime: with ``onnxruntime`` and ``onnx`` installed (the default install), the network
+runs through ONNX Runtime (``runtime="auto"``): the graph is exported from the PyTorch
+module once per weights file and kept beside the embedding cache (see
+:mod:`xrec.encoders._onnx_graph`); about twice as fast as PyTorch eager on CPU, vectors
+equal to ~1e-6. The runtime is part of the cache identity, so vectors of the two never mix.
+Images are decoded and resized on a helper thread one batch ahead of the forward pass.
 """
 
 from __future__ import annotations
@@ -30,7 +37,8 @@ from __future__ import annotations
 from xrec import _torch_guard  # noqa: F401  (must precede any torchvision / timm import)
 
 import os
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -40,6 +48,7 @@ import numpy as np
 from xrec._validation import check_int, check_number
 from xrec.encoders._common import OnError, check_batching, check_on_error, file_sha256, torch_threads
 from xrec.encoders._efficientnet_keys import default_weights_path, timm_key
+from xrec.encoders._onnx_graph import OnnxGraph, graph_file, resolve_runtime
 from xrec.encoders._image_io import (
     DEFAULT_MAX_PIXELS,
     BadImage,
@@ -141,6 +150,10 @@ class EfficientNetLite0Encoder(Encoder):
         PIL image -> ``(3, 224, 224)`` tensor, timm's eval transform for the model.
     weights_sha256_ : str
         Hash of the weights file.
+    runtime_ : str
+        ``"onnx"`` or ``"torch"``, the runtime in use (after :meth:`load`).
+    graph_ : OnnxGraph or None
+        The ONNX Runtime session, when ``runtime_`` is ``"onnx"``.
     """
 
     modality = "image"
@@ -156,6 +169,8 @@ class EfficientNetLite0Encoder(Encoder):
         max_pixels: int | None = DEFAULT_MAX_PIXELS,
         weights: str | os.PathLike | None = None,
         crop: float = 1.0,
+        runtime: str = "auto",
+        graph_dir: str | os.PathLike | None = None,
     ) -> None:
         self.batch_size = batch_size
         self.num_threads = num_threads
@@ -163,21 +178,30 @@ class EfficientNetLite0Encoder(Encoder):
         self.max_pixels = max_pixels
         self.weights = weights
         self.crop = crop
+        self.runtime = runtime
+        self.graph_dir = graph_dir
 
     def __repr__(self) -> str:
         return (
             f"EfficientNetLite0Encoder(batch_size={self.batch_size}, num_threads={self.num_threads}, "
-            f"on_error={self.on_error!r}, max_pixels={self.max_pixels!r}, weights={self.weights!r}, crop={self.crop!r})"
+            f"on_error={self.on_error!r}, max_pixels={self.max_pixels!r}, weights={self.weights!r}, crop={self.crop!r}, "
+            f"runtime={self.runtime!r})"
         )
 
     # -- identity -------------------------------------------------------------------------
 
     @property
     def identity(self) -> str:  # type: ignore[override]
-        """Architecture, the first 16 hex digits of the weights file's hash, and the crop below 1."""
+        """Architecture, the first 16 hex digits of the weights file's hash, ``:onnxruntime``
+        when the network runs through ONNX Runtime, and the crop below 1."""
         base = f"efficientnet-lite0-in1k:{_ARCH}:{self._weights_hash()[:16]}"
-        # the whole image keeps the identity it always had, so existing cache entries stay valid
+        # the whole image on PyTorch keeps the identity it always had, so existing entries stay valid
+        if self._runtime() == "onnx":
+            base = f"{base}:onnxruntime"
         return base if self.crop == 1.0 else f"{base}:crop{float(self.crop):g}"
+
+    def _runtime(self) -> str:
+        return resolve_runtime(self.runtime, "image encoder")
 
     @property
     def dim(self) -> int:
@@ -206,6 +230,7 @@ class EfficientNetLite0Encoder(Encoder):
         check_batching(self.batch_size, self.num_threads, who)
         check_int(self.max_pixels, f"{who}: max_pixels", low=1, allow_none=True, expected="a positive int")
         check_number(self.crop, f"{who}: crop", low=0.0, low_open=True, high=1.0, expected="a number in (0, 1]")
+        self._runtime()
 
     def load(self) -> EfficientNetLite0Encoder:
         """Build the model and load the weights now (otherwise the first encode does).
@@ -248,6 +273,13 @@ class EfficientNetLite0Encoder(Encoder):
         # Enough pixels for the bicubic resize to the short side to antialias properly.
         self._min_side = 2 * round(config["input_size"][-1] / config["crop_pct"] / float(self.crop))
         self.weights_sha256_ = self._weights_hash()
+        self.runtime_ = self._runtime()
+        self.graph_ = None
+        if self.runtime_ == "onnx":
+            path = graph_file(self.graph_dir, _ARCH, self.weights_sha256_)
+            example = torch.zeros((2, 3, *config["input_size"][-2:]), dtype=torch.float32)
+            self.graph_ = OnnxGraph(_vectors_and_probs(model), example, path, num_threads=self.num_threads,
+                                    output_names=("vectors", "probs"))
         self.model_ = model
         return self
 
@@ -289,7 +321,6 @@ class EfficientNetLite0Encoder(Encoder):
             With ``on_error="raise"``, when any item cannot be decoded; every bad item
             is listed (all items are decoded first, before any is encoded).
         """
-        import torch
         from tqdm.auto import tqdm
 
         who = "image encoder"
@@ -307,27 +338,61 @@ class EfficientNetLite0Encoder(Encoder):
             problems = image_problems(contents, max_pixels=self.max_pixels)
             report_problems(problems, n, policy, who)
         with tqdm(total=n, disable=not progress, unit="img", desc="images") as bar, torch_threads(self.num_threads):
-            for start in range(0, n, self.batch_size):
-                rows, tensors = [], []
-                for i in range(start, min(start + self.batch_size, n)):
-                    try:
-                        img = decode_checked(contents[i], self.max_pixels, self._min_side)
-                    except BadImage as exc:
-                        problems[i] = str(exc)
-                        continue
-                    rows.append(i)
-                    tensors.append(self.transform_(centre_crop(img, float(self.crop))))
+            for start, stop, rows, batch, bad in self._prepared_batches(contents):
+                problems.update(bad)
                 if rows:
-                    with torch.inference_mode():
-                        batch = torch.stack(tensors).contiguous(memory_format=torch.channels_last)
-                        feats = self.model_.forward_head(self.model_.forward_features(batch), pre_logits=True)
-                        logits = self.model_.classifier(feats)
-                        vectors[rows] = torch.nn.functional.normalize(feats, dim=1).numpy()
-                        probs[rows] = torch.softmax(logits, dim=1).numpy()
+                    vectors[rows], probs[rows] = self._forward(batch)
                     ok[rows] = True
-                bar.update(min(start + self.batch_size, n) - start)
+                bar.update(stop - start)
         report_problems(problems, n, policy, who)
         return ImageBatchResult(vectors=vectors, probs=probs, ok=ok, problems=problems)
+
+    def _prepare(self, contents: list[Any], start: int, stop: int) -> tuple[int, int, list[int], np.ndarray, dict[int, str]]:
+        """Decode, resize and crop items ``start:stop``: positions, ``(m, 3, 224, 224)`` batch, problems."""
+        rows, arrays, bad = [], [], {}
+        for i in range(start, stop):
+            try:
+                img = decode_checked(contents[i], self.max_pixels, self._min_side)
+            except BadImage as exc:
+                bad[i] = str(exc)
+                continue
+            rows.append(i)
+            arrays.append(self.transform_(centre_crop(img, float(self.crop))).numpy())
+        batch = np.stack(arrays) if arrays else np.zeros((0, 3, 224, 224), dtype=np.float32)
+        return start, stop, rows, batch, bad
+
+    def _prepared_batches(self, contents: list[Any]) -> Iterator[tuple[int, int, list[int], np.ndarray, dict[int, str]]]:
+        """Batches in order; a helper thread decodes the next one while the caller runs this one.
+
+        Pillow releases the GIL while decoding and resizing, so the decoding overlaps the
+        forward pass instead of leaving a core idle between batches.
+        """
+        starts = range(0, len(contents), self.batch_size)
+        if len(starts) <= 1:
+            for start in starts:
+                yield self._prepare(contents, start, min(start + self.batch_size, len(contents)))
+            return
+        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="xrec-decode") as pool:
+            ahead = pool.submit(self._prepare, contents, 0, min(self.batch_size, len(contents)))
+            for start in starts:
+                current = ahead.result()
+                nxt = start + self.batch_size
+                if nxt < len(contents):
+                    ahead = pool.submit(self._prepare, contents, nxt, min(nxt + self.batch_size, len(contents)))
+                yield current
+
+    def _forward(self, batch: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """L2-normalized features and class probabilities of one preprocessed batch."""
+        graph = getattr(self, "graph_", None)
+        if graph is not None:
+            vectors, probs = graph.run(batch)
+            return vectors, probs
+        import torch
+
+        with torch.inference_mode():
+            x = torch.from_numpy(batch).contiguous(memory_format=torch.channels_last)
+            out = _vectors_and_probs(self.model_)(x)
+            return out[0].numpy(), out[1].numpy()
 
     def encode_with_mask(self, contents: Sequence[Any], *, progress: bool = False) -> tuple[np.ndarray, np.ndarray]:
         """Vectors ``(n, 1280)`` and the ``ok`` mask (see :meth:`encode_with_probs`)."""
@@ -350,3 +415,22 @@ class EfficientNetLite0Encoder(Encoder):
         """
         return self.encode_with_probs(contents, progress=progress).probs
 
+
+def _vectors_and_probs(model: Any) -> Any:
+    """The network with its outputs as the encoder uses them: unit feature vectors, class probabilities.
+
+    Exported as is to ONNX, so both runtimes compute the normalization and softmax the same way.
+    """
+    import torch
+
+    class VectorsAndProbs(torch.nn.Module):
+        def __init__(self, net: Any) -> None:
+            super().__init__()
+            self.net = net
+
+        def forward(self, x: Any) -> tuple[Any, Any]:
+            feats = self.net.forward_head(self.net.forward_features(x), pre_logits=True)
+            logits = self.net.classifier(feats)
+            return torch.nn.functional.normalize(feats, dim=1), torch.softmax(logits, dim=1)
+
+    return VectorsAndProbs(model).eval()

@@ -20,6 +20,7 @@ from xrec.errors import ConfigError, DataError
 
 _DEFAULT_IDENTITY = "all-MiniLM-L6-v2"
 _DEFAULT_MAX_SEQ_LENGTH = 256  # the value the packaged sentence_bert_config.json ships
+PRECISIONS = ("fp32", "int8")
 
 
 def default_model_dir() -> Path:
@@ -87,6 +88,17 @@ class MiniLMTextEncoder(Encoder):
     max_seq_length
         Longer texts are truncated to this many word pieces; ``None`` keeps the model's
         own setting (256). Part of the cache version, since it changes the vectors.
+    precision
+        ``"fp32"`` (default) or ``"int8"``: the linear layers' weights quantized to int8
+        per output channel and activations quantized on the fly
+        (``torch.ao.quantization.quantize_dynamic``). About 3x faster on CPU; on the demo
+        shop's descriptions the vectors keep a cosine of ~0.98 to the fp32 ones (see
+        ``benchmarks/bench_encoders.py``). ``"int8"`` is part of the cache version.
+
+    Notes
+    -----
+    sentence-transformers already sorts texts by length before batching, so each batch
+    pads to similar lengths (length-bucketed batches come for free).
 
     Attributes
     ----------
@@ -104,12 +116,14 @@ class MiniLMTextEncoder(Encoder):
         on_error: OnError = "raise",
         model_dir: str | os.PathLike | None = None,
         max_seq_length: int | None = None,
+        precision: str = "fp32",
     ) -> None:
         self.batch_size = batch_size
         self.num_threads = num_threads
         self.on_error = on_error
         self.model_dir = model_dir
         self.max_seq_length = max_seq_length
+        self.precision = precision
 
     # -- identity -------------------------------------------------------------------------
 
@@ -122,10 +136,12 @@ class MiniLMTextEncoder(Encoder):
 
     @property
     def version(self) -> str:  # type: ignore[override]
-        """``"1"``, with a ``+seq<N>`` suffix when ``max_seq_length`` is not the default."""
+        """``"1"``, with a ``+seq<N>`` suffix when ``max_seq_length`` is not the default and
+        ``+int8`` for the quantized model."""
         # Bump the leading number whenever pooling, normalization or preprocessing change.
         seq = self.max_seq_length or _DEFAULT_MAX_SEQ_LENGTH
-        return "1" if seq == _DEFAULT_MAX_SEQ_LENGTH else f"1+seq{seq}"
+        version = "1" if seq == _DEFAULT_MAX_SEQ_LENGTH else f"1+seq{seq}"
+        return f"{version}+int8" if self.precision == "int8" else version
 
     @property
     def dim(self) -> int:
@@ -143,6 +159,8 @@ class MiniLMTextEncoder(Encoder):
         check_on_error(self.on_error, "text encoder")
         check_batching(self.batch_size, self.num_threads, "text encoder")
         check_int(self.max_seq_length, "text encoder: max_seq_length", low=1, allow_none=True, expected="a positive int")
+        if self.precision not in PRECISIONS:
+            raise ConfigError(f"text encoder: precision must be one of {list(PRECISIONS)}, got {self.precision!r}")
 
     def load(self, *, progress: bool = False) -> MiniLMTextEncoder:
         """Load the model now (otherwise the first encode does). Returns ``self``."""
@@ -166,6 +184,8 @@ class MiniLMTextEncoder(Encoder):
         if self.max_seq_length is not None:
             model.max_seq_length = self.max_seq_length
         model.eval()
+        if self.precision == "int8":
+            model = _quantized(model)
         self.model_ = model
         return self
 
@@ -234,5 +254,19 @@ class MiniLMTextEncoder(Encoder):
     def __repr__(self) -> str:
         return (
             f"MiniLMTextEncoder(batch_size={self.batch_size}, num_threads={self.num_threads}, "
-            f"on_error={self.on_error!r}, model_dir={self.model_dir!r}, max_seq_length={self.max_seq_length!r})"
+            f"on_error={self.on_error!r}, model_dir={self.model_dir!r}, max_seq_length={self.max_seq_length!r}, precision={self.precision!r})"
         )
+
+
+def _quantized(model: Any) -> Any:
+    """``model`` with its linear layers dynamically quantized to int8 (weights per output channel).
+
+    Per-channel weight scales keep the vectors much closer to fp32 than one scale per
+    matrix (cosine ~0.98 vs ~0.95 on the demo shop's descriptions, measured).
+    """
+    import torch
+    from torch.ao.quantization import per_channel_dynamic_qconfig, quantize_dynamic
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # torch announces the move of quantization to torchao
+        return quantize_dynamic(model, {torch.nn.Linear: per_channel_dynamic_qconfig}, dtype=torch.qint8)

@@ -9,6 +9,7 @@ from xrec.evaluate.compare import Comparison, compare
 from xrec.evaluate.evaluator import as_score_fn, evaluate, evaluate_blocks
 from xrec.evaluate.protocols import FullRanking, SampledNegatives
 from xrec.evaluate.scorecard import Scorecard
+from xrec.evaluate.segments import segment_labels
 from xrec.evaluate.sharded import evaluate_blend_sharded, evaluate_blocks_sharded, evaluate_sharded
 
 __all__ = [
@@ -33,6 +34,7 @@ __all__ = [
     "evaluate_screened",
     "metrics_from_ranks",
     "rank_heldout",
+    "segment_labels",
     "top_k_items",
     "top_n_items",
 ]

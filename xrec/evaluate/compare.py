@@ -5,6 +5,7 @@ from __future__ import annotations
 import html
 from collections.abc import Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -12,6 +13,7 @@ import pandas as pd
 from xrec._validation import check_int
 from xrec.errors import ConfigError, DataError
 from xrec.evaluate._stats import bootstrap_means, holm, percentile_interval, sign_flip_pvalue
+from xrec.evaluate.breakdown import MIN_SEGMENT_USERS, check_labels, label_list, segment_order
 from xrec.evaluate.scorecard import Scorecard, plain
 
 TABLE_COLUMNS = [
@@ -26,6 +28,7 @@ TABLE_COLUMNS = [
     "p_value",
     "p_holm",
 ]
+SEGMENT_TABLE_COLUMNS = ["by", "segment", "n_users", "small", *TABLE_COLUMNS, "p_holm_segments"]
 
 
 @dataclass
@@ -44,13 +47,22 @@ class Comparison:
         ``relative_change`` (difference / baseline mean), the sign-flip test ``p_value``
         and ``p_holm`` (Holm-adjusted over the candidates of that metric).
     settings
-        ``n_resamples``, ``confidence``, ``seed``, ``n_users``.
+        ``n_resamples``, ``confidence``, ``seed``, ``n_users`` (and ``min_users`` with segments).
+    segments
+        With ``compare(..., by=...)``: the same comparison within every segment, one row per
+        (breakdown, segment, metric, candidate) with ``n_users``, ``small`` and
+        ``p_holm_segments`` (Holm over the segments of that breakdown); else empty.
+    top_lists
+        Candidate name -> :class:`~xrec.evaluate.overlap.TopListChange` against the
+        baseline, when the caller measured it (``xrec compare`` with an overlap cut-off).
     """
 
     baseline: str
     candidates: list[str]
     table: pd.DataFrame
     settings: dict = field(default_factory=dict)
+    segments: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=SEGMENT_TABLE_COLUMNS))
+    top_lists: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         """Plain form (str/int/float/list/dict only) for JSON or TOML files."""
@@ -59,6 +71,10 @@ class Comparison:
             "candidates": list(self.candidates),
             "settings": plain(self.settings),
             "rows": [plain(r) for r in self.table.to_dict(orient="records")],
+            # Small segments have no interval or test: their NaN fields are left out.
+            **({"segments": [plain({k: v for k, v in r.items() if not (isinstance(v, float) and np.isnan(v))})
+                             for r in self.segments.to_dict(orient="records")]} if len(self.segments) else {}),
+            **({"top_lists": {name: change.to_dict() for name, change in self.top_lists.items()}} if self.top_lists else {}),
         }
 
     def title(self) -> str:
@@ -99,6 +115,9 @@ def compare(
     n_resamples: int = 10_000,
     confidence: float = 0.95,
     seed: int = 0,
+    by: pd.Series | str | Sequence[pd.Series | str] | None = None,
+    min_users: int = MIN_SEGMENT_USERS,
+    fold: Any = None,
 ) -> Comparison:
     """Paired comparison of one or more candidates against a baseline, metric by metric.
 
@@ -127,6 +146,20 @@ def compare(
         Level of the intervals.
     seed
         Seed of the resampling.
+    by
+        Segment labels per user (a Series indexed by user index and named after the
+        breakdown, e.g. ``segment_labels(fold, "item_segment")``), or several: the comparison
+        is repeated within every segment of each (:attr:`Comparison.segments`), each with its
+        own paired interval and test, and ``p_holm_segments`` adjusts the p-values by Holm
+        (1979) over the segments of the breakdown (per metric and candidate; the family is
+        every segment with a test). Segments under ``min_users`` users are flagged ``small``:
+        means only, no interval and no test.
+        A breakdown may also be given by name (``"item_segment"``, ``"user_segment"``, a
+        catalog column) together with ``fold``.
+    min_users
+        Smallest segment that gets an interval and a test.
+    fold
+        The fold the scorecards were evaluated on, when ``by`` names breakdowns.
 
     Raises
     ------
@@ -218,4 +251,47 @@ def compare(
         rows.extend(metric_rows)
     table = pd.DataFrame(rows, columns=TABLE_COLUMNS)
     settings = {"n_resamples": int(n_resamples), "confidence": float(confidence), "seed": int(seed), "n_users": len(base_users)}
-    return Comparison(baseline=names[0], candidates=names[1:], table=table, settings=settings)
+    result = Comparison(baseline=names[0], candidates=names[1:], table=table, settings=settings)
+    if by is not None:
+        check_int(min_users, "min_users", low=1)
+        result.settings["min_users"] = int(min_users)
+        many = label_list(by, fold)
+        options = {"metrics": metrics, "n_resamples": n_resamples, "confidence": confidence, "seed": seed}
+        result.segments = pd.DataFrame(
+            [row for labels in many for row in _segment_rows(cards, names, labels, base_users, min_users, options)],
+            columns=SEGMENT_TABLE_COLUMNS,
+        )
+    return result
+
+
+def _subset(card: Scorecard, name: str, users: np.ndarray) -> Scorecard:
+    per_user = card.per_user[card.per_user["user"].isin(users)].reset_index(drop=True)
+    return Scorecard(name, per_user, ks=card.ks, protocol=card.protocol, fold_settings=card.fold_settings, n_items=card.n_items)
+
+
+def _segment_rows(cards, names, labels, users, min_users, options) -> list[dict]:
+    """The comparison within each segment of one breakdown, then Holm over its segments."""
+    aligned = check_labels(labels, users).to_numpy()
+    by = str(labels.name)
+    rows: list[dict] = []
+    for segment in segment_order(aligned):
+        members = users[aligned == segment]
+        small = len(members) < min_users
+        sub = [_subset(card, name, members) for card, name in zip(cards, names)]
+        if small:
+            # Too few users to say anything: means only, no interval, no test.
+            for cand in sub[1:]:
+                for metric in options["metrics"]:
+                    b, c = float(sub[0].per_user[metric].mean()), float(cand.per_user[metric].mean())
+                    rows.append({"by": by, "segment": segment, "n_users": len(members), "small": True, "metric": metric,
+                                 "candidate": cand.name, "baseline_mean": b, "candidate_mean": c, "difference": c - b})
+            continue
+        part = compare(sub[0], *sub[1:], **options).table
+        for r in part.to_dict(orient="records"):
+            rows.append({"by": by, "segment": segment, "n_users": len(members), "small": False, **r})
+    for metric in options["metrics"]:
+        for cand in names[1:]:
+            family = [r for r in rows if r["metric"] == metric and r["candidate"] == cand and not r["small"]]
+            for r, p in zip(family, holm(np.array([r["p_value"] for r in family]))):
+                r["p_holm_segments"] = float(p)
+    return rows

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import html
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -12,6 +13,7 @@ import pandas as pd
 from xrec._validation import parse_metric_column
 from xrec.errors import ConfigError
 from xrec.evaluate._stats import bootstrap_means, percentile_interval
+from xrec.evaluate.breakdown import MIN_SEGMENT_USERS, label_list, segment_summary
 
 
 def plain(value: Any) -> Any:
@@ -131,6 +133,51 @@ class Scorecard:
             if col not in self.per_user.columns:
                 rows.append((col, float(value), np.nan, np.nan, self.n_users))
         return pd.DataFrame(rows, columns=["metric", "mean", "ci_low", "ci_high", "n_users"]).set_index("metric")
+
+    def by_segment(
+        self,
+        labels: pd.Series | str | Sequence[pd.Series | str],
+        metrics: Sequence[str] | None = None,
+        *,
+        fold: Any = None,
+        confidence: float = 0.95,
+        seed: int = 0,
+        n_resamples: int = 2000,
+        min_users: int = MIN_SEGMENT_USERS,
+    ) -> pd.DataFrame:
+        """Mean and confidence interval of every metric within each segment.
+
+        The means are group means of :attr:`per_user` grouped by the labels; intervals are
+        bootstrap percentile intervals over each segment's own users. Segments with fewer than
+        ``min_users`` users are flagged ``small`` and get no interval.
+
+        Parameters
+        ----------
+        labels
+            Segment label per user, a Series indexed by user index (named after the
+            breakdown), e.g. ``segment_labels(fold, "item_segment")``; a breakdown name
+            (``"item_segment"``, ``"user_segment"``, a catalog column) with ``fold``; or several.
+        metrics
+            Per-user metric columns; default all.
+        fold
+            The fold this scorecard was evaluated on, when breakdowns are given by name.
+        confidence, seed, n_resamples
+            As in :meth:`summary`.
+        min_users
+            Smallest segment that gets an interval (default :data:`~xrec.evaluate.breakdown.MIN_SEGMENT_USERS`).
+
+        Returns
+        -------
+        DataFrame
+            Columns ``by, segment, metric, n_users, mean, ci_low, ci_high, small``.
+        """
+        many = label_list(labels, fold)
+        frames = [
+            segment_summary(self.per_user, s, metrics=metrics, confidence=confidence, seed=seed,
+                            n_resamples=n_resamples, min_users=min_users)
+            for s in many
+        ]
+        return pd.concat(frames, ignore_index=True)
 
     def table(self) -> pd.DataFrame:
         """Means as a compact metric × K table."""

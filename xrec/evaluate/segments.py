@@ -1,4 +1,12 @@
-"""Hit rates of held-out items split by the items' training popularity (cold items apart)."""
+"""Results broken down by segment: of the held-out item (new / tail / head, or any catalog
+attribute) and of the user (training-history length); and hit rates by item popularity.
+
+A segment labelling is a :class:`pandas.Series` indexed by user index (the fold's evaluated
+users), one label per user; :func:`segment_labels` builds it from a fold. Per-segment means
+are plain group means of a scorecard's per-user table, each with its own bootstrap interval
+(:mod:`xrec.evaluate._stats`); paired comparisons per segment live in
+:func:`xrec.evaluate.compare` (its ``by=`` argument).
+"""
 
 from __future__ import annotations
 
@@ -11,24 +19,32 @@ import pandas as pd
 from xrec._validation import check_int
 from xrec.errors import ConfigError
 from xrec.evaluate._stats import wilson_interval
+from xrec.evaluate.breakdown import (
+    HEAD_SHARE,
+    HISTORY_EDGES,
+    MIN_SEGMENT_USERS,
+    SEGMENT_SUMMARY_COLUMNS,
+    bucket_labels,
+    item_segments,
+    segment_labels,
+    segment_order,
+    segment_summary,
+)
 
-__all__ = ["SEGMENT_COLUMNS", "segment_hit_rates"]
+__all__ = [
+    "HEAD_SHARE",
+    "HISTORY_EDGES",
+    "MIN_SEGMENT_USERS",
+    "SEGMENT_COLUMNS",
+    "SEGMENT_SUMMARY_COLUMNS",
+    "item_segments",
+    "segment_hit_rates",
+    "segment_labels",
+    "segment_order",
+    "segment_summary",
+]
 
 SEGMENT_COLUMNS = ["scorer", "segment", "hits", "n", "hit_rate", "ci_low", "ci_high"]
-
-
-def _segment_labels(edges: Sequence[int]) -> list[str]:
-    labels = []
-    bounds = [0, *edges]
-    for i, lo in enumerate(bounds):
-        hi = bounds[i + 1] if i + 1 < len(bounds) else None
-        if hi is None:
-            labels.append(f"{lo}+")
-        elif hi - lo == 1:
-            labels.append("0 (cold)" if lo == 0 else f"{lo}")
-        else:
-            labels.append(f"{lo}-{hi - 1}")
-    return labels
 
 
 def segment_hit_rates(
@@ -80,7 +96,7 @@ def segment_hit_rates(
         raise ConfigError(f"edges must be increasing positive integers, got {edges}")
     if not isinstance(scorers, Mapping) or not scorers:
         raise ConfigError("scorers must be a non-empty mapping of name -> scorer")
-    labels = _segment_labels(edges)
+    labels = bucket_labels(edges)
     segment_of_item = np.searchsorted(np.asarray(edges), fold.item_train_counts, side="right")
     users = fold.eval_users if users is None else np.asarray(users, dtype=np.int64)
     seen_all = fold.train_matrix
@@ -103,4 +119,3 @@ def segment_hit_rates(
         for j, label in enumerate(labels):
             rows.append((str(name), label, int(hits[j]), int(total[j]), float(rate[j]), float(lo[j]), float(hi[j])))
     return pd.DataFrame(rows, columns=SEGMENT_COLUMNS)
-

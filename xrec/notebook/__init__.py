@@ -17,6 +17,7 @@ from xrec.notebook.charts import (
 )
 from xrec.notebook.display import comparison_html, offline_charts, scorecard_html
 from xrec.notebook.mixer import WeightMixer, interval_frame
+from xrec.notebook.segment_charts import segment_differences, segment_means
 
 __all__ = [
     "WeightMixer",
@@ -30,7 +31,9 @@ __all__ = [
     "offline_charts",
     "scorecard_html",
     "segment_bars",
+    "segment_differences",
     "segment_hit_rates",
+    "segment_means",
     "summary_frame",
     "weight_profile",
     "wilson_interval",

@@ -58,7 +58,7 @@ class TextSource(ProfileSource):
         Catalog columns whose values form each item's text (text columns, and label or
         number columns, written out); ``None``: the catalog's declared text columns.
     encoder
-        Text encoder name: ``"minilm"`` (all-MiniLM-L6-v2).
+        Text encoder name: ``"minilm"`` (all-MiniLM-L6-v2), ``"minilm_int8"`` (the same, int8).
     half_life_days
         A training interaction's weight in the profile halves every ``half_life_days``
         days before the user's latest one; ``None`` weighs all equally.
@@ -111,7 +111,7 @@ class ImageSource(ProfileSource):
     Parameters
     ----------
     encoder
-        Image encoder name: ``"efficientnet_lite0"`` (ImageNet-1k, 1,280-d).
+        Image encoder name: ``"efficientnet_lite0"`` (ImageNet-1k, 1,280-d; ``"_onnx"`` / ``"_torch"`` suffixes pin the runtime).
     half_life_days
         See :class:`TextSource`.
     cache_dir
