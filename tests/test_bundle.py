@@ -41,6 +41,8 @@ KINDS = {
     "image": ("image", {"center": True}),
     "ridge": ("cross_modal", {"profile": "text", "items": "image", "bridge": "ridge"}),
     "fusion": ("early_fusion", {"modalities": ["text", "image", "attributes"], "weights": {"image": 0.5}}),
+    # A plain low-rank source: the bundle holds its placed factors (known and mapped new items).
+    "mapped": ("mapped_factors", {"modalities": ["attributes"], "als": {"factors": 8, "iterations": 4, "random_state": 0}}),
 }
 # The slower bridges (tens of seconds on a busy 2-core machine), in their own slow test.
 SLOW_BRIDGES = {
@@ -53,7 +55,7 @@ def fit_kinds(kinds: dict, fold, cache_dir: str) -> dict:
     sources = {}
     for name, (kind, params) in kinds.items():
         params = dict(params)
-        if kind in ("text", "image", "cross_modal", "early_fusion"):
+        if kind in ("text", "image", "cross_modal", "early_fusion", "mapped_factors"):
             params["cache_dir"] = cache_dir
         sources[name] = make_source(kind, **params).fit(fold)
     return sources

@@ -157,3 +157,22 @@ def test_learn_weights_entry_point_reports_test_score():
     plain = evaluate(gated, test, ks=(10,), metrics=("ndcg",)).means()["ndcg@10"]
     assert result.test_score == pytest.approx(plain, abs=1e-12)
     assert result.valid_score >= result.best_single[1]
+
+
+def test_a_band_with_too_few_validation_rows_is_reported_not_learned():
+    fold, sources = banded_problem(seed=2)
+    engine = BlendEngine(sources, fold, "zscore", metric="mrr@80", ks=(80,)).prepare()
+    bands = PopularityBands.from_counts(fold.item_train_counts, 0.5)
+    item_band = bands.assign(fold.item_train_counts)
+    held = np.bincount(item_band[fold.heldout["item_idx"].to_numpy()], minlength=3)  # numpy count, not the learner's
+    cut = int(held[0]) + 1  # the new band falls short, the others do not
+    assert held[1] >= cut and held[2] >= cut
+    start = {n: 1.0 for n in sources}
+    result = learn_gated_weights(engine, bands, start=start, n_restarts=2, refine=1, max_sweeps=2, seed=0, min_band_heldout=cut)
+    assert result.details["band_heldout"] == {"new": int(held[0]), "tail": int(held[1]), "head": int(held[2])}
+    assert result.details["unlearned_bands"] == {"new": int(held[0])}
+    assert set(result.details["learned_bands"]) == {"tail", "head"}
+    new = np.array(list(result.band_weights["new"].values()))
+    assert np.allclose(new, new[0]) and new[0] > 0  # the (even) start, up to the common scale of all weights
+    learned = learn_gated_weights(engine, bands, start=start, n_restarts=0, refine=1, max_sweeps=2, seed=0)
+    assert learned.details["unlearned_bands"] == {} and learned.band_weights["new"] != result.band_weights["new"]

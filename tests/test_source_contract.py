@@ -159,6 +159,9 @@ FACTORIES: dict[str, Callable[[str], Source]] = {
     "image": lambda cache: make_source("image", cache_dir=cache, center=True),
     "cross_modal": lambda cache: make_source("cross_modal", bridge="ridge", cache_dir=cache),
     "early_fusion": lambda cache: make_source("early_fusion", modalities=["text", "image", "attributes"], cache_dir=cache),
+    "mapped_factors": lambda cache: make_source(
+        "mapped_factors", modalities=["attributes", "text"], als={"factors": 4, "iterations": 5, "num_threads": 1}, cache_dir=cache
+    ),
     "vectors": lambda cache: make_source(
         "vectors", path=str(_own_files(cache) / "vectors.npy"), ids=str(_own_files(cache) / "ids.txt"), center=True
     ),

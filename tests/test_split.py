@@ -56,6 +56,8 @@ def ml_splits(movielens) -> dict[str, SplitResult]:
         "time_cutoff": split_dataset(movielens, "time_cutoff", cutoff="q0.8"),
         "random": split_dataset(movielens, "random", seed=3),
         "cold_items": split_dataset(movielens, "cold_items", seed=3),
+        "mixed_last": split_dataset(movielens, "mixed_last", new_share=0.2, seed=3),
+        "mixed_cutoff": split_dataset(movielens, "mixed_cutoff", cutoff="q0.8"),
     }
 
 

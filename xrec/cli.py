@@ -176,8 +176,9 @@ def build_parser() -> argparse.ArgumentParser:
             p.add_argument("--json", action="store_true", help="machine-readable JSON on stdout")
 
     p = sub.add_parser("demo", help="run the whole product on the demo shop and write a report", description=(
-        "Encode the demo shop, fit every source, search blend weights on the validation split, "
-        "evaluate on the test split, compare, and write scorecard JSON, blend file and HTML report."))
+        "Encode the demo shop, split it by the mixed protocol (known and new items held out together), "
+        "fit every source, search blend weights on the validation split, evaluate on the test split, "
+        "compare known-item and new-item results side by side, and write scorecard JSON, blend file and HTML report."))
     p.add_argument("-o", "--output", default="xrec-out", help="output folder (default: %(default)s)")
     p.add_argument("--shop", default=None, help="demo shop folder (default: the one shipped in the repository)")
     p.add_argument("--quick", action="store_true", help="smaller search, for smoke tests")

@@ -95,15 +95,15 @@ def _signed(x: float, digits: int = 4) -> str:
     return f"{x:+.{digits}f}".replace("-", "−")
 
 
-def _spec_table(name: str) -> str:
+def _spec_table(name: str, result=None) -> str:
     """Scorecards of a built-in spec's test split (HR@10, NDCG@10 with 95% bootstrap CIs), each
     scorer's paired NDCG@10 difference against the spec's baseline, and learned blends'
-    validation score."""
+    validation score (``result``: an experiment already run from the spec)."""
     from xrec.experiment import run_experiment
     from xrec.spec import load_spec
 
     spec = load_spec(name)
-    result = run_experiment(spec)
+    result = run_experiment(spec) if result is None else result
     base = spec.baseline
     diffs = {}
     if result.comparison is not None:
@@ -134,22 +134,65 @@ def _spec_table(name: str) -> str:
 
 
 def _demo_table() -> str:
-    """``xrec demo``'s test NDCG@10 per scorer and the learned blend against the best single source."""
+    """``xrec demo``'s test NDCG@10 per scorer, hit rate@10 on known and on new items, and the
+    paired comparisons of each side."""
     from xrec.demo import run_demo
 
     with tempfile.TemporaryDirectory() as out:
         summary = run_demo(out, progress=False, seed=0)
     best = summary["best_single_source"]
-    lines = ["| scorer | NDCG@10 (test) |", "|---|---|"]
+    parts = summary["known_new_hit_rate"]
+    lines = ["| scorer | NDCG@10 (test) | HR@10 known items | HR@10 new items |", "|---|---|---|---|"]
     for scorer, value in sorted(summary["test"].items(), key=lambda kv: kv[1]):
-        lines.append(f"| {scorer} | {value:.4f} |")
+        p = parts.get(scorer, {})
+        lines.append(f"| {scorer} | {value:.4f} | {p.get('known items', float('nan')):.3f} | {p.get('new items', float('nan')):.3f} |")
     lines.append("")
     vs = summary["vs_best_single"]["learned blend"]
+    n = summary["parts"]
     lines.append(
-        f"`xrec demo` (seed 0, test split, full ranking, 1,200 shoppers): the learned blend against the best "
+        f"`xrec demo` (seed 0, mixed split: {n.get('known items', 0):,} shoppers hold out a known item, "
+        f"{n.get('new items', 0):,} a new one; test split, full ranking): the learned blend against the best "
         f"single source on validation ({best}): {_signed(vs['difference'])} NDCG@10, 95% paired-bootstrap CI "
         f"[{_signed(vs['ci_low'])}, {_signed(vs['ci_high'])}], p = {vs['p_value']:.3f}."
     )
+    lines += ["", "| side | candidate vs baseline | HR@10 | difference [95% CI] |", "|---|---|---|---|"]
+    for r in summary["sides"]:
+        if r["metric"] == "hit_rate@10":
+            lines.append(f"| {r['side']} | {r['candidate']} vs {r['baseline']} | {r['candidate_mean']:.3f} vs {r['baseline_mean']:.3f} "
+                         f"| {_signed(r['difference'], 3)} [{_signed(r['ci_low'], 3)}, {_signed(r['ci_high'], 3)}] |")
+    bands = summary["gated_bands"]
+    lines.append("")
+    lines.append(
+        f"Sides: known-item shoppers against the best single source on known items ({summary['best_single_known_items']}), "
+        f"new-item shoppers against the best content-only source on new items ({summary['best_content_new_items']}), "
+        "both chosen on validation; `among_new` ranks the new items only. The exported gated blend learned its bands on "
+        f"validation purchases {bands['learned_bands']} (not learned: {bands['unlearned_bands'] or 'none'}); "
+        f"mapped source: {summary['mapped_mapping']['method']} map, new_item_scale {summary['mapped_new_item_scale']:g} "
+        "(chosen on validation)."
+    )
+    return "\n".join(lines) + "\n"
+
+
+def _cold_table(name: str) -> str:
+    """A mixed-protocol spec: its scorecards (as :func:`_spec_table`) and every scorer's hit rate@10
+    on known-item and on new-item users, with bootstrap 95% CIs."""
+    from xrec.evaluate.known_new import known_new_labels, known_new_table
+    from xrec.experiment import run_experiment
+    from xrec.spec import load_spec
+
+    result = run_experiment(load_spec(name))
+    labels = known_new_labels(result.split.test)
+    table = known_new_table(result.scorecards, labels, ("hit_rate@10",))
+    counts = labels.value_counts()
+    parts = [p for p in ("known items", "new items", "cold users") if p in counts.index]
+    lines = [_spec_table(name, result), "| scorer | " + " | ".join(f"HR@10 {p} (n={counts[p]}) [95% CI]" for p in parts) + " |",
+             "|---|" + "---|" * len(parts)]
+    for scorer in result.scorecards:
+        cells = []
+        for p in parts:
+            r = table[(table["scorer"] == scorer) & (table["part"] == p)].iloc[0]
+            cells.append(f"{r['mean']:.4f} [{r['ci_low']:.4f}, {r['ci_high']:.4f}]")
+        lines.append(f"| {scorer} | " + " | ".join(cells) + " |")
     return "\n".join(lines) + "\n"
 
 
@@ -194,13 +237,17 @@ def _segment_table(name: str, by: tuple[str, ...] = ("item_segment", "user_segme
 _SPEC_CODE = _COMMON_CODE + ("specs",)
 #: The README's generated tables.
 TABLES: dict[str, Table] = {
-    "demo": Table(_demo_table, cheap=False, spec=None, code=_COMMON_CODE + ("demo.py", "encoders"), dataset=_demo_dataset),
+    "demo": Table(_demo_table, cheap=False, spec=None, code=_COMMON_CODE + ("demo.py", "_demo_cold.py", "encoders"), dataset=_demo_dataset),
     "movielens": Table(lambda: _spec_table("movielens"), cheap=True, spec="movielens", code=_SPEC_CODE, dataset=_spec_dataset("movielens")),
     "movielens_segments": Table(
         lambda: _segment_table("movielens"), cheap=True, spec="movielens", code=_SPEC_CODE, dataset=_spec_dataset("movielens")
     ),
     "movielens_fusion": Table(
         lambda: _spec_table("movielens_fusion"), cheap=False, spec="movielens_fusion", code=_SPEC_CODE, dataset=_spec_dataset("movielens_fusion")
+    ),
+    "movielens_cold": Table(
+        lambda: _cold_table("movielens_cold"), cheap=False, spec="movielens_cold", code=_SPEC_CODE + ("encoders",),
+        dataset=_spec_dataset("movielens_cold"),
     ),
 }
 

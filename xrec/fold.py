@@ -84,3 +84,16 @@ class Fold:
     def item_train_counts(self) -> np.ndarray:
         """Training interactions per item (popularity), int64 of length n_items."""
         return np.bincount(self.train["item_idx"].to_numpy(), minlength=self.n_items).astype(np.int64)
+
+    @property
+    def new_items(self) -> np.ndarray:
+        """Indices of held-out items with no training interaction (new items), sorted."""
+        held = np.unique(self.heldout["item_idx"].to_numpy())
+        return held[self.item_train_counts[held] == 0].astype(np.int64)
+
+    @property
+    def cold_users(self) -> np.ndarray:
+        """Indices of users with held-out interactions but no training interaction (cold users), sorted."""
+        has_train = np.diff(self.train_matrix.indptr) > 0
+        users = self.eval_users
+        return users[~has_train[users]].astype(np.int64)

@@ -7,8 +7,10 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     # folder = "path/to/ml-1m"   # optional: a GroupLens folder / demo shop folder
 
     [split]
-    rule = "leave_last"          # leave_last | time_cutoff | random | cold_items
+    rule = "leave_last"          # leave_last | time_cutoff | random | cold_items | mixed_last | mixed_cutoff
     seed = 0
+    # new_share = 0.2            # mixed_last: share of held-out rows on new items (never in training)
+    # cold_users = "keep"        # mixed rules: keep (scored as users without history) | drop; counted either way
 
     [evaluate]
     ks = [10, 20]
@@ -101,7 +103,7 @@ from xrec.data._readers import path_problem
 from xrec.data.location import DataLocation
 from xrec.errors import ConfigError
 
-_SPLIT_KEYS = {"rule", "seed", "validation", "test_fraction", "cutoff", "cold_fraction", "min_train"}
+_SPLIT_KEYS = {"rule", "seed", "validation", "test_fraction", "cutoff", "cold_fraction", "min_train", "new_share", "cold_users"}
 _EVAL_KEYS = {
     "ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size",
     "scheduler", "workers", "shard_size", "overlap", "pairs",

@@ -19,10 +19,13 @@ from xrec._validation import check_int, check_number
 from xrec.errors import ConfigError
 from xrec.fold import Fold
 
-__all__ = ["SPLIT_RULES", "SplitResult", "natural_order", "split_dataset"]
+__all__ = ["COLD_USER_RULES", "SPLIT_RULES", "SplitResult", "natural_order", "split_dataset"]
 
 #: Names accepted by :func:`split_dataset` as ``rule``.
-SPLIT_RULES = ("leave_last", "time_cutoff", "random", "cold_items")
+SPLIT_RULES = ("leave_last", "time_cutoff", "random", "cold_items", "mixed_last", "mixed_cutoff")
+
+#: Names accepted as ``cold_users`` (what a mixed split does with held-out users who have no training rows).
+COLD_USER_RULES = ("keep", "drop")
 
 _QUANTILE = re.compile(r"^\s*q\s*(\d*\.?\d+)\s*$", re.IGNORECASE)
 
@@ -94,8 +97,10 @@ def split_dataset(
     cutoff: float | str | None = None,
     cold_fraction: float = 0.1,
     min_train: int = 1,
+    new_share: float | None = None,
+    cold_users: str = "keep",
 ) -> SplitResult:
-    """Hold out interactions for testing (and validation) by one of four rules.
+    """Hold out interactions for testing (and validation) by one of six rules.
 
     Parameters
     ----------
@@ -115,6 +120,17 @@ def split_dataset(
         - ``"cold_items"``: a seeded ``cold_fraction`` of the items that have interactions is
           removed from training; all their rows are held out. Held-out rows of users left with
           fewer than ``min_train`` training rows are dropped and counted.
+        - ``"mixed_cutoff"`` (mixed protocol, known and new items held out together): one global
+          cutoff as for ``"time_cutoff"``; items first seen at or after it are *new*: they never
+          appear in training. Held-out users without training rows are *cold users*, handled
+          by ``cold_users`` (never dropped silently).
+        - ``"mixed_last"`` (mixed protocol, leave-last variant): each user's latest interaction
+          is held out as for ``"leave_last"``; then the most recently introduced items among
+          the held-out ones (latest first interaction first; ties in seeded random order) are
+          made new until at least ``new_share`` of the held-out rows are on new items. The
+          other rows of a new item leave the fold (counted as ``new_item_rows_removed``, and
+          within ``dropped_rows``), so
+          new items never appear in training. Cold users as for ``"mixed_cutoff"``.
     validation
         Also carve a validation fold from the test fold's training rows, by the same rule
         (same fraction / quantile; the validation draws use a seed derived from ``seed``).
@@ -135,6 +151,16 @@ def split_dataset(
         ``"cold_items"``: share of the items with interactions to make cold (at least one item).
     min_train
         Fewest training rows a user keeps (see each rule); at least 1.
+    new_share
+        ``"mixed_last"`` only: the share of held-out rows (test, and validation alike) that
+        must be on new items, strictly between 0 and 1; default 0.2.
+    cold_users
+        Mixed rules only. ``"keep"`` (default): held-out rows of users without training rows
+        stay and are scored by each scorer's own rule for a user with no history (popularity
+        ranks by training counts; factor and profile sources give such a user a zero vector,
+        hence flat scores, so a z-scored blend ranks them by its popularity term alone);
+        ``"drop"``: those rows leave the fold. Either way ``settings`` counts them
+        (``*_cold_users``, ``*_cold_user_rows``) and ``Fold.cold_users`` names them.
 
     Returns
     -------
@@ -156,8 +182,16 @@ def split_dataset(
     min_train = check_int(min_train, "min_train", low=1, expected="an integer >= 1")
     test_fraction = _check_fraction("test_fraction", test_fraction)
     cold_fraction = _check_fraction("cold_fraction", cold_fraction)
-    if cutoff is not None and rule != "time_cutoff":
-        raise ConfigError(f"cutoff applies only to rule='time_cutoff', not rule={rule!r}")
+    if cutoff is not None and rule not in ("time_cutoff", "mixed_cutoff"):
+        raise ConfigError(f"cutoff applies only to rule='time_cutoff' or 'mixed_cutoff', not rule={rule!r}")
+    if new_share is not None and rule != "mixed_last":
+        raise ConfigError(f"new_share applies only to rule='mixed_last', not rule={rule!r}")
+    new_share = _check_fraction("new_share", 0.2 if new_share is None else new_share)
+    if cold_users not in COLD_USER_RULES:
+        raise ConfigError(f"cold_users must be one of {COLD_USER_RULES}, got {cold_users!r}")
+    if cold_users != "keep" and not rule.startswith("mixed"):
+        raise ConfigError(f"cold_users applies only to the mixed rules, not rule={rule!r}")
+    mixed = {"new_share": new_share, "cold_users": cold_users}
 
     rows, user_ids = _positional(dataset)
     settings: dict = {
@@ -175,18 +209,22 @@ def split_dataset(
         settings["test_fraction"] = test_fraction
     elif rule == "cold_items":
         settings["cold_fraction"] = cold_fraction
-    elif rule == "time_cutoff":
+    elif rule in ("time_cutoff", "mixed_cutoff"):
         settings.update(_describe_cutoff(cutoff, test_fraction))
+    if rule == "mixed_last":
+        settings["new_share"] = new_share
+    if rule.startswith("mixed"):
+        settings["cold_users"] = cold_users
 
     test_seed, val_seed = (int(s.generate_state(1)[0]) for s in np.random.SeedSequence(seed).spawn(2))
-    train, held, info = _apply(rule, rows, len(user_ids), test_seed, test_fraction, cutoff, cold_fraction, min_train, "test")
+    train, held, info = _apply(rule, rows, len(user_ids), test_seed, test_fraction, cutoff, cold_fraction, min_train, "test", mixed)
     settings.update({f"test_{k}": v for k, v in info.items()})
     val_fold = None
     if validation:
         share = info.get("share_before_cutoff")
         inner, val_held, vinfo = _apply(
-            rule, train, len(user_ids), val_seed, test_fraction, share if rule == "time_cutoff" else cutoff,
-            cold_fraction, min_train, "validation",
+            rule, train, len(user_ids), val_seed, test_fraction, share if rule in ("time_cutoff", "mixed_cutoff") else cutoff,
+            cold_fraction, min_train, "validation", mixed,
         )  # fmt: skip
         settings.update({f"validation_{k}": v for k, v in vinfo.items()})
         val_fold = Fold(dataset.catalog, user_ids, inner.frame(), val_held.frame(), settings={**settings, "part": "validation"})
@@ -285,15 +323,15 @@ def _positional(dataset: Dataset) -> tuple[_Rows, np.ndarray]:
     return rows.take(order), user_ids.astype(object)
 
 
-def _apply(rule, rows: _Rows, n_users, seed, fraction, cutoff, cold_fraction, min_train, part) -> tuple[_Rows, _Rows, dict]:
+def _apply(rule, rows: _Rows, n_users, seed, fraction, cutoff, cold_fraction, min_train, part, mixed) -> tuple[_Rows, _Rows, dict]:
     """Split ``rows`` (ordered by user, time, item id) into (train, held-out, counts)."""
     if len(rows) == 0:
         raise ConfigError(f"no training rows are left to carve the {part} split from; pass validation=False")
+    if rule.startswith("mixed"):
+        return _apply_mixed(rule, rows, n_users, seed, fraction, cutoff, min_train, part, **mixed)
     info: dict = {}
     if rule == "leave_last":
-        counts = np.bincount(rows.user, minlength=n_users)
-        last = np.r_[rows.user[1:] != rows.user[:-1], True]
-        held = last & (counts[rows.user] > min_train)
+        held = _leave_last_mask(rows, n_users, min_train)
         dropped = np.zeros(len(rows), dtype=bool)
     elif rule == "random":
         draws = np.random.default_rng(seed).random(len(rows))
@@ -307,19 +345,7 @@ def _apply(rule, rows: _Rows, n_users, seed, fraction, cutoff, cold_fraction, mi
         held = (draws < fraction) & (rank < counts[rows.user] - min_train)
         dropped = np.zeros(len(rows), dtype=bool)
     elif rule == "time_cutoff":
-        kind, value = _parse_cutoff(cutoff, fraction)
-        if kind == "share":
-            ordered = np.sort(rows.time, kind="stable")
-            # Rounded first: 0.29 * 100 is 28.999999999999996 in floating point, not 29.
-            position = min(int(math.floor(round(value * len(rows), 6))), len(rows) - 1)
-            at = float(ordered[position])
-        else:
-            at = value
-        held = rows.time >= at
-        info["cutoff_time"] = at
-        # What the validation carve reuses: the asked-for share, or for a fixed time the share
-        # of rows that fell before it.
-        info["share_before_cutoff"] = value if kind == "share" else float(1.0 - held.mean())
+        held = _cutoff_mask(rows, cutoff, fraction, info)
         dropped = held & (np.bincount(rows.user[~held], minlength=n_users)[rows.user] < min_train)
     else:  # cold_items
         seen = np.unique(rows.item)
@@ -339,6 +365,75 @@ def _apply(rule, rows: _Rows, n_users, seed, fraction, cutoff, cold_fraction, mi
     if len(kept) == 0:
         hint = "; pass validation=False" if part == "validation" else ""
         raise ConfigError(f"the {part} split holds out no rows ({_params(rule, fraction, cutoff, cold_fraction, min_train)}){hint}")
+    return train, kept, info
+
+
+def _cutoff_mask(rows: _Rows, cutoff, fraction: float, info: dict) -> np.ndarray:
+    """Rows at or after the global cutoff; records ``cutoff_time`` and ``share_before_cutoff`` in ``info``."""
+    kind, value = _parse_cutoff(cutoff, fraction)
+    if kind == "share":
+        ordered = np.sort(rows.time, kind="stable")
+        # Rounded first: 0.29 * 100 is 28.999999999999996 in floating point, not 29.
+        position = min(int(math.floor(round(value * len(rows), 6))), len(rows) - 1)
+        at = float(ordered[position])
+    else:
+        at = value
+    held = rows.time >= at
+    info["cutoff_time"] = at
+    # What the validation carve reuses: the asked-for share, or for a fixed time the share
+    # of rows that fell before it.
+    info["share_before_cutoff"] = value if kind == "share" else float(1.0 - held.mean())
+    return held
+
+
+def _leave_last_mask(rows: _Rows, n_users: int, min_train: int) -> np.ndarray:
+    counts = np.bincount(rows.user, minlength=n_users)
+    last = np.r_[rows.user[1:] != rows.user[:-1], True]
+    return last & (counts[rows.user] > min_train)
+
+
+def _apply_mixed(rule, rows: _Rows, n_users, seed, fraction, cutoff, min_train, part, *, new_share, cold_users):
+    """The mixed protocol: held-out rows on known and new items together (see :func:`split_dataset`)."""
+    info: dict = {}
+    removed = np.zeros(len(rows), dtype=bool)  # rows of new items that are not held out
+    if rule == "mixed_cutoff":
+        held = _cutoff_mask(rows, cutoff, fraction, info)
+    else:
+        held = _leave_last_mask(rows, n_users, min_train)
+        if not held.any():
+            raise ConfigError(f"the {part} split holds out no rows (rule='mixed_last', min_train={min_train})")
+        first_seen = np.full(int(rows.item.max()) + 1, np.inf)
+        np.minimum.at(first_seen, rows.item, rows.time)
+        candidates = np.unique(rows.item[held])
+        per_item = np.bincount(rows.item[held], minlength=len(first_seen))[candidates]
+        # newest first; equal first-seen times in seeded random order
+        order = np.lexsort((np.random.default_rng(seed).random(len(candidates)), -first_seen[candidates]))
+        reached = np.cumsum(per_item[order]) >= new_share * held.sum()
+        n_new = int(np.argmax(reached)) + 1
+        if n_new >= len(candidates):
+            raise ConfigError(f"new_share={new_share} would make every held-out item of the {part} split new")
+        new = np.zeros(len(first_seen), dtype=bool)
+        new[candidates[order[:n_new]]] = True
+        removed = new[rows.item] & ~held
+    in_train = ~held & ~removed
+    has_train = np.bincount(rows.user[in_train], minlength=n_users) > 0
+    cold = held & ~has_train[rows.user]
+    train = rows.take(in_train)
+    keep = held & ~cold if cold_users == "drop" else held
+    kept = rows.take(keep)
+    seen = np.zeros(max(int(rows.item.max()) + 1, 1), dtype=bool)
+    seen[train.item] = True
+    is_new = ~seen[kept.item]
+    info.update({
+        "train_rows": len(train), "heldout_rows": len(kept), "dropped_rows": int(removed.sum()) + (int(cold.sum()) if cold_users == "drop" else 0),
+        "heldout_users": int(len(np.unique(kept.user))), "new_items": int(len(np.unique(kept.item[is_new]))),
+        "new_item_heldout_rows": int(is_new.sum()), "new_share_achieved": float(is_new.mean()) if len(kept) else 0.0,
+        "new_item_rows_removed": int(removed.sum()), "cold_users": int(len(np.unique(rows.user[cold]))),
+        "cold_user_rows": int(cold.sum()),
+    })  # fmt: skip
+    if len(train) == 0 or len(kept) == 0:
+        what = "no training rows" if len(train) == 0 else "no held-out rows"
+        raise ConfigError(f"the {part} split leaves {what} (rule={rule!r}, new_share={new_share}, cutoff={cutoff!r})")
     return train, kept, info
 
 

@@ -241,6 +241,7 @@ def learn_gated_weights(
     test_engine: Any = None,
     progress: bool = False,
     search: str = "fast",
+    min_band_heldout: int = 20,
     **fast_options: Any,
 ) -> Any:
     """Learn band × source weights jointly by coordinate ascent on the validation metric.
@@ -260,8 +261,14 @@ def learn_gated_weights(
         See :class:`PopularityBands`.
     n_restarts, grid, refine, max_sweeps, seed, progress, search
         As for :func:`~xrec.blend.learn.coordinate_ascent`; coordinates are the
-        (band, source) pairs of bands that hold at least one candidate item. The fast
-        search moves a (band, source) weight over that band's items in one pass per line.
+        (band, source) pairs of the bands that are learned (see ``min_band_heldout``). The
+        fast search moves a (band, source) weight over that band's items in one pass per line.
+    min_band_heldout
+        Fewest validation held-out interactions on a band's items for its weights to be
+        learned. A band with fewer keeps the start weights (the ungated blend's) and is
+        reported in ``details["unlearned_bands"]`` with its count, never silently. On a
+        leave-last validation split the new band is usually empty; on a mixed split
+        (``split_dataset(..., "mixed_last")``) it holds ``new_share`` of the rows.
     **fast_options
         ``sample``, ``min_users``, ``stop_z`` of the fast search.
     test_engine
@@ -270,7 +277,9 @@ def learn_gated_weights(
     Returns
     -------
     LearnResult
-        ``weights`` keyed ``"band.source"``; ``band_weights`` nested; ``details["head_min"]``;
+        ``weights`` keyed ``"band.source"``; ``band_weights`` nested; ``details["head_min"]``,
+        ``details["band_heldout"]`` (validation held-out interactions per band),
+        ``details["learned_bands"]`` and ``details["unlearned_bands"]`` (band -> count);
         ``best_single`` holds ``("ungated start", its validation score)`` and
         ``best_single_test`` its test score, so the gain of gating shows on both folds.
     """
@@ -279,7 +288,9 @@ def learn_gated_weights(
     counts = engine.fold.item_train_counts
     bands = bands or PopularityBands.from_counts(counts, head_share)
     item_band = bands.assign(counts)
-    present = np.bincount(item_band, minlength=len(BANDS)) > 0
+    check_int(min_band_heldout, "min_band_heldout", low=1, expected="an integer >= 1")
+    held_per_band = np.bincount(item_band[engine.fold.heldout["item_idx"].to_numpy()], minlength=len(BANDS))
+    present = (np.bincount(item_band, minlength=len(BANDS)) > 0) & (held_per_band >= min_band_heldout)
 
     def to_weights(v: np.ndarray) -> dict[str, np.ndarray]:
         table = v.reshape(len(BANDS), n_src).astype(np.float32)
@@ -297,7 +308,15 @@ def learn_gated_weights(
     rng = np.random.default_rng(seed)
     first = np.tile(start_w, len(BANDS))
     starts = [first] + [np.tile(rng.dirichlet(np.ones(n_src)), len(BANDS)) * rng.uniform(0.5, 1.5, len(BANDS)).repeat(n_src) for _ in range(n_restarts)]
-    details = {"head_min": bands.head_min, "band_sizes": np.bincount(item_band, minlength=3).tolist(), "seed": seed}
+    fixed = np.repeat(~present, n_src)  # bands not learned keep the start weights in every restart
+    for v0 in starts[1:]:
+        v0[fixed] = first[fixed]
+    details = {
+        "head_min": bands.head_min, "band_sizes": np.bincount(item_band, minlength=3).tolist(), "seed": seed,
+        "band_heldout": {b: int(held_per_band[i]) for i, b in enumerate(BANDS)}, "min_band_heldout": int(min_band_heldout),
+        "learned_bands": {b: int(held_per_band[i]) for i, b in enumerate(BANDS) if present[i]},
+        "unlearned_bands": {b: int(held_per_band[i]) for i, b in enumerate(BANDS) if not present[i]},
+    }  # fmt: skip
     if search == "fast":
         from xrec.blend._fast_search import gated_climb
 
@@ -307,6 +326,10 @@ def learn_gated_weights(
             max_sweeps=max_sweeps, seed=seed, progress=progress, **fast_options,
         )
         details.update(plan)
+        # the engine's own sum order, so the reported score is exactly what a re-evaluation gives
+        score = float(engine.score(to_weights(np.asarray(v))))
+        if score < start_score:  # only by rounding: keep the start
+            v, score = simplex(first), start_score
     else:
         if fast_options:
             raise ConfigError(f"options {sorted(fast_options)} apply to search='fast' only")

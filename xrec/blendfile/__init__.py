@@ -30,7 +30,9 @@ Schema (format version 2)
     min_train = 1                    # optional, int >= 1
     test_fraction = 0.2              # optional, float (rules "random", "time_cutoff")
     cold_fraction = 0.1              # optional, float (rule "cold_items")
-    cutoff = "q0.8"                  # optional, str or number (rule "time_cutoff")
+    cutoff = "q0.8"                  # optional, str or number (rules "time_cutoff", "mixed_cutoff")
+    new_share = 0.2                  # optional, float (rule "mixed_last")
+    cold_users = "keep"              # optional, "keep" | "drop" (rules "mixed_last", "mixed_cutoff")
     [split.record]                   # optional: the split's settings as produced (row counts,
     n_interactions = 100004          #   resolved cutoffs, ...); on load every recorded value
                                      #   must equal the recreated split's, else FingerprintMismatch

@@ -62,7 +62,7 @@ def parse_fields(raw: Mapping[str, Any]) -> dict[str, Any]:
     get_value(split_raw, "rule", str, "split")
     for key, value in split_raw.items():
         check_type(value, SPLIT_TYPES[key], f"split.{key}")
-        if key in ("test_fraction", "cold_fraction", "cutoff") and isinstance(value, float) and not math.isfinite(value):
+        if key in ("test_fraction", "cold_fraction", "cutoff", "new_share") and isinstance(value, float) and not math.isfinite(value):
             raise ConfigError(f"split.{key}: must be finite, got {value!r}")
 
     combine = dict(get_value(raw, "combine", dict, ""))

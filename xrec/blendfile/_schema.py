@@ -29,6 +29,8 @@ SPLIT_TYPES: dict[str, tuple[type, ...]] = {
     "test_fraction": (int, float),
     "cold_fraction": (int, float),
     "cutoff": (str, int, float),
+    "new_share": (int, float),
+    "cold_users": (str,),
 }
 METHOD_KEYS: dict[str, set[str]] = {
     "weighted": set(),

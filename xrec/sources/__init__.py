@@ -7,6 +7,7 @@ from xrec.sources.attributes import AttributeSource
 from xrec.sources.content import ImageSource, TextSource
 from xrec.sources.cross_modal import CrossModalSource
 from xrec.sources.early_fusion import EarlyFusionSource
+from xrec.sources.mapped import MappedFactorsSource
 from xrec.sources.ranking import RankingSource
 from xrec.sources.vectors import VectorSource
 
@@ -19,6 +20,7 @@ __all__ = [
     "ImageSource",
     "ItemKNNSource",
     "LowRankSource",
+    "MappedFactorsSource",
     "PopularitySource",
     "RankingSource",
     "TextSource",
