@@ -73,9 +73,9 @@ def test_demo_shop_service_equals_runtime_and_evaluated_scorer(tmp_path):
     split = split_dataset(dataset, "leave_last", validation=True, seed=0)
     sources = {}
     for name, (kind, params) in DEMO_SOURCES.items():
-        params = dict(params, **({"cache_dir": cache_dir} if kind in ("text", "image") else {}))
+        params = dict(params, **({"cache_dir": cache_dir} if kind in ("text", "image", "mapped_factors") else {}))
         sources[name] = make_source(kind, **params).fit(split.test)
-    weights = {"popularity": 0.0, "als": 0.35, "attributes": 0.14, "text": 0.44, "image": 0.08}
+    weights = {"popularity": 0.0, "als": 0.35, "attributes": 0.14, "text": 0.44, "image": 0.08, "mapped": 0.1}
     blend = Blend(sources, weights, "zscore").fit(split.test)
     check_three_ways(dataset, split, blend, tmp_path / "demo")
 

@@ -31,7 +31,8 @@ def _files(folder: Path) -> None:
 
 def _spec(project: Path, sources: dict, allow_outside: bool = False):
     data = {"allow_outside": True} if allow_outside else {}
-    return parse_spec({"data": data, "sources": sources}, base_dir=project)
+    # Six items in the tiny catalog: cut-offs must fit in it (a longer top-K list is refused).
+    return parse_spec({"data": data, "sources": sources, "evaluate": {"ks": [3]}}, base_dir=project)
 
 
 @pytest.fixture
