@@ -37,6 +37,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
+from xrec.docs_bench import marked_blocks
 from xrec.errors import ConfigError
 
 __all__ = ["TABLES", "Table", "check_readme", "fingerprint", "render", "update_readme"]
@@ -290,12 +291,7 @@ def _table(name: str) -> Table:
 
 
 def _blocks(text: str) -> dict[str, str]:
-    found: dict[str, str] = {}
-    for m in _BLOCK.finditer(text):
-        if m["name"] in found:
-            raise ConfigError(f"README: table {m['name']!r} appears twice")
-        found[m["name"]] = m["body"]
-    return found
+    return marked_blocks(_BLOCK, text, "table")
 
 
 def update_readme(names: list[str] | None = None, readme: Path = README, *, progress: bool = True) -> list[str]:

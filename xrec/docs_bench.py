@@ -303,13 +303,18 @@ def render_bench(name: str, results: Path = RESULTS) -> str:
     return f"<!-- xrec:from {source} -->\n" + block.make(data)
 
 
-def _bench_blocks(text: str) -> dict[str, str]:
+def marked_blocks(pattern: re.Pattern[str], text: str, what: str) -> dict[str, str]:
+    """Bodies of the README blocks ``pattern`` finds, by name; a name found twice is an error."""
     found: dict[str, str] = {}
-    for m in _BLOCK.finditer(text):
+    for m in pattern.finditer(text):
         if m["name"] in found:
-            raise ConfigError(f"README: benchmark block {m['name']!r} appears twice")
+            raise ConfigError(f"README: {what} {m['name']!r} appears twice")
         found[m["name"]] = m["body"]
     return found
+
+
+def _bench_blocks(text: str) -> dict[str, str]:
+    return marked_blocks(_BLOCK, text, "benchmark block")
 
 
 def rewrite_bench(text: str, names: list[str] | None = None, results: Path = RESULTS) -> tuple[str, list[str]]:
