@@ -33,7 +33,7 @@ from xrec.notebook._mixer_chart import baseline_frame, chart_output, chart_templ
 from xrec.notebook._mixer_export import data_hints, write_blend
 from xrec.notebook._mixer_settings import WaitedValue, check_metrics, pick_users, start_weights
 from xrec.notebook._mixer_widgets import build_controls
-from xrec.notebook._mixer_table import numbers_table, refresh_picture, show_with_picture, static_picture, weights_text
+from xrec.notebook._mixer_table import StillPicture, numbers_table, static_picture, weights_text
 from xrec.notebook.frames import interval_frame
 
 __all__ = ["WeightMixer", "interval_frame"]
@@ -200,7 +200,7 @@ class WeightMixer:
         self.unpin_button.on_click(lambda _b: self.unpin_baseline())
         self._updates = 0
         self._last_seconds = 0.0
-        self._picture: str | None = None  # display id of the still picture, once shown
+        self._picture = StillPicture(lambda: self.static_html_, lambda: repr(self))
         self._redraw()
 
     # ------------------------------------------------------------------ setup helpers
@@ -386,7 +386,7 @@ class WeightMixer:
             self._muted = False
         self._worker.request()
         self._worker.wait()
-        self._refresh_picture()
+        self._picture.refresh()
 
     def pin_baseline(self) -> None:
         """Make the current blend the baseline the chart compares against (:meth:`unpin_baseline` undoes it)."""
@@ -399,7 +399,7 @@ class WeightMixer:
             self.pinned_weights_ = dict(self._weights)
             self.pinned_normalizer_ = self.normalizer
             self._redraw()
-        self._refresh_picture()
+        self._picture.refresh()
 
     def unpin_baseline(self) -> None:
         """Go back to the baseline the mixer was built with."""
@@ -409,7 +409,7 @@ class WeightMixer:
             self.pinned_weights_ = None
             self.pinned_normalizer_ = None
             self._redraw()
-        self._refresh_picture()
+        self._picture.refresh()
 
     def baseline_record(self) -> dict[str, Any]:
         """What the baseline is, for the blend file's evidence: a name, or the pinned weights spelled out."""
@@ -446,6 +446,7 @@ class WeightMixer:
             self._updates += 1
             self._say(f"weights: {html.escape(weights_text(self._weights))} · normalizer {html.escape(self.normalizer)} · K {self.k}")
         self._notify()
+        self._picture.refresh_later()
 
     def _say(self, text: str, *, error: bool = False) -> None:
         color = "#b00020" if error else "#555"
@@ -495,21 +496,16 @@ class WeightMixer:
             return
         note = "" if data_hints(self._dataset, self._data_location) else " (no data location recorded: pass data_location= for xrec recommend)"
         self._say(f"wrote {html.escape(str(written))}{html.escape(note)}")
+        self._picture.refresh()
 
     # ------------------------------------------------------------------ display
     def _ipython_display_(self) -> None:
-        """Show the live panel, then a still picture of the state (see :func:`~xrec.notebook._mixer_table.show_with_picture`)."""
-        self._picture = show_with_picture(self.widget, self.static_html_, repr(self), self._picture)
+        """Show the live panel, then a still picture of the last state (see :class:`~xrec.notebook._mixer_table.StillPicture`)."""
+        self._picture.show(self.widget)
 
     def _repr_mimebundle_(self, **kwargs: Any) -> Any:
         """The live panel, with the still picture as ``text/html`` for front ends without widgets."""
-        bundle = self.widget._repr_mimebundle_(**kwargs)
-        return {**bundle, "text/html": self.static_html_}
-
-    def _refresh_picture(self) -> None:
-        """Bring the still picture up to date (from code run in a cell: front ends route the update by cell)."""
-        if self._picture is not None:
-            refresh_picture(self._picture, self.static_html_, repr(self))
+        return {**self.widget._repr_mimebundle_(**kwargs), "text/html": self.static_html_}
 
     def __repr__(self) -> str:
         w = ", ".join(f"{n}={v:.2f}" for n, v in self._wanted.items())
