@@ -28,9 +28,9 @@ import pandas as pd
 from xrec._validation import check_number
 from xrec.errors import ConfigError, XrecError
 from xrec.fold import Fold
-from xrec.notebook._latest import LatestOnly
+from xrec.notebook._latest import LatestOnly, Listeners
 from xrec.notebook._mixer_chart import baseline_frame, chart_output, chart_template, filled_spec, mixer_frames
-from xrec.notebook._mixer_export import data_hints, write_blend
+from xrec.notebook._mixer_export import baseline_record, data_hints, write_blend
 from xrec.notebook._mixer_settings import WaitedValue, check_metrics, pick_users, start_weights
 from xrec.notebook._mixer_widgets import build_controls
 from xrec.notebook._mixer_table import StillPicture, numbers_table, static_picture, weights_text
@@ -158,7 +158,7 @@ class WeightMixer:
         self._data_location = data_location
         if data_location is not None:
             data_hints(dataset, data_location)  # checked now, not at the first export
-        self._listeners: list[Any] = []
+        self._listeners = Listeners(lambda text: self._say(text, error=True))
         self.threads = threads
         self.progress = progress
         start = start_weights(weights, list(self._sources))
@@ -259,17 +259,7 @@ class WeightMixer:
         (the mixer's update thread for slider moves); one that raises is reported in the
         status line and the others still run.
         """
-        if not callable(callback):
-            raise ConfigError(f"on_change needs a callable, got {type(callback).__name__}")
-        self._listeners.append(callback)
-
-    def _notify(self) -> None:
-        for callback in list(self._listeners):
-            try:
-                callback(self)
-            except Exception as exc:  # a listener's bug must not break the mixer
-                name = getattr(callback, "__qualname__", repr(callback))
-                self._say(f"on_change callback {name} failed: {type(exc).__name__}: {exc}", error=True)
+        self._listeners.add(callback)
 
     def _current_per_user(self) -> pd.DataFrame:
         with self._lock:
@@ -413,10 +403,7 @@ class WeightMixer:
 
     def baseline_record(self) -> dict[str, Any]:
         """What the baseline is, for the blend file's evidence: a name, or the pinned weights spelled out."""
-        if self.pinned_weights_ is None:
-            return {"baseline": self.baseline_name_}
-        spelled = f"pinned blend ({self.pinned_normalizer_}: {weights_text(self.pinned_weights_)})"
-        return {"baseline": spelled, "baseline_weights": dict(self.pinned_weights_), "baseline_normalizer": self.pinned_normalizer_}
+        return baseline_record(self.baseline_name_, self.pinned_weights_, self.pinned_normalizer_)
 
     # ------------------------------------------------------------------ drawing
     def _frames(self) -> tuple[pd.DataFrame, pd.DataFrame]:
@@ -445,7 +432,7 @@ class WeightMixer:
             self.table.value = numbers_table(summary, diffs, self.baseline_name_, self.confidence)
             self._updates += 1
             self._say(f"weights: {html.escape(weights_text(self._weights))} · normalizer {html.escape(self.normalizer)} · K {self.k}")
-        self._notify()
+        self._listeners.call(self)
         self._picture.refresh_later()
 
     def _say(self, text: str, *, error: bool = False) -> None:
