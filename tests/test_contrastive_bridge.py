@@ -267,5 +267,9 @@ def test_contrastive_bridge_retrieves_demo_shop_images_from_descriptions(tmp_pat
     ok = text_ok & image_ok
     out = bridge_recall(ContrastiveBridge(cache_dir=str(tmp_path)), features[ok], text[ok], seed=0)
     assert out["n_test"] > 100
-    # benchmarks/bench_bridges.py, seeds 0-4: FLOOR_NOTE
-    assert out["lift"] >= FLOOR, out
+    # benchmarks/bench_bridges.py, seeds 0-4: 13.8x-15.6x random (mean 14.8x, sd 0.7); the floor sits
+    # below the worst seed, not at this split's 15.1x
+    assert out["lift"] >= 13.0, out
+    # and above ridge on the same held-out pairs, as on every one of the 5 measured splits (by 0.9x-1.5x)
+    ridge = bridge_recall(make_bridge("ridge"), features[ok], text[ok], seed=0)
+    assert out["lift"] > ridge["lift"], (out, ridge)
