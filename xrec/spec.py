@@ -44,6 +44,8 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     method = "coordinate_ascent" # coordinate_ascent | optuna | logistic
     metric = "ndcg@10"
     # gated = true               # separate weights for new / tail / head items
+    # objective = "sides"        # gated only: "overall" (default) | "sides" (do well on known
+    #                            # AND new items: maximin gain over each side's best source)
 
     [blends.rrf]                 # a tuning-free fusion rule
     fusion = "rrf"               # rrf (k = 60) | combsum | combmnz (depth = 100)
@@ -108,8 +110,9 @@ _EVAL_KEYS = {
     "ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size",
     "scheduler", "workers", "shard_size", "overlap", "pairs",
 }
-_BLEND_KEYS = {"weights", "normalizer", "sources", "method", "metric", "gated", "fusion", "k", "depth", "seed"}
+_BLEND_KEYS = {"weights", "normalizer", "sources", "method", "metric", "gated", "objective", "fusion", "k", "depth", "seed"}
 _LEARN_METHODS = ("coordinate_ascent", "optuna", "logistic")
+_OBJECTIVES = ("overall", "sides")  # xrec.blend.gating.OBJECTIVES
 _FUSIONS = ("rrf", "combsum", "combmnz")
 _TOP_KEYS = {"data", "split", "evaluate", "sources", "blends", "name"}
 
@@ -204,11 +207,16 @@ def _check_blend(table: dict, where: str, sources: dict, *, learning_allowed: bo
                 raise ConfigError(f"{where}.weights.{src}: no source of that name; sources: {sorted(sources)}")
             if not isinstance(w, (int, float)) or isinstance(w, bool):
                 raise ConfigError(f"{where}.weights.{src}: must be a number, got {w!r}")
-        for key in ("method", "metric", "gated", "seed"):
+        for key in ("method", "metric", "gated", "objective", "seed"):
             if key in table:
                 raise ConfigError(f"{where}.{key}: only for learned weights (weights = \"learn\")")
     if "gated" in table and not isinstance(table["gated"], bool):
         raise ConfigError(f"{where}.gated: must be true or false, got {table['gated']!r}")
+    if "objective" in table:
+        if not table.get("gated", False):
+            raise ConfigError(f"{where}.objective: only for gated blends (gated = true)")
+        if table["objective"] not in _OBJECTIVES:
+            raise ConfigError(f"{where}.objective: must be one of {list(_OBJECTIVES)}, got {table['objective']!r}")
     if not isinstance(table.get("metric", ""), str):
         raise ConfigError(f"{where}.metric: must be a string such as 'ndcg@10', got {table['metric']!r}")
     _check_int(table, "seed", 0, where)

@@ -35,13 +35,13 @@ import pandas as pd
 
 from xrec._validation import check_int, check_number
 from xrec.blend._base import check_sources
-from xrec.blend._sides import SideObjective, check_objective
+from xrec.blend._sides import OBJECTIVES, SideObjective, check_objective
 from xrec.blend._search import DEFAULT_GRID, LearnResult, Tracker, ascend, coordinate_ascent, simplex
 from xrec.blend.blend import Blend, check_normalizers, check_one_per_source, check_weight
 from xrec.errors import ConfigError
 from xrec.fold import Fold
 
-__all__ = ["BANDS", "GatedBlend", "PopularityBands", "learn_gated_weights"]
+__all__ = ["BANDS", "OBJECTIVES", "GatedBlend", "PopularityBands", "band_provenance", "band_weights_text", "learn_gated_weights"]
 
 #: Band names, in order of their index in :meth:`PopularityBands.assign`.
 BANDS: tuple[str, ...] = ("new", "tail", "head")
@@ -221,6 +221,30 @@ class GatedBlend(Blend):
     def __repr__(self) -> str:
         parts = "; ".join(f"{b}: " + ", ".join(f"{n}={w:g}" for n, w in t.items()) for b, t in self.band_weights.items())
         return f"GatedBlend({parts})"
+
+
+_PROVENANCE = ("band_heldout", "learned_bands", "unlearned_bands", "min_band_heldout", "head_min", "objective", "objective_used",
+               "reason", "side_users", "side_reference", "side_scores", "objective_value")
+
+
+def band_provenance(result: LearnResult) -> dict[str, Any]:
+    """Where a gated result's weights come from: validation held-out rows per band, learned and
+    not learned bands (with counts), the objective used and, for ``"sides"``, its side sizes,
+    references and scores. Plain values, ready for JSON."""
+    return {k: result.details[k] for k in _PROVENANCE if k in result.details}
+
+
+def band_weights_text(band_weights: Mapping[str, Mapping[str, float]], provenance: Mapping[str, Any]) -> list[str]:
+    """One line per band: its weights, and the validation rows it was learned on or
+    ``not learned (n=..)`` when it had fewer than ``min_band_heldout``."""
+    lines = []
+    for band in BANDS:
+        n = provenance["band_heldout"][band]
+        how = f"learned on {n} validation rows" if band in provenance["learned_bands"] else \
+            f"not learned (n={n} < {provenance['min_band_heldout']}): start weights"
+        weights = ", ".join(f"{s}={w:.3f}" for s, w in band_weights[band].items())
+        lines.append(f"  {band:<5} {how}: {weights}")
+    return lines
 
 
 def _flat_to_band_weights(v: np.ndarray, names: Sequence[str]) -> dict[str, dict[str, float]]:
