@@ -107,3 +107,17 @@ def test_a_side_too_small_falls_back_to_overall_and_says_why():
     assert "new" in result.details["reason"] and "41" in result.details["reason"]
     with pytest.raises(ConfigError, match="objective"):
         learn_gated_weights(engine, objective="both")
+
+
+def test_side_baselines_choose_the_reference_among_named_sources():
+    fold, sources, raws = sided_problem(seed=3)
+    engine = BlendEngine(sources, fold, "zscore", metric="ndcg@10", ks=(10,)).prepare()
+    free, _ = SideObjective.build(engine, 10)
+    assert free.references["new"][0] == "s2"  # the source that decides new items
+    limited, details = SideObjective.build(engine, 10, {"new": ["s0", "s1"]})
+    assert limited.references["new"][0] in ("s0", "s1") and limited.references["known"] == free.references["known"]
+    assert details["side_reference"]["new"]["source"] == limited.references["new"][0]
+    with pytest.raises(ConfigError, match="side_baselines"):
+        SideObjective.build(engine, 10, {"new": ["s9"]})
+    with pytest.raises(ConfigError, match="side_baselines"):
+        learn_gated_weights(engine, side_baselines={"new": ["s0"]})

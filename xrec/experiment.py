@@ -325,7 +325,8 @@ def _build_blend(spec, table, sources, split, valid_sources, learned, name, prog
               "best_single_validation": result.best_single[1] if result.best_single else None}
     if table.get("gated", False):
         objective = table.get("objective", "overall")
-        gated = learn_gated_weights(engine, start=result.weights, seed=seed, progress=progress, objective=objective)
+        gated = learn_gated_weights(engine, start=result.weights, seed=seed, progress=progress, objective=objective,
+                                    side_baselines=table.get("side_baselines"))
         record.update(band_weights=gated.band_weights, validation=gated.valid_score, head_min=int(gated.details["head_min"]),
                       bands=band_provenance(gated))
         learned[name] = record

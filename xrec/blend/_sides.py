@@ -81,12 +81,26 @@ class SideObjective:
         self._ref = np.array([self.references[s][1] for s in SIDES], dtype=np.float64)
 
     @classmethod
-    def build(cls, engine: Any, min_users: int) -> tuple[SideObjective | None, dict]:
+    def build(cls, engine: Any, min_users: int, baselines: Mapping[str, Any] | None = None) -> tuple[SideObjective | None, dict]:
         """The objective, or ``None`` when a side has fewer than ``min_users`` users or a zero reference.
+
+        ``baselines`` limits the sources a side's reference is chosen among, e.g.
+        ``{"new": ["attributes", "text"]}`` to measure the new side against content-only
+        sources (the ones a blend for new items has to beat); a side not named uses every source.
 
         Returns ``(objective or None, details)``; details hold the side sizes, the references
         and, when ``None``, the ``reason``.
         """
+        names = list(engine.names_)
+        allowed = {s: list(names) for s in SIDES}
+        for side, listed in dict(baselines or {}).items():
+            if side not in SIDES:
+                raise ConfigError(f"side_baselines: unknown side {side!r}; sides are {list(SIDES)}")
+            listed = [listed] if isinstance(listed, str) else list(listed)
+            unknown = [n for n in listed if n not in names]
+            if unknown or not listed:
+                raise ConfigError(f"side_baselines.{side}: give source names among {names}, got {listed!r}")
+            allowed[side] = listed
         new_row = new_side_rows(engine)
         sizes = {"known": int((~new_row).sum()), "new": int(new_row.sum())}
         details: dict = {"side_users": sizes}
@@ -94,13 +108,13 @@ class SideObjective:
         if small:
             details["reason"] = f"too few validation users on side(s) {small} (fewer than {min_users})"
             return None, details
-        names = list(engine.names_)
         col = _column(engine)
-        refs: dict[str, tuple[str, float]] = {}
         best = {s: ("", -np.inf) for s in SIDES}
         for j, name in enumerate(names):
             values = engine.per_user(dict(zip(names, np.eye(len(names))[j].tolist(), strict=True)))[col].to_numpy()
             for s, mask in zip(SIDES, (~new_row, new_row), strict=True):
+                if name not in allowed[s]:
+                    continue
                 m = float(values[mask].mean())
                 if m > best[s][1]:
                     best[s] = (name, m)

@@ -268,6 +268,7 @@ def learn_gated_weights(
     search: str = "fast",
     min_band_heldout: int = 20,
     objective: str = "overall",
+    side_baselines: Mapping[str, Sequence[str]] | None = None,
     **fast_options: Any,
 ) -> Any:
     """Learn band × source weights jointly by coordinate ascent on the validation metric.
@@ -304,6 +305,10 @@ def learn_gated_weights(
         blend is chosen to do well on both; every user still ranks the whole catalog. Falls
         back to ``"overall"`` (reported in ``details["objective_used"]`` with the reason)
         when a side has fewer than ``min_band_heldout`` validation users.
+    side_baselines
+        ``objective="sides"`` only: the sources each side's reference is chosen among, e.g.
+        ``{"new": ["attributes", "text", "image"]}`` to judge the new side against the best
+        content-only source; a side not named uses every source.
     **fast_options
         ``sample``, ``min_users``, ``stop_z`` of the fast search.
     test_engine
@@ -339,7 +344,9 @@ def learn_gated_weights(
         raise ConfigError(f"search must be 'fast' or 'exhaustive', got {search!r}")
     sides, side_details = None, {}
     if check_objective(objective) == "sides":
-        sides, side_details = SideObjective.build(engine, int(min_band_heldout))
+        sides, side_details = SideObjective.build(engine, int(min_band_heldout), side_baselines)
+    elif side_baselines is not None:
+        raise ConfigError("side_baselines: only with objective='sides'")
     if start is None:
         base = coordinate_ascent(engine, n_restarts=1, seed=seed, progress=progress, search=search, **fast_options)
         start_w = np.array([base.weights[n] for n in names])
