@@ -242,7 +242,8 @@ def run_demo(
     with clock.step("writing scorecards, blend file and report"):
         study = {"parts": part_table, "sides": sides, "best_known": best_known, "best_content_new": best_content_new,
                  "mapped_scale": scale, "mapped_scales": scale_table, "mapped_choice": test_sources["mapped"].chosen,
-                 "part_counts": parts.value_counts().to_dict()}
+                 "part_counts": parts.value_counts().to_dict(),
+                 "validation_new": {k: split.settings[f"validation_{k}"] for k in ("new_items", "new_item_heldout_rows")}}
         paths = _write_outputs(
             out, dataset, split, cards, learned, gated, vs_best, vs_pop, tastes, study, gated_blend, best_single,
             dataset_load=_load_hints(shop),
@@ -393,6 +394,7 @@ def _summary(cards, learned, gated, vs_best, best_single, paths, clock, study) -
         "sides": side_rows(study["sides"]),
         "gated_band_weights": gated.band_weights,
         "gated_bands": _band_details(gated),
+        "validation_new": study["validation_new"],
         "mapped_new_item_scale": study["mapped_scale"],
         "mapped_mapping": study["mapped_choice"],
         "seconds": {**{k: round(v, 2) for k, v in clock.steps.items()}, "total": round(clock.total, 2)},
@@ -417,8 +419,10 @@ def summary_text(summary: dict[str, Any]) -> str:
         from xrec.blend.gating import band_weights_text
 
         bands = summary["gated_bands"]
+        vnew = summary["validation_new"]
         lines.append(f"Gated blend band weights (objective {bands.get('objective_used', 'overall')}; validation purchases per band "
-                     f"{bands['band_heldout']}, a band needs {bands['min_band_heldout']} to be learned):")
+                     f"{bands['band_heldout']}, a band needs {bands['min_band_heldout']} to be learned; the new band's "
+                     f"{vnew['new_item_heldout_rows']} purchases are on {vnew['new_items']} distinct new items):")
         lines.extend(band_weights_text(summary["gated_band_weights"], bands))
         if "side_scores" in bands:
             refs = bands["side_reference"]
