@@ -98,6 +98,14 @@ def test_known_and_new_items_are_reported_side_by_side(demo):
     payload = json.loads((out / "scorecards.json").read_text(encoding="utf-8"))
     assert payload["exported_blend"] == "gated blend" and payload["split"]["rule"] == "mixed_last"
     assert payload["gated"]["band_heldout"]["new"] == bands["band_heldout"]["new"]
+    # the two-sided objective was used, and its per-side validation scores are reported beside the references
+    assert bands["objective_used"] == "sides" and set(bands["side_scores"]) == {"known", "new"}
+    assert bands["side_reference"]["new"]["source"] in ("attributes", "text", "image")
+    assert bands["band_heldout"]["new"] == summary["validation_new"]["new_item_heldout_rows"] > summary["validation_new"]["new_items"] > 0
+    from xrec.demo import summary_text
+
+    text = summary_text(summary)
+    assert "learned on" in text and "distinct new items" in text and "both sides won" in text
 
 
 def test_blend_file_of_another_shop_records_its_folder(tmp_path, monkeypatch):
