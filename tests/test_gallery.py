@@ -242,3 +242,54 @@ def test_items_without_pictures_get_text_tiles():
     sources = {"a": FixedScores(raw).fit(fold), "b": FixedScores(-raw).fit(fold)}
     g = Gallery(sources, fold, weights={"a": 1.0, "b": 0.5}, k=3, user="u1")
     assert g.user_ == 1 and "<img" not in g.html() and 'class="xrec-no-image"' in g.html()
+
+
+def test_widget_picker_and_revision(shop, gallery):
+    pytest.importorskip("ipywidgets")
+    panel = gallery.widget
+    assert "xrec-gallery-panel" in panel._dom_classes
+    before = gallery.revision_
+    gallery.picker.value = "a miss"  # choosing an entry shows a user at once
+    assert gallery.revision_ == before + 1 and len(gallery.view_.blend_hits) == 0
+    gallery.picker.value = "user id"
+    gallery.user_box.value = "no such user"
+    gallery.next_button.click()
+    assert "not in the fold" in gallery.status.value and gallery.revision_ == before + 1
+    gallery.user_box.value = str(shop[1].user_ids[7])
+    gallery.next_button.click()
+    assert gallery.user_ == 7 and gallery.status.value == ""
+    assert f'data-revision="{gallery.revision_}"' in gallery._panel.value
+    bundle = gallery._repr_mimebundle_()
+    assert "application/vnd.jupyter.widget-view+json" in bundle and bundle["text/html"] == gallery.html()
+
+
+def test_gallery_follows_the_mixer(shop):
+    pytest.importorskip("ipywidgets")
+    from xrec.notebook import WeightMixer
+
+    dataset, fold, sources = shop
+    mixer = WeightMixer(sources, fold, baseline="pop", ks=(10, 20), dataset=dataset, weights=WEIGHTS, sample_size=150, seed=3)
+    g = Gallery(sources, fold, dataset=dataset, seed=4).follow(mixer)
+    assert g.weights == WEIGHTS and g.baseline_name == "pop"
+    revisions = [g.revision_]
+    mixer.sliders["als"].value = 0.9
+    revisions.append(g.revision_)
+    assert g.weights["als"] == 0.9
+    mixer.normalizer_menu.value = "rank"
+    revisions.append(g.revision_)
+    assert g.normalizer == "rank"
+    mixer.k_menu.value = 20
+    revisions.append(g.revision_)
+    assert g.k == 20 and len(g.view_.blend.items) == 20
+    mixer.pin_baseline()
+    revisions.append(g.revision_)
+    # The pinned blend is the current one: the two lists are the same, nothing added or dropped.
+    assert g.baseline_name.startswith("pinned blend") and len(g.view_.added) == len(g.view_.dropped) == 0
+    mixer.unpin_baseline()
+    revisions.append(g.revision_)
+    assert g.baseline_name == "pop"
+    assert np.all(np.diff(revisions) == 1), revisions
+    ref = Blend(sources, mixer.weights, "rank").fit(fold).score(np.array([g.user_]))[0]
+    np.testing.assert_allclose(g.view_.blend.scores, ref[g.view_.blend.items], rtol=1e-6, atol=1e-6)
+    with pytest.raises(ConfigError, match="sources"):
+        Gallery({"pop": sources["pop"], "als": sources["als"]}, fold).follow(mixer)

@@ -142,6 +142,7 @@ class Gallery:
         self.last_seconds_ = 0.0
         self._note = ""
         self._widget: Any = None
+        self._muted = False  # set while the user box is filled from code
         self._html = ""
         if user is not None:
             self.user_ = find_user(fold, user)
@@ -305,12 +306,13 @@ class Gallery:
         import ipywidgets as w
 
         self.picker = w.Dropdown(options=[_BY_ID, *PICKS, *self.segments], value="random", description="user")
-        self.user_box = w.Text(value=str(self.user_id), placeholder="a user id", layout=w.Layout(width="160px"))
+        # Sent when Enter is pressed or the box loses focus, not on every key.
+        self.user_box = w.Text(value=str(self.user_id), placeholder="a user id", continuous_update=False, layout=w.Layout(width="160px"))
         self.next_button = w.Button(description="Show", icon="refresh", tooltip="show a user chosen as the menu says")
         self.status = w.HTML()
         self._panel = w.HTML(value=self._html)
         self.next_button.on_click(lambda _b: self._clicked())
-        self.user_box.on_submit(lambda _t: self._clicked(by_id=True))
+        self.user_box.observe(lambda _change: self._muted or self._clicked(by_id=True), names="value")
         self.picker.observe(lambda change: change["new"] != _BY_ID and self._clicked(), names="value")
         box = w.VBox([w.HBox([self.picker, self.user_box, self.next_button]), self.status, self._panel])
         box.add_class("xrec-gallery-panel")
@@ -325,7 +327,11 @@ class Gallery:
         except XrecError as exc:
             self._say(str(exc))
             return
-        self.user_box.value = str(self.user_id)
+        self._muted = True
+        try:
+            self.user_box.value = str(self.user_id)
+        finally:
+            self._muted = False
         self._say("")
 
     def _say(self, text: str) -> None:
