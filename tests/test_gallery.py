@@ -293,3 +293,19 @@ def test_gallery_follows_the_mixer(shop):
     np.testing.assert_allclose(g.view_.blend.scores, ref[g.view_.blend.items], rtol=1e-6, atol=1e-6)
     with pytest.raises(ConfigError, match="sources"):
         Gallery({"pop": sources["pop"], "als": sources["als"]}, fold).follow(mixer)
+
+
+def test_row_cache_stays_within_its_budget_and_gives_the_same_rows(shop, monkeypatch):
+    import xrec.notebook._gallery_rank as rank
+
+    _, fold, sources = shop
+    reference = rank.RowCache(sources, fold).rows(np.arange(12), "zscore")
+    # A catalog this size under a budget of 3 users' rows: 3 kept, batches of 3.
+    monkeypatch.setattr(rank, "CELL_BUDGET", 3 * len(sources) * fold.n_items)
+    small = rank.RowCache(sources, fold)
+    assert small.max_users == small.users_within_budget == 3
+    rows, mask = small.rows(np.arange(12), "zscore")
+    assert len(small._rows) == 3
+    for name in sources:
+        np.testing.assert_array_equal(rows[name], reference[0][name])
+    np.testing.assert_array_equal(mask, reference[1])

@@ -67,8 +67,9 @@ def pick_by_outcome(
     Users are tried in a seeded random order, a batch at a time; ``None`` when no user qualifies.
     """
     users = rng.permutation(cache.fold.eval_users)
-    for lo in range(0, len(users), _BATCH):
-        batch = users[lo : lo + _BATCH]
+    step = min(_BATCH, cache.users_within_budget)
+    for lo in range(0, len(users), step):
+        batch = users[lo : lo + step]
         _, total, mask = cache.weighted(batch, weights, normalizer)
         for row, u in enumerate(batch):
             found = np.isin(top_k(total[row], mask[row], k), user_heldout(cache.fold, int(u))).any()

@@ -20,7 +20,10 @@ import numpy as np
 from xrec.errors import ConfigError
 from xrec.fold import Fold
 
-__all__ = ["Histories", "Ranked", "RowCache", "UserView", "top_k", "user_heldout", "user_view"]
+#: Float32 values the row cache and one scoring batch may hold (128 MiB).
+CELL_BUDGET = 1 << 25
+
+__all__ = ["CELL_BUDGET", "Histories", "Ranked", "RowCache", "UserView", "top_k", "user_heldout", "user_view"]
 
 
 def top_k(scores: np.ndarray, candidates: np.ndarray, k: int) -> np.ndarray:
@@ -52,7 +55,8 @@ class RowCache:
     fold
         The fold the sources were fitted on (its training rows mark seen items).
     max_users
-        Users kept per normalizer before the oldest is dropped.
+        Rows kept (a user under one normalizer) before the oldest is dropped; fewer on a large
+        catalog, so that the rows kept hold at most :data:`CELL_BUDGET` values.
     """
 
     def __init__(self, sources: Mapping[str, Any], fold: Fold, max_users: int = 256) -> None:
@@ -60,18 +64,24 @@ class RowCache:
 
         self.sources = dict(sources)
         self.fold = fold
-        self.max_users = max_users
+        self.max_users = max(1, min(int(max_users), self.users_within_budget))
         # A fitted blend gives the candidates exactly as Blend.score builds them.
         self._masker = Blend(self.sources, {n: 1.0 for n in self.sources}).fit(fold)
         self.histories = Histories(fold)
         self._rows: OrderedDict[tuple[int, str], tuple[dict[str, np.ndarray], np.ndarray]] = OrderedDict()
+
+    @property
+    def users_within_budget(self) -> int:
+        """Users whose rows of every source fit in :data:`CELL_BUDGET` values (at least 1)."""
+        return max(1, CELL_BUDGET // max(1, len(self.sources) * self.fold.n_items))
 
     def rows(self, users: np.ndarray, normalizer: str) -> tuple[dict[str, np.ndarray], np.ndarray]:
         """``({name: (len(users), n_items) float32}, candidate mask)`` for a block of users."""
         from xrec.blend.normalize import normalize
 
         users = np.asarray(users, dtype=np.int64)
-        missing = [u for u in dict.fromkeys(users.tolist()) if (u, normalizer) not in self._rows]
+        found = {u: self._rows[(u, normalizer)] for u in users.tolist() if (u, normalizer) in self._rows}
+        missing = [u for u in dict.fromkeys(users.tolist()) if u not in found]
         if missing:
             block = np.asarray(missing, dtype=np.int64)
             cand = self._masker.candidates(block)
@@ -79,17 +89,17 @@ class RowCache:
                 name: normalize(np.asarray(src.score(block)), normalizer, candidates=cand) for name, src in self.sources.items()
             }
             for i, u in enumerate(missing):
-                self._rows[(u, normalizer)] = ({n: v[i] for n, v in normalized.items()}, cand.mask[i])
-            while len(self._rows) > self.max_users:
-                self._rows.popitem(last=False)
-        entries = [self._rows[(u, normalizer)] for u in users.tolist()]
+                found[u] = ({n: v[i] for n, v in normalized.items()}, cand.mask[i])
         for u in users.tolist():
+            self._rows[(u, normalizer)] = found[u]
             self._rows.move_to_end((u, normalizer))
-        names = list(self.sources)
-        return (
-            {n: np.stack([e[0][n] for e in entries]) if entries else np.zeros((0, self.fold.n_items), np.float32) for n in names},
-            np.stack([e[1] for e in entries]) if entries else np.zeros((0, self.fold.n_items), bool),
-        )
+        while len(self._rows) > self.max_users:
+            self._rows.popitem(last=False)
+        entries = [found[u] for u in users.tolist()]
+        if not entries:
+            empty = np.zeros((0, self.fold.n_items), np.float32)
+            return {n: empty for n in self.sources}, np.zeros((0, self.fold.n_items), bool)
+        return {n: np.stack([e[0][n] for e in entries]) for n in self.sources}, np.stack([e[1] for e in entries])
 
     def weighted(self, users: np.ndarray, weights: Mapping[str, float], normalizer: str) -> tuple[dict[str, np.ndarray], np.ndarray, np.ndarray]:
         """Per-source contributions (weight × normalized row), their sum and the candidate mask.

@@ -83,6 +83,8 @@ class Gallery:
         Seconds the last redraw took (scoring, top-K, HTML).
     segments
         Picker label -> evaluated users (held-out item new / tail / head, history length).
+    new_items
+        Boolean per catalog item: no training interaction in ``fold`` (marked "new item").
 
     Examples
     --------
@@ -113,8 +115,10 @@ class Gallery:
         if not isinstance(fold, Fold):
             raise ConfigError(f"fold must be an xrec Fold, got {type(fold).__name__}")
         normalizer = check_normalizer(normalizer, "normalizer")
+        if weights is None:
+            weights = {n: 0.5 for n in sources} if isinstance(sources, Mapping) else {}
         # A Blend checks the sources, the weights and the normalizer exactly as the blend shown will.
-        checked = Blend(sources, {n: 0.5 for n in sources} if weights is None and isinstance(sources, Mapping) else weights or {}, normalizer)
+        checked = Blend(sources, weights, normalizer)
         self.sources = checked.sources
         unfitted = [n for n, s in self.sources.items() if not getattr(s, "fitted_", False)]
         if unfitted:
@@ -135,7 +139,7 @@ class Gallery:
         self._own_baseline = self._resolve_baseline(baseline)
         self._baseline = self._own_baseline
         self._cache = RowCache(self.sources, fold)
-        self._new_items = fold.item_train_counts == 0
+        self.new_items = fold.item_train_counts == 0
         self._rng = np.random.default_rng(check_int(seed, "seed", low=0))
         self.segments = segment_groups(fold)
         self.revision_ = 0
@@ -182,7 +186,7 @@ class Gallery:
 
     def view(self, user: int | None = None) -> UserView:
         """What the panel shows for user index ``user`` (default the current user), with the current settings."""
-        label, base, base_norm = self._baseline
+        _, base, base_norm = self._baseline
         return user_view(self._cache, self.user_ if user is None else int(user), self.weights, self.normalizer, self.k, base, base_norm)
 
     # ------------------------------------------------------------------ picking
@@ -256,7 +260,7 @@ class Gallery:
         self._html = view_html(
             view, self.catalog, weights=self.weights, normalizer=self.normalizer, colors=self.colors,
             baseline_name=label if base_norm is None or base_norm == self.normalizer else f"{label} ({base_norm})",
-            new_items=self._new_items, revision=self.revision_, note=self._note, style=self.style,
+            new_items=self.new_items, revision=self.revision_, note=self._note, style=self.style,
         )  # fmt: skip
         if self._widget is not None:
             self._panel.value = self._html
@@ -415,10 +419,9 @@ def report_gallery(
     for row in chosen.itertuples(index=False):
         view = gallery.view(int(row.user))
         note = f"{row.reason}: {metric} {row.baseline:.3f} → {row.blend:.3f} ({row.difference:+.3f})"
-        label, _, base_norm = gallery._baseline
         panels.append(
             view_html(view, gallery.catalog, weights=gallery.weights, normalizer=gallery.normalizer, colors=gallery.colors,
-                      baseline_name=label, new_items=gallery._new_items, note=note, style=gallery.style)
+                      baseline_name=gallery.baseline_name, new_items=gallery.new_items, note=note, style=gallery.style)
         )  # fmt: skip
     intro = (
         f"<p>Blend ({html.escape(weights)}; {html.escape(gallery.normalizer)}) against {html.escape(gallery.baseline_name)}, "
