@@ -106,7 +106,7 @@ def view_html(
     revision_attr = f' data-revision="{int(revision)}"' if revision is not None else ""
     return (
         f'<div class="xrec-gallery"{revision_attr} data-user="{html.escape(str(view.user_id))}" '
-        f'style="font-family:system-ui,sans-serif;font-size:13px">'
+        f'style="font-family:system-ui,sans-serif;font-size:13px;line-height:1.3">'
         f'<div class="xrec-gallery-head">{head}</div>'
         f"{legend_html(weights, colors, normalizer)}"
         f'<div style="font-size:11px;color:#666">marks: {marks_key}; a green frame is a held-out item</div>'

@@ -268,7 +268,7 @@ def tile_html(tile: Tile, *, size: int = DEFAULT_SIZE, colors: Mapping[str, str]
         )
     badges = "".join(
         f'<span class="xrec-mark xrec-mark-{html.escape(m)}" style="display:inline-block;margin:1px 2px 0 0;padding:0 3px;'
-        f'border-radius:3px;font-size:10px;color:#fff;background:{MARK_STYLES.get(m, (m, "#777"))[1]}">'
+        f'border-radius:3px;font-size:10px;line-height:14px;color:#fff;background:{MARK_STYLES.get(m, (m, "#777"))[1]}">'
         f"{html.escape(MARK_STYLES.get(m, (m, ''))[0])}</span>"
         for m in marks
     )
@@ -311,4 +311,4 @@ def strip_html(
     if not tiles:
         body = f'<div style="color:#777;font-size:12px;padding:4px">{html.escape(empty)}</div>'
     head = f'<div class="xrec-strip-title" style="font-weight:600;font-size:13px;margin:4px 0 2px">{html.escape(title)}</div>' if title else ""
-    return f'<div class="xrec-strip" style="font-family:system-ui,sans-serif">{head}<div style="display:flex;flex-wrap:wrap">{body}</div></div>'
+    return f'<div class="xrec-strip" style="font-family:system-ui,sans-serif;line-height:1.25">{head}<div style="display:flex;flex-wrap:wrap">{body}</div></div>'
