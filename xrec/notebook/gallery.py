@@ -86,6 +86,12 @@ class Gallery:
     new_items
         Boolean per catalog item: no training interaction in ``fold`` (marked "new item").
 
+    Notes
+    -----
+    Lists hold unseen items only, best first; tied scores are ordered by catalog position.
+    The evaluator counts a tie against the held-out item, so with tied scores (popularity,
+    say) a held-out item can appear in a list while the metric counts it as a miss.
+
     Examples
     --------
     >>> gallery = Gallery(valid_sources, valid, dataset=dataset, baseline="als")  # doctest: +SKIP
