@@ -272,21 +272,22 @@ def test_gallery_follows_the_mixer(shop):
     g = Gallery(sources, fold, dataset=dataset, seed=4).follow(mixer)
     assert g.weights == WEIGHTS and g.baseline_name == "pop"
     revisions = [g.revision_]
-    mixer.sliders["als"].value = 0.9
-    revisions.append(g.revision_)
+
+    def then(action):
+        action()
+        assert mixer.wait(timeout=120)  # slider moves are drawn (and the gallery called) on the mixer's thread
+        revisions.append(g.revision_)
+
+    then(lambda: setattr(mixer.sliders["als"], "value", 0.9))
     assert g.weights["als"] == 0.9
-    mixer.normalizer_menu.value = "rank"
-    revisions.append(g.revision_)
+    then(lambda: setattr(mixer.normalizer_menu, "value", "rank"))
     assert g.normalizer == "rank"
-    mixer.k_menu.value = 20
-    revisions.append(g.revision_)
+    then(lambda: setattr(mixer.k_menu, "value", 20))
     assert g.k == 20 and len(g.view_.blend.items) == 20
-    mixer.pin_baseline()
-    revisions.append(g.revision_)
+    then(mixer.pin_baseline)
     # The pinned blend is the current one: the two lists are the same, nothing added or dropped.
     assert g.baseline_name.startswith("pinned blend") and len(g.view_.added) == len(g.view_.dropped) == 0
-    mixer.unpin_baseline()
-    revisions.append(g.revision_)
+    then(mixer.unpin_baseline)
     assert g.baseline_name == "pop"
     assert np.all(np.diff(revisions) == 1), revisions
     ref = Blend(sources, mixer.weights, "rank").fit(fold).score(np.array([g.user_]))[0]

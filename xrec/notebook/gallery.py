@@ -16,6 +16,7 @@ slider move costs a weighted sum over one row and a few HTML tiles.
 from __future__ import annotations
 
 import html
+import threading
 import time
 from collections.abc import Mapping
 from typing import Any, Self
@@ -148,6 +149,9 @@ class Gallery:
         self.new_items = fold.item_train_counts == 0
         self._rng = np.random.default_rng(check_int(seed, "seed", low=0))
         self.segments = segment_groups(fold)
+        # Held while the shown state changes: a followed mixer calls back on its update thread
+        # while the picker's handlers run on the kernel's main thread.
+        self._lock = threading.RLock()
         self.revision_ = 0
         self.last_seconds_ = 0.0
         self._note = ""
@@ -217,8 +221,9 @@ class Gallery:
     def pick(self, how: str = "random") -> Self:
         """Show another user: ``"random"``, ``"a hit"`` / ``"a miss"`` (for the blend at the current K),
         or a segment label from :attr:`segments`; returns ``self``."""
-        self.user_ = self._pick_index(how)
-        self._redraw()
+        with self._lock:
+            self.user_ = self._pick_index(how)
+            self._redraw()
         return self
 
     # ------------------------------------------------------------------ drawing
@@ -234,6 +239,11 @@ class Gallery:
 
         ``weights`` may name only the sources that change.
         """
+        with self._lock:
+            self._show(user, weights, normalizer, k)
+        return self
+
+    def _show(self, user: Any, weights: Mapping[str, float] | None, normalizer: str | None, k: int | None) -> None:
         from xrec.blend.blend import check_weights
         from xrec.blend.normalize import check_normalizer
 
@@ -251,7 +261,6 @@ class Gallery:
         if new_user != self.user_:
             self.user_, self._note = new_user, "chosen by id"
         self._redraw()
-        return self
 
     def html(self) -> str:
         """The panel last drawn, as HTML (``<div class="xrec-gallery" data-revision=...>``)."""
@@ -293,16 +302,17 @@ class Gallery:
 
     def _on_mixer(self, mixer: Any) -> None:
         pinned = getattr(mixer, "pinned_weights_", None)
-        if pinned:
-            self._baseline = ("pinned blend", dict(pinned), getattr(mixer, "pinned_normalizer_", None) or mixer.normalizer)
-        elif mixer.baseline_name_ in self.sources:
-            self._baseline = self._resolve_baseline(mixer.baseline_name_)
-        else:
-            self._baseline = self._own_baseline
-        try:
-            self.show(weights=mixer.weights, normalizer=mixer.normalizer, k=mixer.k)
-        except XrecError as exc:
-            self._say(str(exc))
+        with self._lock:
+            if pinned:
+                self._baseline = ("pinned blend", dict(pinned), getattr(mixer, "pinned_normalizer_", None) or mixer.normalizer)
+            elif mixer.baseline_name_ in self.sources:
+                self._baseline = self._resolve_baseline(mixer.baseline_name_)
+            else:
+                self._baseline = self._own_baseline
+            try:
+                self._show(None, mixer.weights, mixer.normalizer, mixer.k)
+            except XrecError as exc:
+                self._say(str(exc))
 
     # ------------------------------------------------------------------ widget
     @property
