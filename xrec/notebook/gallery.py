@@ -16,6 +16,7 @@ slider move costs a weighted sum over one row and a few HTML tiles.
 from __future__ import annotations
 
 import html
+import re
 import threading
 import time
 from collections.abc import Mapping
@@ -156,6 +157,7 @@ class Gallery:
         self.last_seconds_ = 0.0
         self._note = ""
         self._widget: Any = None
+        self._picture: str | None = None  # display id of the still picture, once shown
         self._muted = False  # set while the user box is filled from code
         self._html = ""
         if user is not None:
@@ -224,6 +226,7 @@ class Gallery:
         with self._lock:
             self.user_ = self._pick_index(how)
             self._redraw()
+        self._refresh_picture()
         return self
 
     # ------------------------------------------------------------------ drawing
@@ -241,6 +244,7 @@ class Gallery:
         """
         with self._lock:
             self._show(user, weights, normalizer, k)
+        self._refresh_picture()
         return self
 
     def _show(self, user: Any, weights: Mapping[str, float] | None, normalizer: str | None, k: int | None) -> None:
@@ -358,13 +362,35 @@ class Gallery:
         if self._widget is not None:
             self.status.value = f'<span style="color:#b00020">{html.escape(text)}</span>' if text else ""
 
+    @property
+    def static_html_(self) -> str:
+        """The last panel as a still picture (no ``data-revision``: it does not follow the mixer)."""
+        with self._lock:
+            panel = re.sub(r' data-revision="\d+"', "", self._html, count=1)
+        return (
+            '<div class="xrec-gallery-static"><small style="color:#666">A still picture of the gallery\'s last '
+            f"state, kept in the notebook: run the cell again to pick users and follow the mixer.</small>{panel}</div>"
+        )
+
+    def _ipython_display_(self) -> None:
+        """Show the live panel, then a still picture that front ends without the widget show instead."""
+        from xrec.notebook._mixer_table import show_with_picture
+
+        self._picture = show_with_picture(self.widget, self.static_html_, repr(self), self._picture)
+
+    def _refresh_picture(self) -> None:
+        # From code run in a cell (show, pick) the front end routes the update to the picture's cell.
+        if self._picture is not None and threading.current_thread() is threading.main_thread():
+            from xrec.notebook._mixer_table import refresh_picture
+
+            refresh_picture(self._picture, self.static_html_, repr(self))
+
     def _repr_mimebundle_(self, **kwargs: Any) -> Any:
         try:
             bundle = dict(self.widget._repr_mimebundle_(**kwargs))
-        except ImportError:  # no ipywidgets: the static panel
+        except ImportError:  # no ipywidgets: the still panel
             bundle = {"text/plain": repr(self)}
-        # Shown where no widget manager runs (a saved page, a restarted kernel); live views prefer the widget.
-        bundle["text/html"] = self._html
+        bundle["text/html"] = self.static_html_  # for front ends without a widget manager
         return bundle
 
     def __repr__(self) -> str:
