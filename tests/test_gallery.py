@@ -313,3 +313,21 @@ def test_row_cache_stays_within_its_budget_and_gives_the_same_rows(shop, monkeyp
     for name in sources:
         np.testing.assert_array_equal(rows[name], reference[0][name])
     np.testing.assert_array_equal(mask, reference[1])
+
+
+def test_display_adds_a_still_picture_that_code_keeps_current(shop, gallery, monkeypatch):
+    pytest.importorskip("ipywidgets")
+    import IPython.display
+
+    shown, updated = [], []
+    monkeypatch.setattr(IPython.display, "display", lambda obj, **kw: shown.append((obj, kw)))
+    monkeypatch.setattr(IPython.display, "update_display", lambda obj, **kw: updated.append((obj, kw)))
+    gallery._ipython_display_()
+    assert shown[0][0] is gallery.widget
+    picture, options = shown[1]
+    assert options["raw"] and "xrec-gallery-static" in picture["text/html"]
+    assert "data-revision" not in picture["text/html"]  # the browser test watches the live panel only
+    gallery.show(shop[1].user_ids[3])
+    last = updated[-1]
+    assert last[1]["display_id"] == options["display_id"]
+    assert f'data-user="{shop[1].user_ids[3]}"' in last[0]["text/html"]
