@@ -63,8 +63,8 @@ class _Tiles(HTMLParser):
         for part in ("xrec-gallery-baseline", "xrec-gallery-blend"):
             if part in cls:
                 self.part = part
-        if "xrec-tile" in cls and self.part:
-            self.tiles.setdefault(self.part, []).append((a["data-item"], set(a["data-marks"].split())))
+        if "xrec-tile" in cls:
+            self.tiles.setdefault(self.part or "above the lists", []).append((a["data-item"], a["data-marks"]))
 
 
 def _parse(text: str) -> _Tiles:
@@ -115,7 +115,7 @@ def test_hits_added_and_dropped_follow_the_fold_and_set_arithmetic(shop, gallery
         assert set(view.added) == set(blend) - set(base)
         assert set(view.dropped) == set(base) - set(blend)
         ids = fold.catalog.item_ids
-        tiles = _parse(gallery.html()).tiles
+        tiles = {part: [(item, set(marks.split())) for item, marks in found] for part, found in _parse(gallery.html()).tiles.items()}
         assert [t[0] for t in tiles["xrec-gallery-blend"]] == [ids[j] for j in blend]
         assert [t[0] for t in tiles["xrec-gallery-baseline"]] == [ids[j] for j in base]
         for part, own, other, moved in (("xrec-gallery-blend", blend, base, "added"), ("xrec-gallery-baseline", base, blend, "dropped")):
@@ -123,6 +123,13 @@ def test_hits_added_and_dropped_follow_the_fold_and_set_arithmetic(shop, gallery
                 assert ("hit" in marks) == (j in held)
                 assert (moved in marks) == (j not in other)
                 assert ("new" in marks) == (fold.item_train_counts[j] == 0)
+        # Held-out items (after the history) carry their place in each list: "blend #3", "als #7".
+        held_tiles = _parse(gallery.html()).tiles["above the lists"][-len(held):]
+        for (item, marks), j in zip(held_tiles, sorted(held, key=lambda j: list(view.heldout).index(j)), strict=True):
+            assert item == ids[j]
+            for name, own in (("blend", blend), ("als", base)):
+                placed = [m for m in marks.split() if m.startswith(f"{name}_#")]
+                assert placed == ([f"{name}_#{own.index(j) + 1}"] if j in own else [])
 
 
 def test_history_is_the_training_rows_most_recent_first(shop, gallery):

@@ -89,7 +89,8 @@ def view_html(
     history = tiles_for(catalog, shown, size=style.history_size, fmt=style.fmt)
     held = []
     for t, j in zip(tiles_for(catalog, view.heldout, size=style.history_size, fmt=style.fmt), view.heldout, strict=True):
-        m = [f"{name} #{int(np.flatnonzero(r.items == j)[0]) + 1}" for name, r in (("blend", view.blend), ("baseline", view.baseline)) if j in r.items]
+        lists = (("blend", view.blend), (baseline_name, view.baseline))
+        m = [f"{name} #{int(np.flatnonzero(r.items == j)[0]) + 1}" for name, r in lists if j in r.items]
         held.append(replace(t, marks=(*m, *(("new",) if new_items[j] else ()))))
     n_held = len(view.heldout)
     head = (

@@ -240,6 +240,9 @@ def _contribution_bars(contributions: Mapping[str, float], colors: Mapping[str, 
 def tile_html(tile: Tile, *, size: int = DEFAULT_SIZE, colors: Mapping[str, str] | None = None, scale: float | None = None) -> str:
     """One tile as an inline-block ``<div class="xrec-tile">`` (every text escaped).
 
+    The element carries ``data-item`` (the item id) and ``data-marks`` (the marks,
+    space-separated, with spaces inside a mark written ``_``: ``"hit blend_#3"``).
+
     Parameters
     ----------
     tile
@@ -267,7 +270,7 @@ def tile_html(tile: Tile, *, size: int = DEFAULT_SIZE, colors: Mapping[str, str]
             f'padding:4px;box-sizing:border-box">{caption}</div>'
         )
     badges = "".join(
-        f'<span class="xrec-mark xrec-mark-{html.escape(m)}" style="display:inline-block;margin:1px 2px 0 0;padding:0 3px;'
+        f'<span class="xrec-mark xrec-mark-{m if m in MARK_STYLES else "other"}" style="display:inline-block;margin:1px 2px 0 0;padding:0 3px;'
         f'border-radius:3px;font-size:10px;line-height:14px;color:#fff;background:{MARK_STYLES.get(m, (m, "#777"))[1]}">'
         f"{html.escape(MARK_STYLES.get(m, (m, ''))[0])}</span>"
         for m in marks
@@ -277,7 +280,8 @@ def tile_html(tile: Tile, *, size: int = DEFAULT_SIZE, colors: Mapping[str, str]
     if tile.contributions:
         top = max((abs(float(v)) for v in tile.contributions.values() if math.isfinite(float(v))), default=0.0)
         bars = _contribution_bars(tile.contributions, colors, top if scale is None else scale, size)
-    marks_attr = html.escape(" ".join(marks))
+    # Space-separated, so CSS can select [data-marks~="hit"]; spaces inside a mark become "_".
+    marks_attr = html.escape(" ".join("_".join(m.split()) for m in marks))
     return (
         f'<div class="xrec-tile" data-item="{item}" data-marks="{marks_attr}" title="{item}: {caption}" '
         f'style="display:inline-block;vertical-align:top;width:{size + 8}px;margin:3px;padding:3px;'
