@@ -4,8 +4,8 @@ The demo shop is split leave-last-out; popularity, ALS, attributes, text and ima
 similarity (through the embedding cache) are fitted on the validation fold's training rows.
 A :class:`xrec.notebook.WeightMixer` is built on the validation fold with a
 :class:`xrec.notebook.Gallery` following it, and one slider is moved programmatically many
-times (``slider.value = x``; the mixer's observer, its chart redraw and the gallery's
-redraw all run before the assignment returns).
+times (``slider.value = x``, then ``mixer.wait()``: the mixer redraws its chart and then
+calls the gallery on its update thread).
 
 Measured in alternating rounds, in the same process:
 
@@ -62,10 +62,12 @@ def main() -> None:
         for v in values:
             t = time.perf_counter()
             mixer.sliders["text"].value = float(round(v, 2))
+            mixer.wait()  # the mixer redraws (and calls the gallery) on its update thread
             out.append(time.perf_counter() - t)
             if gallery_times is not None:
                 gallery_times.append(gallery.last_seconds_)
         mixer.sliders["text"].value = 0.5
+        mixer.wait()
         return out
 
     moves(alone), moves(followed)  # warm-up: engines, thumbnails
