@@ -196,6 +196,8 @@ def test_bad_input_is_refused_with_xrec_errors(shop, gallery):
         gallery.pick("someone")
     with pytest.raises(ConfigError, match="not fitted"):
         Gallery({"pop": PopularitySource()}, fold)
+    with pytest.raises(ConfigError, match="baseline is not fitted"):
+        Gallery(sources, fold, baseline=Blend(sources, WEIGHTS))
     assert gallery.weights == WEIGHTS  # a refused show changes nothing
 
 

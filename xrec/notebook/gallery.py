@@ -181,7 +181,7 @@ class Gallery:
         if isinstance(baseline, Mapping):
             return "baseline blend", check_weights(baseline, self.sources), self.normalizer
         if callable(getattr(baseline, "score", None)):
-            if not getattr(baseline, "fitted_", True):
+            if callable(getattr(baseline, "fit", None)) and not getattr(baseline, "fitted_", False):
                 raise ConfigError("baseline is not fitted: fit it on the fold's training rows first")
             return str(getattr(baseline, "name", None) or type(baseline).__name__), baseline, None
         raise ConfigError(f"baseline must be a source name, a weight mapping, a fitted scorer or None, got {type(baseline).__name__}")
