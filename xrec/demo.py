@@ -344,6 +344,8 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
         "Known vs new items": parts_chart(study["parts"]),
         "Known-item and new-item comparisons (paired, 95% CI)": sides.round(4).to_html(index=False),
         f"Paired differences vs the best single source ({best_single})": comparison_chart(vs_best, [METRIC, "hit_rate@10"]),
+        f"What the learned blend recommends, next to {best_single}": _gallery_section(dataset, split.test, blend.sources, learned.weights,
+                                                                                     best_single, cards),
         "Learned blend weights": weight_profile(learned.weights, normalizers="zscore"),
         "Gated blend band weights": pd.DataFrame(gated.band_weights).round(3).to_html(),
         "Which signal finds which taste": _taste_chart(tastes, 10),
@@ -360,6 +362,15 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
     }
     report_path = charts_to_html(sections, "xrec demo shop report", out / "report.html", intro_html=intro)
     return {"scorecards": scorecard_path, "blend": blend_path, "report": report_path, "bundle": bundle_path}
+
+
+def _gallery_section(dataset, fold, sources, weights, best_single, cards) -> str:
+    """Six shoppers' top 10 as thumbnails: the learned blend beside the best single source, with
+    each source's contribution; shoppers chosen by the rule the section states (wins, losses, new items)."""
+    from xrec.notebook.gallery import Gallery, report_gallery
+
+    gallery = Gallery(sources, fold, dataset=dataset, baseline=best_single, weights=weights, normalizer="zscore", k=10)
+    return report_gallery(gallery, cards["learned blend"], cards[best_single], metric=METRIC)
 
 
 def _band_details(gated) -> dict[str, Any]:
