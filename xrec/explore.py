@@ -36,6 +36,8 @@ MODALITIES = ("image", "text", "attributes", "text_to_image", "image_to_text")
 #: Longest description accepted, in characters.
 MAX_QUERY_CHARS = 2000
 _COLUMNS = ["item", "name", "score", "rank", "modality"]
+# the caption columns the thumbnails look for, in the same order
+_NAME_COLUMNS = ("name", "title", "product_name", "label")
 
 
 def _unit(rows: np.ndarray) -> np.ndarray:
@@ -73,8 +75,8 @@ class CatalogExplorer:
         features, text vectors, and each side of the shared space). Encoders give every
         item of one catalog a large common part; removing it leaves what tells them apart.
     name_column
-        Column shown as the item's name; ``None``: ``"name"`` when the catalog has it,
-        else its first text column, else the item id.
+        Column shown as the item's name; ``None``: the first of ``name``, ``title``,
+        ``product_name``, ``label`` the catalog has, else its first text column, else the item id.
     cache_dir
         Embedding cache folder; ``None``: ``XREC_CACHE_DIR`` or the default.
     progress
@@ -101,6 +103,8 @@ class CatalogExplorer:
         ``(n_items,)`` bool: items with an image / a text vector.
     names_
         ``(n_items,)`` the names shown in results.
+    name_column_
+        The column they come from (``None``: item ids).
 
     Examples
     --------
@@ -203,6 +207,7 @@ class CatalogExplorer:
         if not isinstance(catalog, Catalog):
             raise ConfigError(f"data: must be an xrec Catalog or Dataset, got {type(data).__name__}")
         check_number(self.image_crop, "image_crop", low=0, high=1, low_open=True)
+        name_column = self._name_column(catalog)
         bridge = self._make_bridge()
         opts = {"cache_dir": self.cache_dir, "progress": self.progress}
         text, text_ok = text_vectors(catalog, self.text_columns, self.text_encoder, **opts)
@@ -222,20 +227,22 @@ class CatalogExplorer:
         shared_image, self.shared_image_mean_ = _centred(bridge.transform(image), image_ok, center)
         shared_text, self.shared_text_mean_ = _centred(bridge.transform_text(text), text_ok, center)
         self.shared_image_, self.shared_text_ = _unit(shared_image), _unit(shared_text)
-        self.names_ = self._names(catalog)
+        self.name_column_ = name_column
+        values = catalog.item_ids if self.name_column_ is None else catalog.items[self.name_column_]
+        self.names_ = np.asarray([str(v) for v in values], dtype=object)
         self._table = item_table(catalog)
         self._queries: dict[str, np.ndarray] = {}
         self.fitted_ = True
         return self
 
-    def _names(self, catalog: Catalog) -> np.ndarray:
+    def _name_column(self, catalog: Catalog) -> str | None:
         column = self.name_column
         if column is None:
-            column = "name" if "name" in catalog.items.columns else (catalog.schema.text[0] if catalog.schema.text else None)
-        elif column not in catalog.items.columns:
+            known = [c for c in _NAME_COLUMNS if c in catalog.items.columns]
+            return known[0] if known else (catalog.schema.text[0] if catalog.schema.text else None)
+        if column not in catalog.items.columns:
             raise ConfigError(f"name_column: {column!r} is not a catalog column; it has {list(catalog.items.columns)}")
-        values = catalog.item_ids if column is None else catalog.items[column]
-        return np.asarray([str(v) for v in values], dtype=object)
+        return column
 
     # -- vectors -------------------------------------------------------------------------------
 
