@@ -1,6 +1,6 @@
 """Notebook widgets and rich display: charts, the weight mixer, ``%load_ext xrec`` formatters.
 
-Charts need only ``altair``; the mixer imports ``ipywidgets`` when it is built.
+Charts need only ``altair``; the mixer and the explorer widget import ``ipywidgets`` when they are built.
 """
 
 from xrec.notebook.charts import (
