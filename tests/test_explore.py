@@ -86,6 +86,25 @@ def test_text_query_of_a_catalog_description_is_its_shared_text_row(shop: dict) 
         np.testing.assert_allclose(explorer.text_query(description), explorer.shared_text_[i], atol=1e-4)
 
 
+def test_a_fitted_bridge_with_its_own_text_side_is_used_as_given(shop: dict) -> None:
+    from xrec.encoders.bridge import CCABridge
+
+    image, text, catalog = shop["image"], shop["text"], shop["catalog"]
+    rows = np.random.default_rng(0).choice(len(text), 200, replace=False)
+    cca = CCABridge(n_components=8, pca_components=32).fit(image[rows], text[rows])
+    explorer = CatalogExplorer(cca, cache_dir=shop["cache"]).fit(catalog)
+    assert explorer.bridge_ is cca
+    # both sides go to the canonical space; the query follows the docstring's formula in numpy
+    side_t = cca.transform_text(text).astype(np.float64)
+    side_i = cca.transform(image).astype(np.float64)
+    words = np.asarray(make_text_encoder("minilm").encode(["a red car"]), dtype=np.float64)
+    query = _unit(cca.transform_text(words)[0] - side_t.mean(axis=0))
+    np.testing.assert_allclose(explorer.text_query("a red car"), query, atol=2e-5)
+    scores = _unit(side_i - side_i.mean(axis=0)) @ query
+    got = explorer.search("a red car", k=K)
+    assert got["item"].tolist() == catalog.item_ids[np.argsort(-scores, kind="stable")[:K]].tolist()
+
+
 # --------------------------------------------------------------------------------------
 # nearest neighbours: brute force with scikit-learn on the same matrices
 # --------------------------------------------------------------------------------------
