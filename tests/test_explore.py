@@ -315,7 +315,8 @@ def test_widget_typing_and_clicking_draws_tiles(shop: dict) -> None:
     assert widget.result_["modality"].eq("image").all() and len(widget.result_) == 6
     widget.modality_menu.value = "all"
     widget.similar_button.click()
-    assert widget.results.value.count('class="xrec-strip-title"') == 5
+    assert widget.results.value.count('class="xrec-strip-title"') == 6  # the item itself, then 5 modalities
+    assert 'data-item="p0001" data-marks="query"' in widget.results.value
 
     widget.words_box.value = "sticker"
     widget.alpha_slider.value = 2.0

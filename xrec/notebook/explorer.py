@@ -189,6 +189,7 @@ class ExplorerWidget:
             lambda: self.explorer.similar(chosen, self.k, modality=modality, where=self.where()),
             f"items like {chosen}",
             _SIMILAR_TITLES,
+            item=chosen,
         )
 
     def compose(self, words: str | None = None, alpha: float | None = None) -> pd.DataFrame | None:
@@ -203,9 +204,10 @@ class ExplorerWidget:
             lambda: self.explorer.compose(chosen, text, weight, self.k, where=self.where()),
             f"{chosen}, but {text!r} (words weight {weight:.2f})",
             _COMPOSE_TITLES,
+            item=chosen,
         )
 
-    def _run(self, action: Any, query: Any, what: str, titles: dict[str, str]) -> pd.DataFrame | None:
+    def _run(self, action: Any, query: Any, what: str, titles: dict[str, str], *, item: Any = None) -> pd.DataFrame | None:
         self._last = action
         try:
             frame = query()
@@ -213,16 +215,20 @@ class ExplorerWidget:
             self._say(str(exc), error=True)
             return None
         self.result_ = frame
-        self._draw(self._strips(frame, titles), what)
+        self._draw(self._strips(frame, titles, item), what)
         return frame
 
     # -- drawing -------------------------------------------------------------------------------
 
-    def _strips(self, frame: pd.DataFrame, titles: dict[str, str]) -> list[str]:
+    def _strips(self, frame: pd.DataFrame, titles: dict[str, str], item: Any = None) -> list[str]:
+        """One strip of tiles per modality, after the query item's own tile when there is one."""
         from xrec.notebook.thumbnails import strip_html, tiles_for
 
         catalog = self.explorer.catalog_
         strips = []
+        if item is not None:
+            own = tiles_for(catalog, [self.explorer.item_index(item)], size=self.size, caption=self.explorer.name_column_)
+            strips.append(strip_html([dataclasses.replace(own[0], marks=("query",))], title="the item", size=self.size))
         for modality, part in frame.groupby("modality", sort=False):
             positions = catalog.index_of(part["item"])
             tiles = tiles_for(catalog, positions, size=self.size, caption=self.explorer.name_column_)
@@ -232,9 +238,9 @@ class ExplorerWidget:
 
     def _draw(self, strips: list[str], what: str) -> None:
         self.revision_ += 1
-        body = "".join(strips) or '<div style="color:#777;font-size:12px">nothing matches the filters</div>'
-        if not strips and self.result_ is None:
-            body = ""
+        body = "".join(strips)
+        if self.result_ is not None and self.result_.empty:
+            body += '<div style="color:#777;font-size:12px">nothing matches the filters</div>'
         self.results.value = f'<div class="xrec-explorer-results" data-revision="{self.revision_}">{body}</div>'
         where = self.where()
         only = "" if where is None else " · only " + ", ".join(f"{c} = {v}" for c, v in where.items())
