@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+from types import SimpleNamespace
 
 import numpy as np
 import pandas as pd
@@ -11,7 +12,7 @@ from sklearn.linear_model import Ridge
 from sklearn.metrics.pairwise import cosine_similarity
 from sklearn.neighbors import NearestNeighbors
 
-from xrec.encoders.bridge import bridge_recall, make_bridge, make_text_encoder
+from xrec.encoders.bridge import ConSEBridge, bridge_recall, make_bridge, make_text_encoder
 from xrec.errors import ConfigError, DataError, NotFittedError
 from xrec.explore import CatalogExplorer
 
@@ -245,6 +246,9 @@ def test_from_source_reuses_the_fitted_bridge(shop: dict) -> None:
     np.testing.assert_allclose(explorer.shared_image_, source.item_factors_, atol=1e-6)
     with pytest.raises(ConfigError, match="cross_modal source"):
         CatalogExplorer.from_source(make_source("popularity").fit(fold))
+    conse = ConSEBridge(top_t=1, class_vectors=np.eye(2, dtype=np.float32)).fit()
+    with pytest.raises(ConfigError, match="class probabilities"):
+        CatalogExplorer.from_source(SimpleNamespace(kind="cross_modal", bridge_=conse))
 
 
 # --------------------------------------------------------------------------------------

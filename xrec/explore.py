@@ -153,6 +153,8 @@ class CatalogExplorer:
         bridge = getattr(source, "bridge_", None)
         if getattr(source, "kind", None) != "cross_modal" or bridge is None:
             raise ConfigError("source: needs a fitted cross_modal source with a bridge ('cca', 'ridge' or 'contrastive')")
+        if getattr(bridge, "input", None) != "features":
+            raise ConfigError(f"source: its bridge {type(bridge).__name__} reads ImageNet class probabilities; the explorer needs one that reads image features")
         if getattr(source, "image_vectors", None) is not None or getattr(source, "text_vectors", None) is not None:
             raise ConfigError("source: a cross_modal source built on your own vectors cannot be explored from the catalog's encoders")
         return cls(
