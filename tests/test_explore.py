@@ -335,3 +335,106 @@ def test_widget_typing_and_clicking_draws_tiles(shop: dict) -> None:
     assert widget.results.value == shown  # an error leaves the last results in place
     with pytest.raises(ConfigError, match="filters"):
         ExplorerWidget(shop["explorer"], filters=["price"])
+
+
+# --------------------------------------------------------------------------------------
+# where=: any input is a mask equal to pandas' or a ConfigError (property-based)
+# --------------------------------------------------------------------------------------
+
+from hypothesis import HealthCheck, event, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+from xrec._where import item_table, where_mask  # noqa: E402
+from xrec.data.catalog import Catalog  # noqa: E402
+
+_SMALL = Catalog.from_frame(
+    pd.DataFrame(
+        {
+            "item": ["a", "b", "c", "d", "e"],
+            "kind": ["pin", "pin", "patch", "sticker", "patch"],
+            "tags": ["red|big", "red", "", "blue|big", "blue"],
+            "price": [1.0, 5.5, 3.0, 10.0, 7.25],
+        }
+    ),
+    categorical=["kind"],
+    multilabel=["tags"],
+    numeric=["price"],
+)
+_SMALL_TABLE = item_table(_SMALL)
+_kinds = st.sampled_from(["pin", "patch", "sticker"])
+_tags = st.sampled_from(["red", "big", "blue"])
+_number = st.one_of(st.integers(-5, 15), st.floats(-5, 15))
+_categorical = st.one_of(_kinds, st.lists(_kinds, max_size=3),
+                         st.fixed_dictionaries({}, optional={"equals": _kinds, "one_of": st.lists(_kinds, max_size=3), "none_of": st.lists(_kinds, max_size=2)}).filter(bool))
+_multilabel = st.one_of(_tags, st.lists(_tags, max_size=3),
+                        st.fixed_dictionaries({}, optional={"has": _tags, "any_of": st.lists(_tags, max_size=3), "all_of": st.lists(_tags, max_size=2), "none_of": st.lists(_tags, max_size=2)}).filter(bool))
+_numeric = st.fixed_dictionaries({}, optional={"min": _number, "max": _number}).filter(bool)
+_attributes = st.fixed_dictionaries({}, optional={"kind": _categorical, "tags": _multilabel, "price": _numeric})
+# one hostile part per input: an odd value, condition, column, id or mask
+_odd_value = st.one_of(st.sampled_from(["gold", "", "PIN", "red", "pin"]), st.floats(allow_nan=True), st.none(), st.booleans(), st.integers())
+_odd_condition = st.one_of(_odd_value, st.lists(_odd_value, max_size=2), st.dictionaries(st.sampled_from(["equals", "near", "min", "has", "max"]), _odd_value, max_size=2))
+_hostile = st.one_of(
+    st.tuples(st.sampled_from(["kind", "tags", "price", "colour", "item"]), _odd_condition, _attributes).map(lambda t: {**t[2], t[0]: t[1]}),
+    st.fixed_dictionaries({"attributes": _attributes, "include_items": st.lists(st.sampled_from(["a", "zz"]), min_size=1, max_size=2)}),
+    st.fixed_dictionaries({"exclude_items": st.one_of(_kinds, st.integers(), st.lists(st.integers(), min_size=1, max_size=2))}),
+    st.lists(st.booleans(), min_size=4, max_size=6).map(np.array),
+    st.lists(st.integers(0, 1), min_size=5, max_size=5).map(np.array),
+    st.text(max_size=10),
+)
+_wheres = st.one_of(
+    st.none(),
+    _attributes,
+    st.fixed_dictionaries({}, optional={"attributes": _attributes,
+                                        "include_items": st.lists(st.sampled_from(["a", "b", "e"]), max_size=3),
+                                        "exclude_items": st.lists(st.sampled_from(["a", "c"]), max_size=2)}),
+    st.lists(st.booleans(), min_size=5, max_size=5).map(np.array),
+    st.lists(st.booleans(), min_size=5, max_size=5).map(lambda v: pd.Series(v, index=_SMALL.items.index)),
+    _hostile,
+)
+
+def _pandas_mask(where: dict) -> np.ndarray:
+    """What a condition means, written with pandas on the catalog frame (the reference)."""
+    items = _SMALL.items
+    mask = pd.Series(True, index=items.index)
+    filters = where if where and set(where) <= {"attributes", "include_items", "exclude_items"} else {"attributes": where}
+    for column, cond in (filters.get("attributes") or {}).items():
+        col = items[column]
+        if column == "price":
+            mask &= col.ge(cond.get("min", -np.inf)) & col.le(cond.get("max", np.inf))
+            continue
+        labels = col.map(set) if column == "tags" else col.map(lambda v: {v})
+        if not isinstance(cond, dict):
+            cond = {("equals" if column == "kind" else "has") if isinstance(cond, str) else ("one_of" if column == "kind" else "any_of"): cond}
+        for op, value in cond.items():
+            values = {value} if isinstance(value, str) else set(value)
+            if op in ("equals", "one_of", "any_of"):
+                mask &= labels.map(lambda s, v=values: bool(s & v))
+            elif op in ("has", "all_of"):
+                mask &= labels.map(lambda s, v=values: v <= s)
+            else:
+                mask &= labels.map(lambda s, v=values: not (s & v))
+    if filters.get("include_items") is not None:
+        mask &= items["item"].isin(filters["include_items"])
+    if filters.get("exclude_items") is not None:
+        mask &= ~items["item"].isin(filters["exclude_items"])
+    return mask.to_numpy()
+
+
+@settings(max_examples=int(os.environ.get("XREC_PROPERTY_EXAMPLES", "100")), deadline=None,
+          derandomize=bool(os.environ.get("CI")), suppress_health_check=[HealthCheck.too_slow])
+@given(_wheres)
+def test_where_gives_the_pandas_mask_or_a_config_error(where: object) -> None:
+    try:
+        got = where_mask(where, _SMALL, _SMALL_TABLE)
+    except ConfigError:
+        event("refused")
+        return  # refused, with xrec's error; anything else fails the test
+    event(f"accepted: {type(where).__name__}")
+    assert got.dtype == bool and got.shape == (5,)
+    if where is None:
+        assert got.all()
+    elif isinstance(where, dict):
+        # outside reference: the same condition evaluated with pandas Series operations
+        np.testing.assert_array_equal(got, _pandas_mask(where))
+    else:
+        np.testing.assert_array_equal(got, np.asarray(where))
