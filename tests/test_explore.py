@@ -298,6 +298,7 @@ def test_widget_typing_and_clicking_draws_tiles(shop: dict) -> None:
 
     widget = ExplorerWidget(shop["explorer"], k=6)
     assert "xrec-explorer" in widget.widget._dom_classes
+    assert "xrec-explorer-search" in widget.search_button._dom_classes and "xrec-explorer-text" in widget.text_box._dom_classes
     assert widget.results.value.count('class="xrec-tile"') == 0
 
     widget.text_box.value = "a grinning cat"  # Enter in the box searches

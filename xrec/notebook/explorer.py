@@ -3,7 +3,8 @@
 :class:`ExplorerWidget` puts ipywidgets controls over a fitted
 :class:`~xrec.explore.CatalogExplorer` and draws every answer as thumbnail tiles with
 scores (:mod:`xrec.notebook.thumbnails`). Its root element carries the CSS class
-``xrec-explorer``; the results area is a ``<div class="xrec-explorer-results">`` whose
+``xrec-explorer`` (its controls ``xrec-explorer-text``, ``-search``, ``-item``, ``-similar``,
+``-words``, ``-compose``); the results area is a ``<div class="xrec-explorer-results">`` whose
 ``data-revision`` attribute grows with every redraw, so a browser test can wait for it.
 """
 
@@ -148,6 +149,9 @@ class ExplorerWidget:
             rows.append(w.HBox([w.HTML("<span style='margin-right:6px'>only:</span>"), *self.filter_menus.values()]))
         self.widget = w.VBox([*rows, self.status, self.results])
         self.widget.add_class("xrec-explorer")
+        for control, name in ((self.text_box, "text"), (self.search_button, "search"), (self.item_picker, "item"),
+                              (self.similar_button, "similar"), (self.words_box, "words"), (self.compose_button, "compose")):
+            control.add_class(f"xrec-explorer-{name}")  # stable hooks for browser tests
         self._draw([], "type a description, pick an item, or compose")
 
     # -- queries -------------------------------------------------------------------------------
