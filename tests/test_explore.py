@@ -323,8 +323,10 @@ def test_widget_typing_and_clicking_draws_tiles(shop: dict) -> None:
     assert widget.results.value.count('class="xrec-strip-title"') == 6  # the item itself, then 5 modalities
     assert 'data-item="p0001" data-marks="query"' in widget.results.value
 
-    widget.words_box.value = "sticker"
     widget.alpha_slider.value = 2.0
+    before = widget.revision_
+    widget.words_box.value = "sticker"  # Enter in the words box composes
+    assert widget.revision_ == before + 1 and widget.result_["modality"].eq("composed").all()
     widget.compose_button.click()
     want = shop["explorer"].compose("p0001", "sticker", 2.0, 6, where={"product_type": "patch"})
     pd.testing.assert_frame_equal(widget.result_, want)

@@ -70,7 +70,7 @@ class ExplorerWidget:
     item_picker, modality_menu, similar_button
         Item menu, modality menu and the button that lists similar items.
     words_box, alpha_slider, compose_button
-        The words of a composed query, their weight, and its button.
+        The words of a composed query (Enter in the box composes), their weight, and its button.
     filter_menus
         Column -> ``Dropdown`` of its values (``"(any)"`` first).
     results
@@ -120,7 +120,11 @@ class ExplorerWidget:
         self.similar_button = w.Button(description="Similar items", icon="clone")
         self.similar_button.on_click(lambda _b: self.similar())
         self.words_box = w.Text(placeholder="e.g. embroidered patch", description="… but", continuous_update=False, layout=wide, style=label)
-        self.alpha_slider = w.FloatSlider(value=float(alpha), min=0.0, max=max(4.0, float(alpha)), step=0.25, description="words weight", readout_format=".2f")
+        self.words_box.observe(self._on_words, names="value")
+        self.alpha_slider = w.FloatSlider(
+            value=float(alpha), min=0.0, max=max(4.0, float(alpha)), step=0.25, description="words weight",
+            readout_format=".2f", style={"description_width": "initial"},
+        )  # fmt: skip
         self.compose_button = w.Button(description="This item, but …", icon="magic")
         self.compose_button.on_click(lambda _b: self.compose())
         self.filter_menus = {
@@ -165,6 +169,10 @@ class ExplorerWidget:
         if not self._muted and change["new"].strip():
             self.search()
 
+    def _on_words(self, change: dict) -> None:
+        if not self._muted and change["new"].strip():
+            self.compose()
+
     def _on_filter(self, _change: dict) -> None:
         if self._last is not None:
             self._last()
@@ -201,7 +209,11 @@ class ExplorerWidget:
         if alpha is not None:
             self.alpha_slider.value = float(alpha)
         if words is not None:
-            self.words_box.value = words
+            self._muted = True
+            try:
+                self.words_box.value = words
+            finally:
+                self._muted = False
         chosen, text, weight = self.item_picker.value, self.words_box.value, self.alpha_slider.value
         return self._run(
             self.compose,
@@ -213,6 +225,8 @@ class ExplorerWidget:
 
     def _run(self, action: Any, query: Any, what: str, titles: dict[str, str], *, item: Any = None) -> pd.DataFrame | None:
         self._last = action
+        # shown at once: the first description loads the text encoder (a few seconds)
+        self._say(html.escape(f"working: {what} …"))
         try:
             frame = query()
         except XrecError as exc:
