@@ -95,6 +95,10 @@ def test_a_fitted_bridge_with_its_own_text_side_is_used_as_given(shop: dict) -> 
     cca = CCABridge(n_components=8, pca_components=32).fit(image[rows], text[rows])
     explorer = CatalogExplorer(cca, cache_dir=shop["cache"]).fit(catalog)
     assert explorer.bridge_ is cca
+    with pytest.raises(ConfigError, match="bridge_settings"):
+        CatalogExplorer(cca, bridge_settings={"n_components": 4}).fit(catalog)
+    with pytest.raises(NotFittedError, match="fit it first"):
+        CatalogExplorer(CCABridge()).fit(catalog)
     # both sides go to the canonical space; the query follows the docstring's formula in numpy
     side_t = cca.transform_text(text).astype(np.float64)
     side_i = cca.transform(image).astype(np.float64)

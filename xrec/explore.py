@@ -178,6 +178,8 @@ class CatalogExplorer:
             if getattr(self.bridge, "input", None) != "features" or not callable(getattr(self.bridge, "transform_text", None)):
                 raise ConfigError("bridge: must be 'ridge', 'cca', 'contrastive' or a fitted bridge that reads image features")
             check_fitted(self.bridge, how="fit it first, or pass its name")
+            if self.bridge_settings:
+                raise ConfigError("bridge_settings: only used with a bridge name; this bridge is already fitted")
             return self.bridge
         if self.bridge not in ("ridge", "cca", "contrastive"):
             raise ConfigError(f"bridge: must be 'ridge', 'cca' or 'contrastive' (fitted on the catalog's own pairs), got {self.bridge!r}")
