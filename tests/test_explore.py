@@ -8,10 +8,14 @@ from types import SimpleNamespace
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import HealthCheck, event, given, settings
+from hypothesis import strategies as st
 from sklearn.linear_model import Ridge
 from sklearn.metrics.pairwise import cosine_similarity
 from sklearn.neighbors import NearestNeighbors
 
+from xrec._where import item_table, where_mask
+from xrec.data.catalog import Catalog
 from xrec.encoders.bridge import ConSEBridge, bridge_recall, make_bridge, make_text_encoder
 from xrec.errors import ConfigError, DataError, NotFittedError
 from xrec.explore import CatalogExplorer
@@ -348,11 +352,6 @@ def test_widget_typing_and_clicking_draws_tiles(shop: dict) -> None:
 # where=: any input is a mask equal to pandas' or a ConfigError (property-based)
 # --------------------------------------------------------------------------------------
 
-from hypothesis import HealthCheck, event, given, settings  # noqa: E402
-from hypothesis import strategies as st  # noqa: E402
-
-from xrec._where import item_table, where_mask  # noqa: E402
-from xrec.data.catalog import Catalog  # noqa: E402
 
 _SMALL = Catalog.from_frame(
     pd.DataFrame(
