@@ -1,6 +1,6 @@
 """Notebook widgets and rich display: charts, the weight mixer, ``%load_ext xrec`` formatters.
 
-Charts need only ``altair``; the mixer and the explorer widget import ``ipywidgets`` when they are built.
+Charts need only ``altair``; the mixer imports ``ipywidgets`` when it is built.
 """
 
 from xrec.notebook.charts import (
@@ -16,9 +16,9 @@ from xrec.notebook.charts import (
     wilson_interval,
 )
 from xrec.notebook.display import comparison_html, offline_charts, scorecard_html
-from xrec.notebook.explorer import ExplorerWidget
 from xrec.notebook.mixer import WeightMixer, interval_frame
 from xrec.notebook.segment_charts import segment_differences, segment_means
+from xrec.notebook.explorer import ExplorerWidget  # ipywidgets is imported when the widget is built
 
 __all__ = [
     "ExplorerWidget",
