@@ -157,7 +157,7 @@ class Gallery:
         self.last_seconds_ = 0.0
         self._note = ""
         self._widget: Any = None
-        self._picture: str | None = None  # display id of the still picture, once shown
+        self._picture: Any = None  # the still picture (StillPicture), once shown
         self._muted = False  # set while the user box is filled from code
         self._html = ""
         if user is not None:
@@ -374,16 +374,21 @@ class Gallery:
 
     def _ipython_display_(self) -> None:
         """Show the live panel, then a still picture that front ends without the widget show instead."""
-        from xrec.notebook._mixer_table import show_with_picture
+        from xrec.notebook._mixer_table import StillPicture
 
-        self._picture = show_with_picture(self.widget, self.static_html_, repr(self), self._picture)
+        if self._picture is None:
+            self._picture = StillPicture(lambda: self.static_html_, lambda: repr(self))
+        self._picture.show(self.widget)
 
     def _refresh_picture(self) -> None:
-        # From code run in a cell (show, pick) the front end routes the update to the picture's cell.
-        if self._picture is not None and threading.current_thread() is threading.main_thread():
-            from xrec.notebook._mixer_table import refresh_picture
-
-            refresh_picture(self._picture, self.static_html_, repr(self))
+        # From code run in a cell (show, pick) the front end routes the update to the picture's
+        # cell at once; redraws that follow moves made in the page refresh it once they pause.
+        if self._picture is None:
+            return
+        if threading.current_thread() is threading.main_thread():
+            self._picture.refresh()
+        else:
+            self._picture.refresh_later()
 
     def _repr_mimebundle_(self, **kwargs: Any) -> Any:
         try:
