@@ -159,3 +159,12 @@ def test_torch_threads_restored_and_no_output(encoder, capfd):
     captured = capfd.readouterr()
     assert captured.out == "" and captured.err == ""
 
+
+
+def test_pickled_encoder_leaves_the_network_behind_and_encodes_the_same(encoder, vectors):
+    """What a Dask worker receives: settings only; it loads the same weights on first use."""
+    import pickle
+
+    copy = pickle.loads(pickle.dumps(encoder.load()))
+    assert not hasattr(copy, "model_")
+    np.testing.assert_allclose(copy.encode(SENTENCES[:3]), vectors[:3], atol=1e-6)
