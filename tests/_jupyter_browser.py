@@ -287,7 +287,9 @@ def cell_errors(cells: list[dict]) -> list[str]:
 # performance.now() at each; a MutationObserver on the document notes the first moment after a
 # key press at which the chart container holds a newly drawn chart (a canvas or svg that was
 # not there at the press, or an svg whose markup changed) and at which a gallery's
-# data-revision passed its value at the press. Results: window.__xrecProbe.moves.
+# data-revision passed its value at the press; also the first change of any kind inside the
+# chart container (chart_dom_ms: the kernel's new output arrived, drawing not yet done).
+# Results: window.__xrecProbe.moves.
 PROBE_JS = """
 (sel) => {
   const chartSel = sel.chart, gallerySel = sel.gallery;
@@ -296,10 +298,14 @@ PROBE_JS = """
   const revision = () => Math.max(-1, ...Array.from(document.querySelectorAll(gallerySel)).map(e => Number(e.getAttribute('data-revision'))));
   const svgText = (root) => drawn(root).map(e => e.tagName === 'svg' ? e.outerHTML : '').join('');
   const probe = {moves: [], current: null};
-  const check = () => {
+  const check = (records) => {
     const m = probe.current;
     if (!m) return;
     const now = performance.now();
+    if (m.chart_dom_ms === null) {
+      const root = chartRoot();
+      if (root && records.some(r => root.contains(r.target))) m.chart_dom_ms = now - m.t0;
+    }
     if (m.chart_ms === null) {
       const root = chartRoot();
       const els = drawn(root);
@@ -312,7 +318,7 @@ PROBE_JS = """
     const root = chartRoot();
     const rev = revision();
     probe.current = {key: ev.key, t0: performance.now(), before: new Set(drawn(root)), svg: svgText(root),
-                     rev0: rev >= 0 ? rev : null, chart_ms: null, gallery_ms: null};
+                     rev0: rev >= 0 ? rev : null, chart_dom_ms: null, chart_ms: null, gallery_ms: null};
     probe.moves.push(probe.current);
   }, true);
   new MutationObserver(check).observe(document.body, {subtree: true, childList: true, attributes: true, characterData: true});
@@ -329,7 +335,7 @@ def install_probe(page: Any) -> None:
 
 def probe_moves(page: Any) -> list[dict]:
     """The probe's moves so far: ``key``, ``chart_ms``, ``gallery_ms`` (``None`` until seen)."""
-    return page.evaluate("window.__xrecProbe.moves.map(m => ({key: m.key, chart_ms: m.chart_ms, gallery_ms: m.gallery_ms, rev0: m.rev0}))")
+    return page.evaluate("window.__xrecProbe.moves.map(m => ({key: m.key, chart_dom_ms: m.chart_dom_ms, chart_ms: m.chart_ms, gallery_ms: m.gallery_ms, rev0: m.rev0}))")
 
 
 def press_and_wait(page: Any, handle: Any, key: str, *, gallery: bool, timeout: float = 30.0) -> dict:
@@ -343,7 +349,7 @@ def press_and_wait(page: Any, handle: Any, key: str, *, gallery: bool, timeout: 
     return probe_moves(page)[n]
 
 
-def summary(values: list[float]) -> dict:
+def summary(values: list[float | None]) -> dict:
     """Median and max of a list of milliseconds (``None`` entries dropped), rounded to 0.1 ms."""
     import statistics
 
@@ -351,3 +357,63 @@ def summary(values: list[float]) -> dict:
     if not vals:
         return {"n": 0, "median_ms": None, "max_ms": None}
     return {"n": len(vals), "median_ms": round(statistics.median(vals), 1), "max_ms": round(max(vals), 1)}
+
+
+def kernel_value(page: Any, expression: str, timeout: float = 30.0) -> str:
+    """``repr`` of ``expression`` evaluated silently in the notebook's kernel (no new execution count)."""
+    reply = page.evaluate(
+        f"""async (expr) => {{
+          const p = {_PANEL};
+          const future = p.sessionContext.session.kernel.requestExecute(
+            {{code: '', silent: true, store_history: false, user_expressions: {{v: expr}}}});
+          const msg = await future.done;
+          return msg.content.user_expressions.v;
+        }}""",
+        expression,
+    )
+    if reply.get("status") != "ok":
+        raise RuntimeError(f"kernel could not evaluate {expression!r}: {reply.get('ename')}: {reply.get('evalue')}")
+    return reply["data"]["text/plain"]
+
+
+def slider_handle(page: Any, name: str) -> Any:
+    """The keyboard-focusable handle of the ipywidgets slider labelled ``name``."""
+    slider = page.locator(".widget-slider").filter(has=page.locator(".widget-label").get_by_text(name, exact=True))
+    return slider.first.locator(".noUi-handle").first
+
+
+def time_slider_moves(page: Any, name: str, moves: int, *, gallery: bool, kernel_seconds: str | None = None) -> dict:
+    """Move slider ``name`` by ``moves`` arrow-key presses, each awaited; the latencies seen in the page.
+
+    Each press goes one step right (left when the slider is near its top). With
+    ``kernel_seconds`` (a kernel expression such as ``"mixer.last_seconds_"``) each move also
+    records the seconds the kernel spent on it.
+
+    Returns
+    -------
+    dict
+        ``start`` and ``end`` (the handle's ``aria-valuenow``), ``per_move`` (``chart_ms``,
+        ``gallery_ms``, ``chart_dom_ms``, ``kernel_ms``), and ``chart``, ``gallery``,
+        ``chart_dom``, ``kernel`` summaries.
+    """
+    handle = slider_handle(page, name)
+    handle.scroll_into_view_if_needed()
+    start = float(handle.get_attribute("aria-valuenow"))
+    key = "ArrowRight" if start < 0.9 else "ArrowLeft"
+    install_probe(page)
+    handle.focus()
+    per_move = []
+    for _ in range(moves):
+        move = press_and_wait(page, handle, key, gallery=gallery)
+        if kernel_seconds:
+            move["kernel_ms"] = round(1000 * float(kernel_value(page, kernel_seconds)), 1)
+        per_move.append(move)
+    return {
+        "start": start,
+        "end": float(handle.get_attribute("aria-valuenow")),
+        "per_move": per_move,
+        "chart": summary([m["chart_ms"] for m in per_move]),
+        "gallery": summary([m["gallery_ms"] for m in per_move]),
+        "kernel": summary([m.get("kernel_ms") for m in per_move]),
+        "chart_dom": summary([m["chart_dom_ms"] for m in per_move]),
+    }

@@ -35,10 +35,8 @@ from _jupyter_browser import (
     NotebookPage,
     cell_errors,
     copy_notebook,
-    install_probe,
     launch_chromium,
-    press_and_wait,
-    summary,
+    time_slider_moves,
 )
 
 pytestmark = pytest.mark.slow
@@ -135,29 +133,15 @@ def test_mixer_chart_and_gallery_are_drawn(notebook):
     assert gallery.first.locator("img").count() > 0, "the gallery shows no thumbnails"
 
 
-def _slider_handle(page, name: str):
-    slider = page.locator(".widget-slider").filter(has=page.locator(".widget-label").get_by_text(name, exact=True))
-    return slider.first.locator(".noUi-handle").first
-
-
 def test_keyboard_slider_move_redraws_chart_and_gallery(notebook, record_property, tmp_path):
-    page = notebook.page
     gallery = _has_gallery_cell()
-    handle = _slider_handle(page, SLIDER)
-    handle.scroll_into_view_if_needed()
-    start = float(handle.get_attribute("aria-valuenow"))
-    install_probe(page)
-    handle.focus()
-    moves = [press_and_wait(page, handle, "ArrowRight" if start < 0.9 else "ArrowLeft", gallery=gallery) for _ in range(MOVES)]
+    timed = time_slider_moves(notebook.page, SLIDER, MOVES, gallery=gallery)
     # WAI-ARIA slider semantics (aria-valuenow, W3C ARIA 1.2): the handle reports its new value.
-    end = float(handle.get_attribute("aria-valuenow"))
-    assert abs(end - start) == pytest.approx(MOVES * 0.01, abs=1e-6)
-    chart = summary([m["chart_ms"] for m in moves])
-    shown = summary([m["gallery_ms"] for m in moves]) if gallery else {"n": 0, "median_ms": None, "max_ms": None}
-    assert chart["n"] == MOVES and (not gallery or shown["n"] == MOVES)
+    assert abs(timed["end"] - timed["start"]) == pytest.approx(MOVES * 0.01, abs=1e-6)
+    chart, shown = timed["chart"], timed["gallery"]
+    assert chart["n"] == MOVES and shown["n"] == (MOVES if gallery else 0)
     load = os.getloadavg()[0]
-    figures = {"moves": MOVES, "chart": chart, "gallery": shown, "load_1min": round(load, 2), "per_move": moves}
-    (tmp_path / "latency.json").write_text(json.dumps(figures, indent=1))
+    (tmp_path / "latency.json").write_text(json.dumps({**timed, "load_1min": load}, indent=1))
     record_property("latency_chart_ms", chart)
     record_property("latency_gallery_ms", shown)
     print(
