@@ -26,7 +26,6 @@ import argparse
 import json
 import os
 import shutil
-import socket
 import subprocess
 import sys
 import tempfile
@@ -37,13 +36,9 @@ from pathlib import Path
 import numpy as np
 from _results import save  # noqa: E402  (benchmarks/_results.py)
 
+from xrec.serve.child import serving
+
 ROOT = Path(__file__).resolve().parents[1]
-
-
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 _REWRITE = """
@@ -112,22 +107,9 @@ def main() -> None:
     with tempfile.TemporaryDirectory(prefix="xrec-bench-serve-") as tmp:
         live = Path(tmp) / "bundle"
         shutil.copytree(source, live)
-        port = _free_port()
         env = {**os.environ, "PYTHONPATH": str(ROOT)}
-        server = subprocess.Popen(
-            [sys.executable, "-m", "xrec.cli", "serve", str(live), "--host", "127.0.0.1", "--port", str(port)],
-            cwd=ROOT, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
-        )
-        base = f"http://127.0.0.1:{port}"
-        try:
-            for _ in range(600):
-                try:
-                    if httpx.get(f"{base}/health", timeout=1).status_code == 200:
-                        break
-                except httpx.TransportError:
-                    time.sleep(0.1)
-            else:
-                sys.exit("server did not start")
+        with serving(live, env=env, cwd=ROOT) as service:
+            base = service.url
             first_id = httpx.get(f"{base}/bundle").json()["bundle"]
 
             stop = threading.Event()
@@ -166,10 +148,6 @@ def main() -> None:
             for t in threads:
                 t.join()
             elapsed = time.perf_counter() - began
-        finally:
-            server.terminate()
-            server.wait(10)
-            server.stderr.close()
 
     rows = [r for per in records for r in per]
     lat = np.array([r[0] for r in rows]) * 1000

@@ -284,6 +284,34 @@ def test_pin_button_makes_the_current_blend_the_baseline(data):
     assert pinned == pytest.approx(ref.per_user["ndcg@10"].mean(), abs=1e-12)
 
 
+def test_on_change_runs_after_every_redraw_and_properties_are_read_only(data):
+    dataset, fold, sources, _ = data
+    m = WeightMixer(sources, fold, baseline="pop", ks=(10, 20), sample_size=60, dataset=dataset)
+    seen = []
+    m.on_change(lambda mx: seen.append((mx.updates_, mx.weights, mx.normalizer, mx.k, mx.baseline_name_)))
+    m.sliders["als"].value = 0.8
+    m.normalizer_menu.value = "rank"
+    m.k_menu.value = 20
+    m.set_weights({"pop": 0.2, "genres": 0.7})
+    m.pin_button.click()
+    m.unpin_button.click()
+    m.set_weights({"pop": 0.0, "als": 0.0, "genres": 0.0})  # nothing to draw: nobody is called
+    assert [s[0] for s in seen] == list(range(2, 8))
+    assert seen[0][1]["als"] == 0.8 and seen[1][2] == "rank" and seen[2][3] == 20
+    assert seen[3][1] == {"pop": 0.2, "als": 0.8, "genres": 0.7}
+    assert [s[4] for s in seen[3:]] == ["pop", "pinned blend", "pop"]
+    assert "xrec-mixer-chart" in m.output._dom_classes
+    assert m.sources.keys() == sources.keys() and m.fold is fold and m.dataset is dataset
+    for name in ("sources", "fold", "dataset", "weights", "k"):
+        with pytest.raises(AttributeError):
+            setattr(m, name, None)
+    m.on_change(lambda mx: 1 / 0)  # a broken listener is reported, the mixer keeps working
+    m.sliders["als"].value = 0.5
+    assert "ZeroDivisionError" in m.status.value and m.weights["als"] == 0.5
+    with pytest.raises(ConfigError, match="callable"):
+        m.on_change("not a function")
+
+
 def test_mixer_export_button_writes_a_blend_file(data, mixer):
     dataset, fold, _, _ = data
     mixer.set_weights({"pop": 0.25, "als": 1.0, "genres": 0.1})

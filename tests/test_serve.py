@@ -7,9 +7,6 @@ import json
 import os
 import shutil
 import signal
-import socket
-import subprocess
-import sys
 import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
@@ -24,6 +21,7 @@ from starlette.testclient import TestClient
 
 from xrec.bundle import load_bundle
 from xrec.serve import MAX_BODY, create_app
+from xrec.serve.child import serving
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -206,33 +204,14 @@ def test_in_flight_requests_finish_on_the_old_bundle(served, bundles):
     assert client.post("/recommend", json={"user": "u4", "k": 5}).json()["bundle"] == holder.current.identity != old.identity
 
 
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 @pytest.mark.slow
 def test_real_server_concurrent_equals_sequential_and_sighup_reloads(bundles, tmp_path):
     import httpx
 
     path = shutil.copytree(bundles[0], tmp_path / "live")
-    port = _free_port()
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "xrec.cli", "serve", str(path), "--port", str(port)],
-        cwd=ROOT, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
-    )
-    base = f"http://127.0.0.1:{port}"
-    try:
-        for _ in range(200):
-            try:
-                if httpx.get(f"{base}/health", timeout=1).status_code == 200:
-                    break
-            except httpx.TransportError:
-                time.sleep(0.1)
-        else:
-            pytest.fail(f"server did not start: {proc.stderr.read().decode() if proc.poll() is not None else ''}")
+    with serving(path, env=env, cwd=ROOT) as service:
+        base, proc = service.url, service.process
         users = [f"u{u}" for u in range(50)]
         bodies = [{"user": u, "k": 10, "filters": {"attributes": {"price": {"max": 60 + i % 30}}}} for i, u in enumerate(users)]
         with httpx.Client(base_url=base, timeout=30) as client:
@@ -256,7 +235,12 @@ def test_real_server_concurrent_equals_sequential_and_sighup_reloads(bundles, tm
             time.sleep(0.1)
         info = httpx.get(f"{base}/bundle").json()
         assert info["bundle"] != before and info["reloads"] == 1
-    finally:
-        proc.terminate()
-        proc.wait(10)
-        proc.stderr.close()
+
+
+def test_serving_names_the_childs_error_when_it_cannot_start(tmp_path):
+    from xrec.errors import XrecError
+
+    with pytest.raises(XrecError, match="exited with code") as err:
+        with serving(tmp_path / "no-such-bundle", env={**os.environ, "PYTHONPATH": str(ROOT)}, cwd=ROOT):
+            pass
+    assert "no-such-bundle" in str(err.value)

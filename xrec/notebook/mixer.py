@@ -10,7 +10,6 @@ stratified sample of the fold's evaluation users when they are many, all of them
 from __future__ import annotations
 
 import html
-import math
 import os
 import time
 from collections.abc import Mapping, Sequence
@@ -21,30 +20,11 @@ import numpy as np
 import pandas as pd
 from xrec._validation import check_number
 from xrec.errors import ConfigError, DataError, XrecError
-from xrec.evaluate._stats import normal_interval
 from xrec.fold import Fold
+from xrec.notebook._mixer_chart import chart_output, chart_template, filled_spec, mixer_frames
 from xrec.notebook.frames import interval_frame
 
 __all__ = ["WeightMixer", "interval_frame"]
-
-_SUMMARY_DATA = "xrec_mixer_summary"
-_DIFF_DATA = "xrec_mixer_differences"
-
-
-def _records(frame: pd.DataFrame) -> list[dict]:
-    """Rows as JSON-ready dicts (NaN becomes null, numpy scalars plain Python)."""
-    out = []
-    for row in frame.to_dict("records"):
-        clean = {}
-        for key, value in row.items():
-            if isinstance(value, (float, np.floating)):
-                value = None if math.isnan(value) else float(value)
-            elif isinstance(value, np.integer):
-                value = int(value)
-            clean[key] = value
-        out.append(clean)
-    return out
-
 
 class WeightMixer:
     """Interactive weight mixer for a set of fitted sources on one fold.
@@ -90,7 +70,7 @@ class WeightMixer:
     ----------
     sliders
         Source name -> ``ipywidgets.FloatSlider``.
-    normalizer_menu, k_menu, path_box, export_button, bundle_button, pin_button, status, output
+    normalizer_menu, k_menu, path_box, export_button, bundle_button, pin_button, unpin_button, status, output
         The other controls; ``output`` holds the chart.
     widget
         The whole panel (an ``ipywidgets.VBox``); a notebook cell displays it.
@@ -143,11 +123,11 @@ class WeightMixer:
 
         if not isinstance(fold, Fold):
             raise ConfigError(f"fold must be an xrec Fold, got {type(fold).__name__}")
-        self.sources = check_sources(sources)
-        unfitted = [n for n, s in self.sources.items() if not getattr(s, "fitted_", False)]
+        self._sources = check_sources(sources)
+        unfitted = [n for n, s in self._sources.items() if not getattr(s, "fitted_", False)]
         if unfitted:
             raise ConfigError(f"sources {unfitted} are not fitted: fit them on the fold's training rows first")
-        self.fold = fold
+        self._fold = fold
         self.ks = check_ks(ks)
         metrics = [metrics] if isinstance(metrics, str) else list(metrics)
         bad = [m for m in metrics if m not in RANK_METRICS]
@@ -158,14 +138,15 @@ class WeightMixer:
         if not 0 < confidence < 1:
             raise ConfigError(f"confidence must be in (0, 1), got {confidence!r}")
         self.confidence = float(confidence)
-        self.dataset = dataset
+        self._dataset = dataset
+        self._listeners: list[Any] = []
         self.threads = threads
         self.progress = progress
-        start = {n: 0.5 for n in self.sources} if weights is None else dict(weights)
-        unknown = [n for n in start if n not in self.sources]
-        missing = [n for n in self.sources if n not in start]
+        start = {n: 0.5 for n in self._sources} if weights is None else dict(weights)
+        unknown = [n for n in start if n not in self._sources]
+        missing = [n for n in self._sources if n not in start]
         if unknown or missing:
-            raise ConfigError(f"weights: unknown source(s) {unknown}, missing source(s) {missing}; sources are {list(self.sources)}")
+            raise ConfigError(f"weights: unknown source(s) {unknown}, missing source(s) {missing}; sources are {list(self._sources)}")
         for n, v in start.items():
             check_number(v, f"weights.{n}:", low=0, high=1, expected="a number in [0, 1] (slider range)")
         if not any(float(v) > 0 for v in start.values()):
@@ -183,6 +164,9 @@ class WeightMixer:
         engine.evaluate(self._weights)
         self._in_sync = True
         self._baseline_frame, self.baseline_name_ = self._resolve_baseline(baseline, engine)
+        self._original_baseline = (self._baseline_frame, self.baseline_name_)
+        self.pinned_weights_: dict[str, float] | None = None
+        self.pinned_normalizer_: str | None = None
 
         # -- controls -------------------------------------------------------------------------
         self.sliders = {
@@ -190,7 +174,7 @@ class WeightMixer:
                 value=self._weights[name], min=0.0, max=1.0, step=0.01, description=name,
                 continuous_update=False, readout_format=".2f", style={"description_width": "initial"},
             )
-            for name in self.sources
+            for name in self._sources
         }  # fmt: skip
         for name, slider in self.sliders.items():
             slider.observe(self._on_slider(name), names="value")
@@ -205,8 +189,11 @@ class WeightMixer:
         self.bundle_button.on_click(lambda _b: self._export_clicked(bundle=True))
         self.pin_button = w.Button(description="Pin as baseline", icon="thumb-tack")
         self.pin_button.on_click(lambda _b: self.pin_baseline())
+        self.unpin_button = w.Button(description="Unpin", icon="undo", tooltip="back to the original baseline")
+        self.unpin_button.on_click(lambda _b: self.unpin_baseline())
         self.status = w.HTML()
         self.output = w.Output()
+        self.output.add_class("xrec-mixer-chart")  # DOM hook for browser tests and page styling
         header = w.HTML(
             f"<b>Weight mixer</b>: {len(self.users_)} users"
             f"{' (stratified sample)' if len(self.users_) < len(fold.eval_users) else ''}, "
@@ -215,7 +202,7 @@ class WeightMixer:
         self.widget = w.VBox(
             [
                 header,
-                w.HBox([w.VBox(list(self.sliders.values())), w.VBox([self.normalizer_menu, self.k_menu, self.pin_button])]),
+                w.HBox([w.VBox(list(self.sliders.values())), w.VBox([self.normalizer_menu, self.k_menu, w.HBox([self.pin_button, self.unpin_button])])]),
                 self.output,
                 w.HBox([self.path_box, self.export_button, self.bundle_button]),
                 self.status,
@@ -234,7 +221,7 @@ class WeightMixer:
             if users.size == 0:
                 raise DataError("users is empty")
             return users
-        return sample_users(self.fold, n=sample_size, seed=seed).users
+        return sample_users(self._fold, n=sample_size, seed=seed).users
 
     def _engine(self, normalizer: str) -> Any:
         from xrec.blend.engine import BlendEngine
@@ -242,7 +229,7 @@ class WeightMixer:
         engine = self._engines.get(normalizer)
         if engine is None:
             engine = BlendEngine(
-                self.sources, self.fold, normalizer, users=self.users_, ks=self.ks, metrics=self.metrics,
+                self._sources, self._fold, normalizer, users=self.users_, ks=self.ks, metrics=self.metrics,
                 metric=f"{self.metrics[0]}@{self.ks[0]}", threads=self.threads,
             ).prepare(progress=self.progress)  # fmt: skip
             self._engines[normalizer] = engine
@@ -254,9 +241,9 @@ class WeightMixer:
         if baseline is None:
             return self._current_per_user(), "start blend"
         if isinstance(baseline, str):
-            if baseline not in self.sources:
-                raise ConfigError(f"baseline {baseline!r} is not a source; sources are {list(self.sources)}")
-            alone = {n: (1.0 if n == baseline else 0.0) for n in self.sources}
+            if baseline not in self._sources:
+                raise ConfigError(f"baseline {baseline!r} is not a source; sources are {list(self._sources)}")
+            alone = {n: (1.0 if n == baseline else 0.0) for n in self._sources}
             frame = engine.per_user(alone)[["user", *self._columns]].reset_index(drop=True)
             engine.evaluate(self._weights)  # back to the mixer's weights
             return frame, baseline
@@ -286,6 +273,41 @@ class WeightMixer:
         """Cut-off shown."""
         return int(self.k_menu.value)
 
+    @property
+    def sources(self) -> dict[str, Any]:
+        """Name -> fitted source, in slider order (a copy; the mixer's own mapping is fixed)."""
+        return dict(self._sources)
+
+    @property
+    def fold(self) -> Fold:
+        """The fold the mixer evaluates on."""
+        return self._fold
+
+    @property
+    def dataset(self) -> Any:
+        """The dataset given at construction (``None`` when none was given)."""
+        return self._dataset
+
+    def on_change(self, callback: Any) -> None:
+        """Call ``callback(mixer)`` after every successful redraw.
+
+        A redraw follows a slider move, a normalizer or K switch, :meth:`set_weights`,
+        :meth:`pin_baseline` and :meth:`unpin_baseline`; moves that leave nothing to draw (all
+        weights zero, an engine error) call nobody. Callbacks run in the order registered; one
+        that raises is reported in the status line and the others still run.
+        """
+        if not callable(callback):
+            raise ConfigError(f"on_change needs a callable, got {type(callback).__name__}")
+        self._listeners.append(callback)
+
+    def _notify(self) -> None:
+        for callback in list(self._listeners):
+            try:
+                callback(self)
+            except Exception as exc:  # a listener's bug must not break the mixer
+                name = getattr(callback, "__qualname__", repr(callback))
+                self._say(f"on_change callback {name} failed: {type(exc).__name__}: {exc}", error=True)
+
     def _current_per_user(self) -> pd.DataFrame:
         engine = self._engines[self.normalizer]
         return engine.per_user()[["user", *self._columns]].reset_index(drop=True)
@@ -303,8 +325,8 @@ class WeightMixer:
             per_user=self._current_per_user(),
             ks=self.ks,
             protocol={"kind": "full_ranking"},
-            fold_settings=dict(self.fold.settings),
-            n_items=self.fold.n_items,
+            fold_settings=dict(self._fold.settings),
+            n_items=self._fold.n_items,
         )
 
     def values(self) -> dict[str, float]:
@@ -316,7 +338,7 @@ class WeightMixer:
         """The current weights and normalizer as a fitted :class:`~xrec.blend.Blend`."""
         from xrec.blend import Blend
 
-        return Blend(self.sources, self._weights, self.normalizer).fit(self.fold)
+        return Blend(self._sources, self._weights, self.normalizer).fit(self._fold)
 
     # ------------------------------------------------------------------ updates
     def _update_engine(self, changed: str | None) -> None:
@@ -366,9 +388,9 @@ class WeightMixer:
 
     def set_weights(self, weights: Mapping[str, float]) -> None:
         """Move several sliders at once (one re-evaluation)."""
-        unknown = [n for n in weights if n not in self.sources]
+        unknown = [n for n in weights if n not in self._sources]
         if unknown:
-            raise ConfigError(f"weights: {unknown} are not sources; sources are {list(self.sources)}")
+            raise ConfigError(f"weights: {unknown} are not sources; sources are {list(self._sources)}")
         for name, value in weights.items():
             check_number(value, f"weights.{name}:", low=0, high=1, expected="a number in [0, 1]")
         self._weights.update({n: float(v) for n, v in weights.items()})
@@ -382,47 +404,31 @@ class WeightMixer:
         self._refresh(None)
 
     def pin_baseline(self) -> None:
-        """Make the current blend the baseline the chart compares against."""
+        """Make the current blend the baseline the chart compares against (:meth:`unpin_baseline` undoes it)."""
         self._baseline_frame = self._current_per_user()
         self.baseline_name_ = "pinned blend"
+        self.pinned_weights_ = dict(self._weights)
+        self.pinned_normalizer_ = self.normalizer
+        self._redraw()
+
+    def unpin_baseline(self) -> None:
+        """Go back to the baseline the mixer was built with."""
+        self._baseline_frame, self.baseline_name_ = self._original_baseline
+        self.pinned_weights_ = None
+        self.pinned_normalizer_ = None
         self._redraw()
 
     # ------------------------------------------------------------------ drawing
     def _frames(self) -> tuple[pd.DataFrame, pd.DataFrame]:
-        from xrec.notebook.frames import verdicts
-
-        k = self.k
-        cols = [f"{m}@{k}" for m in self.metrics]
-        current = self._current_per_user()
-        summary = interval_frame({self.baseline_name_: self._baseline_frame, "blend": current}, cols, self.confidence)
-        rows = []
-        for col in cols:
-            diff = current[col].to_numpy(dtype=np.float64) - self._baseline_frame[col].to_numpy(dtype=np.float64)
-            mean, lo, hi = normal_interval(diff, self.confidence)
-            rows.append(("blend", col, mean, lo, hi))
-        diffs = pd.DataFrame(rows, columns=["candidate", "metric", "difference", "ci_low", "ci_high"])
-        diffs["verdict"] = verdicts(diffs["ci_low"].to_numpy(), diffs["ci_high"].to_numpy())
-        return summary, diffs
+        cols = [f"{m}@{self.k}" for m in self.metrics]
+        return mixer_frames(self._baseline_frame, self._current_per_user(), self.baseline_name_, cols, self.confidence)
 
     def _template(self) -> dict:
-        """Vega-Lite spec of the live chart with named, empty data (built and validated once per K and baseline)."""
-        import altair as alt
-
-        from xrec.notebook.charts import difference_spec, metric_bars_spec
-
+        """Vega-Lite spec of the live chart with named, empty data (built once per K and baseline)."""
         key = (self.k, self.baseline_name_)
-        spec = self._templates.get(key)
-        if spec is None:
-            cols = [f"{m}@{self.k}" for m in self.metrics]
-            names = [self.baseline_name_, "blend"]
-            bars = metric_bars_spec(alt.Data(name=_SUMMARY_DATA), cols, names, self.baseline_name_, title=f"Blend vs {self.baseline_name_}", width=240)
-            delta = difference_spec(
-                alt.Data(name=_DIFF_DATA), cols, ["blend"], self.baseline_name_, [], title="Paired difference (blend − baseline)", width=240
-            )
-            # The two panels colour by different fields (role, verdict): keep their scales apart.
-            spec = alt.vconcat(bars, delta).resolve_scale(color="independent").to_dict()
-            self._templates[key] = spec
-        return spec
+        if key not in self._templates:
+            self._templates[key] = chart_template([f"{m}@{self.k}" for m in self.metrics], self.baseline_name_)
+        return self._templates[key]
 
     def chart(self) -> Any:
         """The live chart as an altair chart (built on demand; the panel draws from :attr:`chart_spec_`)."""
@@ -431,27 +437,15 @@ class WeightMixer:
         return alt.VConcatChart.from_dict(self.chart_spec_, validate=False)
 
     def _redraw(self) -> None:
-        import altair as alt
-
-        from xrec.notebook.charts import prepare_summary
-
         summary, diffs = self._frames()
         self.chart_data_ = summary
         self.difference_data_ = diffs
-        # Altair builds a chart in about a second; filling named data into a prepared spec
-        # takes a millisecond, which is what keeps a slider move interactive.
-        spec = dict(self._template())
-        spec["datasets"] = {_SUMMARY_DATA: _records(prepare_summary(summary, self.baseline_name_)), _DIFF_DATA: _records(diffs)}
-        self.chart_spec_ = spec
-        bundle = alt.renderers.get()(spec)
-        if isinstance(bundle, tuple):
-            bundle, metadata = bundle
-        else:
-            metadata = {}
-        self.output.outputs = ({"output_type": "display_data", "data": bundle, "metadata": metadata},)
+        self.chart_spec_ = filled_spec(self._template(), summary, diffs, self.baseline_name_)
+        self.output.outputs = (chart_output(self.chart_spec_),)
         self.updates_ += 1
         w = ", ".join(f"{n} {v:.2f}" for n, v in self._weights.items())
         self._say(f"weights: {html.escape(w)} · normalizer {html.escape(self.normalizer)}")
+        self._notify()
 
     def _say(self, text: str, *, error: bool = False) -> None:
         color = "#b00020" if error else "#555"
@@ -468,7 +462,7 @@ class WeightMixer:
         from xrec.blendfile import save_blend
         from xrec.bundle import save_bundle
 
-        if self.dataset is None:
+        if self._dataset is None:
             raise ConfigError("export needs the dataset the fold was split from: WeightMixer(..., dataset=dataset)")
         if not any(v > 0 for v in self._weights.values()):
             raise ConfigError("weights: all weights are zero; raise one slider before exporting")
@@ -478,7 +472,7 @@ class WeightMixer:
         evidence = {
             "chosen_with": "xrec weight mixer",
             "users": int(len(self.users_)),
-            "sampled": bool(len(self.users_) < len(self.fold.eval_users)),
+            "sampled": bool(len(self.users_) < len(self._fold.eval_users)),
             "metrics": current,
             "baseline": self.baseline_name_,
             "baseline_metrics": {c: float(base[c].mean()) for c in self._columns},
@@ -486,7 +480,7 @@ class WeightMixer:
         if bundle:
             path = path.with_suffix("") if path.suffix == ".toml" else path
         save = save_bundle if bundle else save_blend
-        return save(path, self.blend(), dataset=self.dataset, split_settings=self.fold.settings, evidence=evidence)
+        return save(path, self.blend(), dataset=self._dataset, split_settings=self._fold.settings, evidence=evidence)
 
     def _export_clicked(self, *, bundle: bool = False) -> None:
         try:
