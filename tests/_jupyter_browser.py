@@ -417,3 +417,12 @@ def time_slider_moves(page: Any, name: str, moves: int, *, gallery: bool, kernel
         "kernel": summary([m.get("kernel_ms") for m in per_move]),
         "chart_dom": summary([m["chart_dom_ms"] for m in per_move]),
     }
+
+
+def page_tracebacks(page: Any) -> list[str]:
+    """Tracebacks shown anywhere in the page, widget output areas included (the model holds only cell outputs)."""
+    return page.evaluate(
+        "Array.from(document.querySelectorAll('.jp-OutputArea-output[data-mime-type=\"application/vnd.jupyter.stderr\"],"
+        " .jp-OutputArea-output[data-mime-type=\"application/vnd.jupyter.error\"]'))"
+        ".map(e => e.innerText).filter(t => /Traceback|Error:/.test(t)).map(t => t.slice(-600))"
+    )

@@ -30,12 +30,14 @@ import pytest
 from _jupyter_browser import (
     CHART,
     CHROMIUM,
+    EXPLORER,
     GALLERY,
     LabServer,
     NotebookPage,
     cell_errors,
     copy_notebook,
     launch_chromium,
+    page_tracebacks,
     time_slider_moves,
 )
 
@@ -62,9 +64,13 @@ def _needs_browser() -> None:
         pytest.skip("browser test needs " + " and ".join(missing))
 
 
-def _has_gallery_cell() -> bool:
+def _has_cell(word: str) -> bool:
     cells = json.loads(NOTEBOOK.read_text(encoding="utf-8"))["cells"]
-    return any("Gallery" in "".join(c["source"]) for c in cells if c["cell_type"] == "code")
+    return any(word in "".join(c["source"]) for c in cells if c["cell_type"] == "code")
+
+
+def _has_gallery_cell() -> bool:
+    return _has_cell("Gallery")
 
 
 @pytest.fixture(scope="module")
@@ -115,6 +121,7 @@ def test_every_cell_ran_without_an_error(notebook):
     not_run = [i for i, c in enumerate(cells) if c["type"] == "code" and c["count"] is None]
     assert not not_run, f"cells {not_run} never ran (Run All stops at the first error)"
     assert not cell_errors(cells), "\n".join(cell_errors(cells))
+    assert not page_tracebacks(notebook.page), "\n".join(page_tracebacks(notebook.page))
     # The execution counts are the kernel's 1..n in notebook order: every cell ran once, in order.
     assert [c["count"] for c in code] == list(range(1, len(code) + 1))
     print(f"\nquickstart in the browser: {len(code)} code cells ran in {notebook.run_seconds:.1f} s")
@@ -133,6 +140,13 @@ def test_mixer_chart_and_gallery_are_drawn(notebook):
     assert gallery.first.locator("img").count() > 0, "the gallery shows no thumbnails"
 
 
+def test_explorer_is_drawn(notebook):
+    if not _has_cell("Explorer"):
+        pytest.skip("the quickstart has no explorer cell yet")
+    explorer = notebook.page.locator(EXPLORER)
+    assert explorer.count() >= 1, f"no {EXPLORER} element in the page"
+
+
 def test_keyboard_slider_move_redraws_chart_and_gallery(notebook, record_property, tmp_path):
     gallery = _has_gallery_cell()
     timed = time_slider_moves(notebook.page, SLIDER, MOVES, gallery=gallery)
@@ -140,6 +154,7 @@ def test_keyboard_slider_move_redraws_chart_and_gallery(notebook, record_propert
     assert abs(timed["end"] - timed["start"]) == pytest.approx(MOVES * 0.01, abs=1e-6)
     chart, shown = timed["chart"], timed["gallery"]
     assert chart["n"] == MOVES and shown["n"] == (MOVES if gallery else 0)
+    assert not page_tracebacks(notebook.page), "\n".join(page_tracebacks(notebook.page))
     load = os.getloadavg()[0]
     (tmp_path / "latency.json").write_text(json.dumps({**timed, "load_1min": load}, indent=1))
     record_property("latency_chart_ms", chart)

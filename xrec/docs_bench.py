@@ -274,6 +274,9 @@ def _bridges_table(data: dict[str, dict]) -> str:
     return "\n".join(lines) + "\n"
 
 
+_BROWSER_GOALS_MS = {"chart": 150, "gallery": 300}  # issue 14's goals for the medians
+
+
 def _browser_text(data: dict[str, dict]) -> str:
     """Key press -> chart / gallery redrawn in JupyterLab + headless Chromium (``bench_browser.py``)."""
     res = data["browser.json"]
@@ -292,7 +295,8 @@ def _browser_text(data: dict[str, dict]) -> str:
         f"`{res['run']['command']}`: the quickstart run in JupyterLab {f['jupyterlab']} and headless Chromium {f['chromium'].split('.')[0]} "
         f"on 127.0.0.1, then {f['moves']} arrow-key presses on the `{f['slider']}` slider, each awaited; times from "
         f"`performance.now()` at the key press to a MutationObserver seeing the new drawing ({_load(res)}; "
-        f"{f['load_1min_at_end']:.1f} at the end).{gallery}"
+        f"{f['load_1min_at_end']:.1f} at the end). Goal: a median under {_BROWSER_GOALS_MS['chart']} ms for the chart and under "
+        f"{_BROWSER_GOALS_MS['gallery']} ms for the gallery.{gallery}"
     )
     return "\n".join(lines) + "\n"
 
