@@ -295,7 +295,7 @@ PROBE_JS = """
   const chartSel = sel.chart, gallerySel = sel.gallery;
   const drawn = (root) => root ? Array.from(root.querySelectorAll('canvas, svg.marks')) : [];
   const chartRoot = () => document.querySelector(chartSel);
-  const revision = () => Math.max(-1, ...Array.from(document.querySelectorAll(gallerySel)).map(e => Number(e.getAttribute('data-revision'))));
+  const revision = () => Math.max(-1, ...Array.from(document.querySelectorAll(gallerySel + '[data-revision]')).map(e => Number(e.getAttribute('data-revision'))));
   const svgText = (root) => drawn(root).map(e => e.tagName === 'svg' ? e.outerHTML : '').join('');
   const probe = {moves: [], current: null};
   const check = (records) => {
