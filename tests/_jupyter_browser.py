@@ -246,14 +246,21 @@ class NotebookPage:
         self.server.remember_children()
         return self
 
-    def run_all(self, timeout: float = 400.0) -> float:
-        """Run every cell (JupyterLab's ``notebook:run-all-cells``); seconds until all ran and the kernel is idle."""
+    def run_all(self, timeout: float = 600.0) -> float:
+        """Run every cell (JupyterLab's ``notebook:run-all-cells``); seconds until the kernel is idle after the run.
+
+        The run ends when every code cell has an execution count, or earlier when a cell
+        failed (JupyterLab then does not run the cells below it).
+        """
         started = time.monotonic()
         self.page.evaluate("window.jupyterapp.commands.execute('notebook:run-all-cells')")
         self.page.wait_for_function(
             f"(() => {{ const p = {_PANEL}; if (!p) return false; const k = p.sessionContext.session.kernel;"
             " const code = p.content.widgets.filter(c => c.model.type === 'code');"
-            " return k.status === 'idle' && code.every(c => c.model.executionCount !== null && c.promptNode.textContent.indexOf('*') < 0); })()",
+            " if (k.status !== 'idle' || code.some(c => c.promptNode.textContent.indexOf('*') >= 0)) return false;"
+            # Run All stops at a failing cell: then the cells below it never get a count.
+            " return code.every(c => c.model.executionCount !== null)"
+            "   || code.some(c => c.model.outputs.toJSON().some(o => o.output_type === 'error')); })()",
             timeout=timeout * 1000,
             polling=500,
         )

@@ -108,10 +108,16 @@ def chromium():
 def notebook(lab, chromium):
     """The quickstart opened and run to the end in the page."""
     page = chromium.new_page(viewport={"width": 1400, "height": 1000})
-    nb = NotebookPage(page, lab, NOTEBOOK.name).open()
-    nb.run_seconds = nb.run_all()
-    yield nb
-    page.close()
+    try:
+        nb = NotebookPage(page, lab, NOTEBOOK.name)
+        try:
+            nb.open()
+            nb.run_seconds = nb.run_all()
+        except Exception as exc:
+            raise RuntimeError(f"the quickstart did not run in the browser ({exc}); JupyterLab's log ends:\n{lab.log_tail()}") from exc
+        yield nb
+    finally:
+        page.close()
 
 
 def test_every_cell_ran_without_an_error(notebook):
