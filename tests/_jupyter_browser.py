@@ -300,10 +300,14 @@ def cell_errors(cells: list[dict]) -> list[str]:
 PROBE_JS = """
 (sel) => {
   const chartSel = sel.chart, gallerySel = sel.gallery;
-  const drawn = (root) => root ? Array.from(root.querySelectorAll('canvas, svg.marks')) : [];
+  // A vega svg is appended empty when the view starts and filled when it has run: count it
+  // once it holds marks (vega's groups carry "role-" classes). A canvas cannot be inspected
+  // that way and counts when it is there.
+  const drawn = (root) => root ? Array.from(root.querySelectorAll('canvas, svg.marks'))
+    .filter(e => e.tagName !== 'svg' || e.querySelector('[class*="role-"]')) : [];
   const chartRoot = () => document.querySelector(chartSel);
   const revision = () => Math.max(-1, ...Array.from(document.querySelectorAll(gallerySel + '[data-revision]')).map(e => Number(e.getAttribute('data-revision'))));
-  const svgText = (root) => drawn(root).map(e => e.tagName === 'svg' ? e.outerHTML : '').join('');
+  const svgText = (root) => drawn(root).map(e => e.tagName === 'svg' ? e.innerHTML : '').join('');
   const probe = {moves: [], current: null};
   const check = (records) => {
     const m = probe.current;
@@ -342,7 +346,12 @@ def install_probe(page: Any) -> None:
 
 def probe_moves(page: Any) -> list[dict]:
     """The probe's moves so far: ``key``, ``chart_ms``, ``gallery_ms`` (``None`` until seen)."""
-    return page.evaluate("window.__xrecProbe.moves.map(m => ({key: m.key, chart_dom_ms: m.chart_dom_ms, chart_ms: m.chart_ms, gallery_ms: m.gallery_ms, rev0: m.rev0}))")
+    moves = page.evaluate("window.__xrecProbe.moves.map(m => ({key: m.key, chart_dom_ms: m.chart_dom_ms, chart_ms: m.chart_ms, gallery_ms: m.gallery_ms, rev0: m.rev0}))")
+    for move in moves:
+        for key in ("chart_dom_ms", "chart_ms", "gallery_ms"):
+            if move[key] is not None:
+                move[key] = round(move[key], 1)
+    return moves
 
 
 def press_and_wait(page: Any, handle: Any, key: str, *, gallery: bool, timeout: float = 30.0) -> dict:
