@@ -219,7 +219,7 @@ def test_screenshot_is_saved(notebook, tmp_path):
     print(f"\nscreenshot: {path}")
 
 
-def test_every_started_process_stops(lab, chromium):
+def test_every_started_process_stops(lab):
     lab.remember_children()
     started = lab.alive_pids()
     assert lab.process.pid in started and len(started) >= 2, f"expected the server and a kernel, found {started}"
