@@ -102,3 +102,43 @@ def test_errors_on_workers_name_the_item(dask_client, tmp_path):
         encode_sharded(object(), texts, cache=tmp_path, client=dask_client)
     empty = encode_sharded(DigestTextEncoder(), [], cache=tmp_path, client=dask_client)
     assert empty.vectors.shape == (0, 32)
+
+
+def test_spec_run_with_a_cluster_encodes_catalog_texts_on_the_workers(dask_client, tmp_path, monkeypatch):
+    """A spec run with ``evaluate.scheduler`` fills the embedding cache on the workers, sharded by items."""
+    import pandas as pd
+    import tomli_w
+
+    from xrec.encoders.text import MiniLMTextEncoder
+    from xrec.experiment import run_experiment
+    from xrec.spec import load_spec
+
+    rng = np.random.default_rng(3)
+    words = ["red", "blue", "green", "tiny", "large", "round", "square", "soft"]
+    items = pd.DataFrame({"item": [f"i{j}" for j in range(40)], "name": [" ".join(rng.choice(words, 3)) + f" no {j}" for j in range(40)]})
+    items.to_csv(tmp_path / "items.csv", index=False)
+    users = np.repeat(np.arange(50), 6)
+    events = pd.DataFrame({"user": [f"u{u}" for u in users], "item": [f"i{j}" for j in rng.integers(0, 40, len(users))]})
+    events.assign(timestamp=np.arange(len(events))).drop_duplicates(["user", "item"]).to_csv(tmp_path / "events.csv", index=False)
+
+    def spec(folder: str, **evaluate) -> Path:
+        table = {
+            "data": {"dataset": "files", "catalog": "items.csv", "interactions": "events.csv", "text": ["name"]},
+            "evaluate": {"ks": [5], "baseline": "pop", **evaluate},
+            "sources": {"pop": {"kind": "popularity"}, "words": {"kind": "text", "columns": ["name"], "cache_dir": str(tmp_path / folder)}},
+        }
+        path = tmp_path / f"{folder}.toml"
+        path.write_bytes(tomli_w.dumps(table).encode("utf-8"))
+        return path
+
+    in_process = run_experiment(load_spec(spec("cache-alone")))
+
+    def refuse(self, contents, *, progress=False):
+        raise AssertionError("encoded in the calling process")
+
+    monkeypatch.setattr(MiniLMTextEncoder, "encode", refuse)  # workers are separate (spawned) processes
+    on_cluster = run_experiment(load_spec(spec("cache-cluster", scheduler=dask_client.scheduler.address)))
+    stored = [p for p in (tmp_path / "cache-cluster").rglob("*") if p.is_file()]
+    assert len(stored) >= 40  # one entry per distinct item text
+    for name, card in in_process.scorecards.items():
+        pd.testing.assert_frame_equal(on_cluster.scorecards[name].per_user, card.per_user)

@@ -364,3 +364,14 @@ def test_images_skipped_through_the_cache_are_named_by_item_id_with_their_decode
     raiser.model_, raiser.transform_, raiser._min_side = enc.model_, enc.transform_, enc._min_side
     with pytest.raises(DataError, match=r"cannot encode 1 of 4 items: item 'sku-cut': corrupt or truncated"):
         encode_catalog_images(catalog, raiser, cache=EmbeddingCache(tmp_path / "c2"))
+
+
+def test_pickled_encoder_leaves_the_network_behind_and_encodes_the_same(enc, photos) -> None:
+    """What a Dask worker receives: settings only; it loads the same weights on first use."""
+    import pickle
+
+    enc.load()
+    copy = pickle.loads(pickle.dumps(enc))
+    assert not hasattr(copy, "model_") and not hasattr(copy, "transform_")
+    batch = list(photos.values())[:2]
+    np.testing.assert_allclose(copy.encode(batch), enc.encode(batch), atol=1e-6)

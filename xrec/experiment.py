@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+import contextlib
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -147,12 +148,15 @@ def cluster_options(spec: ExperimentSpec) -> dict[str, Any] | None:
     return {"scheduler": ev.get("scheduler"), "workers": ev.get("workers")}
 
 
-def evaluate_scorers(spec: ExperimentSpec, scorers: dict[str, Any], fold: Any, *, progress: bool = False) -> dict[str, Any]:
+def evaluate_scorers(
+    spec: ExperimentSpec, scorers: dict[str, Any], fold: Any, *, progress: bool = False, client: Any = None
+) -> dict[str, Any]:
     """Scorecards of ``scorers`` on ``fold`` with the spec's ``[evaluate]`` options.
 
     With ``scheduler`` or ``workers`` in ``[evaluate]`` the users are sharded over one Dask
     cluster shared by every scorer (:func:`xrec.evaluate.evaluate_sharded`); the scorecards
-    are the same as in one process.
+    are the same as in one process. ``client``: an open client to use for that (else one
+    is opened for this call).
     """
     from xrec.evaluate import evaluate, evaluate_sharded
 
@@ -164,11 +168,29 @@ def evaluate_scorers(spec: ExperimentSpec, scorers: dict[str, Any], fold: Any, *
     from xrec.cluster import open_client
 
     shard_size = spec.evaluate.get("shard_size")
-    with open_client(**cluster) as client:
+    with (open_client(**cluster) if client is None else open_client(client=client)) as active:
         return {
-            name: evaluate_sharded(scorer, fold, name=name, shard_size=shard_size, client=client, progress=progress, **opts)
+            name: evaluate_sharded(scorer, fold, name=name, shard_size=shard_size, client=active, progress=progress, **opts)
             for name, scorer in items
         }
+
+
+@contextlib.contextmanager
+def spec_cluster(spec: ExperimentSpec) -> Iterator[Any]:
+    """The spec's Dask client for a whole run (``None`` without ``scheduler``/``workers``).
+
+    Inside, catalog texts and images missing from the embedding cache are encoded on the
+    cluster's workers (sharded by items), so a run pays for one cluster, not one per step.
+    """
+    cluster = cluster_options(spec)
+    if cluster is None:
+        yield None
+        return
+    from xrec.cluster import open_client
+    from xrec.encoders._cluster_hook import encoding_on
+
+    with open_client(**cluster) as client, encoding_on(client):
+        yield client
 
 
 def run_experiment(
@@ -188,6 +210,13 @@ def run_experiment(
     ``extras["segments"]`` holds the per-segment scorecard table, the comparison its
     ``segments`` table.
     """
+    with spec_cluster(spec) as client:
+        return _run_experiment(spec, progress=progress, dataset=dataset, only=only, by=by, client=client)
+
+
+def _run_experiment(
+    spec: ExperimentSpec, *, progress: bool, dataset: Dataset | None, only: str | None, by: Sequence[str], client: Any
+) -> ExperimentResult:
     from xrec.evaluate import compare
     from xrec.evaluate.segments import segment_labels
     from xrec.split import split_dataset
@@ -217,7 +246,7 @@ def run_experiment(
             scorers[name] = _build_blend(spec, table, sources, split, valid_sources, learned, name, progress)
         except ConfigError as exc:
             raise ConfigError(f"blends.{name}: {exc}") from exc
-    scorecards = evaluate_scorers(spec, scorers, fold, progress=progress)
+    scorecards = evaluate_scorers(spec, scorers, fold, progress=progress, client=client)
     comparison = None
     baseline = spec.baseline
     seed = int(spec.evaluate.get("seed", 0))

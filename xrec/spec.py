@@ -21,6 +21,7 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     # overlap = 10               # also report each scorer's top-10 overlap with the baseline
     # pairs = [["als", "als_genres"]]  # extra paired comparisons, each against its own baseline
     # workers = 2                # evaluate on a local Dask cluster of 2 processes, sharded by users
+    #                            # (catalog texts and images missing from the cache are encoded there too)
     # scheduler = "tcp://scheduler-host:8786"  # or on a running Dask cluster (not with `workers`)
     # shard_size = 8192          # users per Dask task (default: about 4 per worker; unused in one process)
 

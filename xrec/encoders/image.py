@@ -232,6 +232,12 @@ class EfficientNetLite0Encoder(Encoder):
         check_number(self.crop, f"{who}: crop", low=0.0, low_open=True, high=1.0, expected="a number in (0, 1]")
         self._runtime()
 
+    def __getstate__(self) -> dict:
+        # The loaded network stays behind when the encoder is sent to another process (a Dask
+        # worker): unpickling it there would import the model libraries before xrec's torch
+        # guard. The copy loads the same weights on its first encode.
+        return {k: v for k, v in self.__dict__.items() if k not in ("model_", "transform_", "graph_")}
+
     def load(self) -> EfficientNetLite0Encoder:
         """Build the model and load the weights now (otherwise the first encode does).
 

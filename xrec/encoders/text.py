@@ -162,6 +162,12 @@ class MiniLMTextEncoder(Encoder):
         if self.precision not in PRECISIONS:
             raise ConfigError(f"text encoder: precision must be one of {list(PRECISIONS)}, got {self.precision!r}")
 
+    def __getstate__(self) -> dict:
+        # The loaded network stays behind when the encoder is sent to another process (a Dask
+        # worker): unpickling it there would import the model libraries before xrec's torch
+        # guard. The copy loads the same weights on its first encode.
+        return {k: v for k, v in self.__dict__.items() if k not in ("model_",)}
+
     def load(self, *, progress: bool = False) -> MiniLMTextEncoder:
         """Load the model now (otherwise the first encode does). Returns ``self``."""
         self._check_settings()

@@ -51,6 +51,25 @@ def item_labels(catalog: Catalog) -> list[str]:
     return [f"item {i!r}" for i in catalog.item_ids]
 
 
+def _fill_on_cluster(encoder: Any, contents: Sequence[Any], cache_dir: str | None, labels: list[str], progress: bool) -> None:
+    """Encode what the cache lacks on the Dask workers of a spec run with a cluster (no-op otherwise).
+
+    The in-process encoding that follows then finds every vector in the cache.
+    """
+    from xrec.encoders._cluster_hook import encoding_client
+
+    client = encoding_client()
+    if client is None:
+        return
+    from xrec.encoders.sharded import encode_sharded
+
+    encode_sharded(encoder, contents, cache=cache_dir, labels=labels, progress=progress, client=client)
+
+
+def _image_paths(catalog: Catalog) -> list[str]:
+    return [str(catalog.image_path(i)) for i in range(catalog.n_items)]  # read on the workers
+
+
 def text_vectors(
     catalog: Catalog,
     columns: Sequence[str] | None = None,
@@ -67,9 +86,9 @@ def text_vectors(
     from xrec.encoders.cache import EmbeddingCache
 
     texts = item_texts(catalog, columns)
-    return EmbeddingCache(cache_dir).encode_with_mask(
-        make_text_encoder(encoder, on_error="skip"), texts, progress=progress, labels=item_labels(catalog)
-    )
+    enc, labels = make_text_encoder(encoder, on_error="skip"), item_labels(catalog)
+    _fill_on_cluster(enc, texts, cache_dir, labels, progress)
+    return EmbeddingCache(cache_dir).encode_with_mask(enc, texts, progress=progress, labels=labels)
 
 
 def image_vectors(
@@ -94,6 +113,7 @@ def image_vectors(
 
     check_images(catalog)
     enc = make_image_encoder(encoder, on_error="skip", crop=crop)
+    _fill_on_cluster(enc, _image_paths(catalog), cache_dir, item_labels(catalog), progress)
     return encode_catalog_images(catalog, enc, cache=EmbeddingCache(cache_dir), progress=progress, return_mask=True)  # type: ignore[return-value]
 
 
@@ -115,6 +135,8 @@ def image_features_and_probs(
     check_images(catalog)
     cache = EmbeddingCache(cache_dir)
     probs_enc = ImageNetProbsEncoder(make_image_encoder(encoder, on_error="skip", crop=crop))
+    for enc in (probs_enc.features_encoder(), probs_enc):
+        _fill_on_cluster(enc, _image_paths(catalog), cache_dir, item_labels(catalog), progress)
     features, ok_f = encode_catalog_images(catalog, probs_enc.features_encoder(), cache=cache, progress=progress, return_mask=True)
     class_probs, ok_p = encode_catalog_images(catalog, probs_enc, cache=cache, progress=progress, return_mask=True)
     return features, class_probs, ok_f & ok_p  # type: ignore[operator]
