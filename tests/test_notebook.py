@@ -6,8 +6,12 @@ dataset), split leave-last-out; sources are popularity, a small ALS and genre at
 
 from __future__ import annotations
 
+import base64
+import gzip
+import html
 import json
 import os
+import re
 from html.parser import HTMLParser
 from pathlib import Path
 
@@ -17,9 +21,9 @@ import pytest
 alt = pytest.importorskip("altair")
 pytest.importorskip("ipywidgets")
 
+from _three_sources import three_sources  # noqa: E402
 from xrec.blend import Blend  # noqa: E402
 from xrec.blendfile import read_blend  # noqa: E402
-from xrec.data.movielens import load_movielens  # noqa: E402
 from xrec.errors import ConfigError, DataError  # noqa: E402
 from xrec.evaluate import compare, evaluate  # noqa: E402
 from xrec.notebook import (  # noqa: E402
@@ -32,21 +36,14 @@ from xrec.notebook import (  # noqa: E402
     weight_profile,
     wilson_interval,
 )
-from xrec.sources import ALSSource, AttributeSource, PopularitySource  # noqa: E402
-from xrec.split import split_dataset  # noqa: E402
+from xrec.sources import PopularitySource  # noqa: E402
 
 METRICS = ("hit_rate", "ndcg")
 
 
 @pytest.fixture(scope="module")
 def data():
-    dataset = load_movielens()
-    fold = split_dataset(dataset, "leave_last", validation=False).test
-    sources = {
-        "pop": PopularitySource().fit(fold),
-        "als": ALSSource(factors=16, iterations=4, num_threads=1).fit(fold),
-        "genres": AttributeSource().fit(fold),
-    }
+    dataset, fold, sources = three_sources()
     cards = {name: evaluate(src, fold, ks=(10, 20), name=name) for name, src in sources.items()}
     return dataset, fold, sources, cards
 
@@ -289,9 +286,9 @@ def test_on_change_runs_after_every_redraw_and_properties_are_read_only(data):
     m = WeightMixer(sources, fold, baseline="pop", ks=(10, 20), sample_size=60, dataset=dataset)
     seen = []
     m.on_change(lambda mx: seen.append((mx.updates_, mx.weights, mx.normalizer, mx.k, mx.baseline_name_)))
-    m.sliders["als"].value = 0.8
-    m.normalizer_menu.value = "rank"
-    m.k_menu.value = 20
+    for control, value in ((m.sliders["als"], 0.8), (m.normalizer_menu, "rank"), (m.k_menu, 20)):
+        control.value = value  # as from the page: the handler returns at once, the worker redraws
+        assert m.wait(timeout=60)
     m.set_weights({"pop": 0.2, "genres": 0.7})
     m.pin_button.click()
     m.unpin_button.click()
@@ -307,6 +304,7 @@ def test_on_change_runs_after_every_redraw_and_properties_are_read_only(data):
             setattr(m, name, None)
     m.on_change(lambda mx: 1 / 0)  # a broken listener is reported, the mixer keeps working
     m.sliders["als"].value = 0.5
+    assert m.wait(timeout=60)
     assert "ZeroDivisionError" in m.status.value and m.weights["als"] == 0.5
     with pytest.raises(ConfigError, match="callable"):
         m.on_change("not a function")
@@ -326,9 +324,19 @@ def test_mixer_export_button_writes_a_blend_file(data, mixer):
     assert spec.evidence["users"] == len(mixer.users_)
     assert spec.evidence["metrics"]["ndcg@10"] == pytest.approx(mixer.values()["ndcg@10"])
     assert spec.split["rule"] == "leave_last"
-    mixer.path_box.value = str(path.parent / "no-such-folder" / "x.toml")
+    mixer.path_box.value = str(path.parent / "no-such-folder" / "deeper" / "x.toml")
+    mixer.export_button.click()  # missing folders are created
+    assert read_blend(path.parent / "no-such-folder" / "deeper" / "x.toml").sources.keys() == spec.sources.keys()
+    for typed in (str(path.parent), str(path.parent) + "/"):
+        mixer.path_box.value = typed
+        mixer.export_button.click()
+        status = html.unescape(mixer.status.value)
+        assert "export failed" in status and "is a folder" in status and repr(typed) in status and "Errno" not in status
+    (path.parent / "a-file").write_text("x")
+    mixer.path_box.value = typed = str(path.parent / "a-file" / "x.toml")
     mixer.export_button.click()
-    assert "export failed" in mixer.status.value
+    status = html.unescape(mixer.status.value)
+    assert "cannot create the folder" in status and repr(typed) in status and ".tmp" not in status
     mixer.path_box.value = str(path)
 
 
@@ -399,10 +407,14 @@ def test_offline_charts_renderer_needs_no_network(monkeypatch):
         offline_charts()
         assert alt.renderers.active == "xrec_offline"
         libraries = shown[0].data
-        assert "window.vegaEmbed=" in libraries.replace(" ", "")
+        # The loader holds the libraries once, gzip + base64 (decoded here with the standard library).
+        packed = re.search(r'atob\("([A-Za-z0-9+/=]+)"\)', libraries).group(1)
+        code = gzip.decompress(base64.b64decode(packed)).decode("utf-8")
+        assert "window.vegaEmbed=" in code.replace(" ", "") and len(libraries) < 0.6 * len(code)
         bundle = alt.renderers.get()(weight_profile({"a": 1.0, "b": 0.5}).to_dict())
         text = bundle["text/html"]
         assert "window.vegaEmbed(" in text and "src=" not in text and "cdn" not in text
+        assert "xrecChartQueue" in text and len(text) < 20_000  # each chart refers to the one copy
         assert "</script>" not in text[: text.rindex("</script>")]  # the spec cannot close the script early
     finally:
         alt.renderers.enable(previous)

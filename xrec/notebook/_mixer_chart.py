@@ -82,3 +82,34 @@ def chart_output(spec: dict) -> dict[str, Any]:
     else:
         metadata = {}
     return {"output_type": "display_data", "data": bundle, "metadata": metadata}
+
+
+def baseline_frame(baseline: Any, engine: Any, users: np.ndarray, columns: Sequence[str], weights: dict[str, float]) -> tuple[pd.DataFrame, str]:
+    """Per-user metrics and label of the mixer's baseline: ``None`` (the starting weights), a
+    source name (that source alone) or a :class:`~xrec.evaluate.Scorecard` covering ``users``."""
+    from xrec.errors import ConfigError, DataError
+    from xrec.evaluate.scorecard import Scorecard
+
+    cols = ["user", *columns]
+    if baseline is None:
+        return engine.per_user()[cols].reset_index(drop=True), "start blend"
+    if isinstance(baseline, str):
+        if baseline not in weights:
+            raise ConfigError(f"baseline {baseline!r} is not a source; sources are {list(weights)}")
+        alone = {n: (1.0 if n == baseline else 0.0) for n in weights}
+        frame = engine.per_user(alone)[cols].reset_index(drop=True)
+        engine.evaluate(weights)  # back to the mixer's weights
+        return frame, baseline
+    if isinstance(baseline, Scorecard):
+        missing = [c for c in columns if c not in baseline.per_user.columns]
+        if missing:
+            raise ConfigError(f"baseline scorecard {baseline.name!r} lacks metric(s) {missing}; evaluate it with the mixer's ks")
+        indexed = baseline.per_user.set_index("user")
+        absent = np.setdiff1d(users, indexed.index.to_numpy())
+        if absent.size:
+            raise DataError(
+                f"baseline scorecard {baseline.name!r} does not cover {absent.size} of the mixer's users "
+                f"(first {absent[:5].tolist()}); evaluate it on the same fold's evaluation users"
+            )
+        return indexed.loc[users, list(columns)].reset_index(), str(baseline.name)
+    raise ConfigError(f"baseline must be a Scorecard, a source name or None, got {type(baseline).__name__}")

@@ -18,7 +18,7 @@ from xrec._validation import check_number, parse_metric_column
 from xrec.errors import ConfigError, DataError
 from xrec.evaluate._stats import wilson_interval
 from xrec.evaluate.segments import SEGMENT_COLUMNS, segment_hit_rates
-from xrec.notebook.frames import DIFFERENCE_COLUMNS, SUMMARY_COLUMNS, comparison_frame, summary_frame, verdicts
+from xrec.notebook.frames import DIFFERENCE_COLUMNS, SUMMARY_COLUMNS, comparison_frame, metric_label, summary_frame, verdicts
 from xrec.notebook.html_page import charts_to_html
 
 __all__ = [
@@ -128,17 +128,22 @@ def metric_bars_spec(
     """Metric bars over one data source (a frame, or named data filled in later), one panel per metric."""
     color = _scorer_color(baseline, names)
     y = alt.Y("scorer:N", sort=list(names), title=None)
-    tooltip = ["scorer:N", alt.Tooltip("mean:Q", format=".4f"), alt.Tooltip("ci_low:Q", format=".4f"), alt.Tooltip("ci_high:Q", format=".4f"), "n_users:Q"]
     panels = []
     for m in metrics:
-        bars = alt.Chart().mark_bar(opacity=0.85).encode(y=y, x=alt.X("mean:Q", title=m), color=color, tooltip=tooltip)
-        err = alt.Chart().mark_errorbar(ticks=True, color="black").encode(y=y, x=alt.X("ci_low:Q", title=m), x2="ci_high:Q")
+        label = metric_label(m)
+        tooltip = [
+            alt.Tooltip("scorer:N", title="scorer"), alt.Tooltip("mean:Q", format=".4f", title=label),
+            alt.Tooltip("ci_low:Q", format=".4f", title="interval from"), alt.Tooltip("ci_high:Q", format=".4f", title="interval to"),
+            alt.Tooltip("n_users:Q", title="users"),
+        ]  # fmt: skip
+        bars = alt.Chart().mark_bar(opacity=0.85).encode(y=y, x=alt.X("mean:Q", title=label), color=color, tooltip=tooltip)
+        err = alt.Chart().mark_errorbar(ticks=True, color="black").encode(y=y, x=alt.X("ci_low:Q", title=label), x2="ci_high:Q")
         layers = [bars, err]
         if baseline is not None:
             layers.append(
                 alt.Chart().transform_filter(alt.datum.role == "baseline").mark_rule(strokeDash=[4, 3], color=BASELINE_COLOR).encode(x="mean:Q")
             )
-        panel = alt.layer(*layers).transform_filter(alt.datum.metric == m).properties(width=width, title=m if len(metrics) > 1 else "")
+        panel = alt.layer(*layers).transform_filter(alt.datum.metric == m).properties(width=width, title=label if len(metrics) > 1 else "")
         panels.append(panel)
     if len(panels) == 1:
         chart = panels[0]
@@ -173,9 +178,9 @@ def weight_profile(weights: Mapping[str, float], *, title: str = "Blend weights"
         data["normalizer"] = normalizers
     elif isinstance(normalizers, Mapping):
         data["normalizer"] = [normalizers.get(n, "") for n in data["source"]]
-    tooltip = ["source:N", alt.Tooltip("weight:Q", format=".3f"), alt.Tooltip("share:Q", format=".1%")]
+    tooltip = [alt.Tooltip("source:N", title="source"), alt.Tooltip("weight:Q", format=".3f", title="weight"), alt.Tooltip("share:Q", format=".1%", title="share of total")]
     if "normalizer" in data:
-        tooltip.append("normalizer:N")
+        tooltip.append(alt.Tooltip("normalizer:N", title="normalizer"))
     base = alt.Chart(data)
     y = alt.Y("source:N", sort=list(values), title=None)
     bars = base.mark_bar(color=OTHER_COLOR).encode(y=y, x=alt.X("weight:Q", title="weight"), tooltip=tooltip)
@@ -226,9 +231,12 @@ def segment_bars(
     base = alt.Chart(data)
     x = alt.X("segment:N", sort=segments, title="held-out item's training interactions", axis=alt.Axis(labelAngle=0))
     offset = alt.XOffset("scorer:N", sort=names)
-    tooltip = ["scorer:N", "segment:N", alt.Tooltip("hit_rate:Q", format=".3f"), alt.Tooltip("ci_low:Q", format=".3f"), alt.Tooltip("ci_high:Q", format=".3f")]
+    tooltip = [
+        alt.Tooltip("scorer:N", title="scorer"), alt.Tooltip("segment:N", title="segment"), alt.Tooltip("hit_rate:Q", format=".3f", title="hit rate"),
+        alt.Tooltip("ci_low:Q", format=".3f", title="interval from"), alt.Tooltip("ci_high:Q", format=".3f", title="interval to"),
+    ]  # fmt: skip
     if "n" in data.columns:
-        tooltip.append("n:Q")
+        tooltip.append(alt.Tooltip("n:Q", title="held-out items"))
     color = alt.Color("scorer:N", sort=names, legend=alt.Legend(title=None, orient="bottom"))
     bars = base.mark_bar().encode(x=x, xOffset=offset, y=alt.Y("hit_rate:Q", title="hit rate"), color=color, tooltip=tooltip)
     if baseline is not None:
@@ -267,15 +275,21 @@ def difference_spec(
         legend=alt.Legend(title=None, orient="bottom"),
     )
     y = alt.Y("candidate:N", sort=list(names), title=None)
-    tooltip = ["candidate:N", alt.Tooltip("difference:Q", format="+.4f"), alt.Tooltip("ci_low:Q", format="+.4f"), alt.Tooltip("ci_high:Q", format="+.4f"), "verdict:N"]
-    tooltip += [alt.Tooltip(f"{extra}:Q", format=".3g") for extra in extras]
+    extra_titles = {"p_value": "p-value", "p_holm": "p-value (Holm)"}
     panels = []
     for m in metrics:
-        x_title = f"{m}: difference vs {baseline}"
+        label = metric_label(m)
+        tooltip = [
+            alt.Tooltip("candidate:N", title="scorer"), alt.Tooltip("difference:Q", format="+.4f", title=f"{label} difference"),
+            alt.Tooltip("ci_low:Q", format="+.4f", title="interval from"), alt.Tooltip("ci_high:Q", format="+.4f", title="interval to"),
+            alt.Tooltip("verdict:N", title="verdict"),
+        ]  # fmt: skip
+        tooltip += [alt.Tooltip(f"{extra}:Q", format=".3g", title=extra_titles.get(extra, extra)) for extra in extras]
+        x_title = f"{label}: difference vs {baseline}"
         err = alt.Chart().mark_rule(strokeWidth=2).encode(y=y, x=alt.X("ci_low:Q", title=x_title), x2="ci_high:Q", color=color)
         dot = alt.Chart().mark_point(filled=True, size=70).encode(y=y, x=alt.X("difference:Q", title=x_title), color=color, tooltip=tooltip)
         zero = alt.Chart().mark_rule(color="black", strokeDash=[3, 3]).encode(x=alt.datum(0))
-        panel = alt.layer(zero, err, dot).transform_filter(alt.datum.metric == m).properties(width=width, title=m if len(metrics) > 1 else "")
+        panel = alt.layer(zero, err, dot).transform_filter(alt.datum.metric == m).properties(width=width, title=label if len(metrics) > 1 else "")
         panels.append(panel)
     if len(panels) == 1:
         chart = panels[0]

@@ -8,6 +8,7 @@ output stays the objects' own ``repr``.
 
 from __future__ import annotations
 
+import functools
 import html
 from typing import Any
 
@@ -18,7 +19,9 @@ from xrec._validation import parse_metric_column
 
 __all__ = [
     "OFFLINE_RENDERER",
+    "chart_html",
     "comparison_html",
+    "libraries_html",
     "load_ipython_extension",
     "offline_charts",
     "scorecard_html",
@@ -27,8 +30,6 @@ __all__ = [
 
 #: Name of the altair renderer :func:`offline_charts` registers.
 OFFLINE_RENDERER = "xrec_offline"
-# How long a chart waits for the libraries (loaded by an earlier output) before saying so.
-_WAIT_MS = 10_000
 
 _STYLE = (
     "<style>.xrec-table{border-collapse:collapse;font-size:0.9em}"
@@ -105,8 +106,16 @@ def comparison_html(comparison: Any, *, alpha: float = 0.05) -> str:
     return f"{_STYLE}<div><b>{html.escape(comparison.title())}</b><table class='xrec-table'>{head}{''.join(rows)}</table></div>"
 
 
-def _offline_renderer(spec: dict, **_metadata: Any) -> dict[str, str]:
-    """Altair renderer: a div and a call to ``window.vegaEmbed``, which :func:`offline_charts` loaded."""
+_QUEUE = "xrecChartQueue"  # draw functions of charts that arrived before the libraries
+
+
+def chart_html(spec: dict) -> str:
+    """HTML that draws the Vega-Lite ``spec`` with the libraries :func:`offline_charts` put in the page.
+
+    The chart's div says what is missing until it is drawn; when the libraries are not there
+    yet, the draw call waits in a page-wide queue that the libraries' loader empties (so
+    charts above the loader's output, or drawn before it finished, still appear).
+    """
     import json
     import uuid
 
@@ -114,17 +123,52 @@ def _offline_renderer(spec: dict, **_metadata: Any) -> dict[str, str]:
     # "</" would end the <script> element early; "<\\/" reads the same inside JS strings.
     spec_js = json.dumps(spec).replace("</", "<\\/")
     options = json.dumps({"actions": {"export": True, "source": False, "compiled": False, "editor": False}})
-    missing = "Chart libraries not loaded: run xrec.notebook.offline_charts() earlier in this notebook."
+    waiting = "Chart waiting for its libraries: run the cell with xrec.notebook.offline_charts() (a trusted notebook draws it then)."
     script = (
         "(function(){"
         f"var el=document.getElementById('{div}');var spec={spec_js};var opt={options};"
-        "function draw(){window.vegaEmbed(el,spec,opt).catch(function(e){el.innerText=String(e);});}"
-        "if(window.vegaEmbed){draw();return;}"
-        f"var waited=0;var timer=setInterval(function(){{if(window.vegaEmbed){{clearInterval(timer);draw();}}"
-        f"else if((waited+=100)>{_WAIT_MS}){{clearInterval(timer);el.innerText={json.dumps(missing)};}}}},100);"
+        "function draw(){el.innerText='';window.vegaEmbed(el,spec,opt).catch(function(e){el.innerText=String(e);});}"
+        f"if(window.vegaEmbed){{draw();}}else{{(window.{_QUEUE}=window.{_QUEUE}||[]).push(draw);}}"
         "})();"
     )
-    return {"text/html": f'<div id="{div}"></div><script type="text/javascript">{script}</script>', "text/plain": "<altair chart>"}
+    return f'<div id="{div}" class="xrec-chart"><small>{html.escape(waiting)}</small></div><script type="text/javascript">{script}</script>'
+
+
+def _offline_renderer(spec: dict, **_metadata: Any) -> dict[str, str]:
+    """Altair renderer: :func:`chart_html` (the libraries come from :func:`offline_charts`)."""
+    return {"text/html": chart_html(spec), "text/plain": "<altair chart>"}
+
+
+@functools.lru_cache(maxsize=1)
+def libraries_html() -> str:
+    """One ``text/html`` output that loads Vega, Vega-Lite and Vega-Embed into the page, compressed.
+
+    The libraries (about 0.9 MB of script) are stored gzip-compressed and base64-encoded
+    (about 0.4 MB) and unpacked by the browser (``DecompressionStream``) into one script run
+    once per page; charts waiting in the queue are then drawn. Nothing is fetched.
+    """
+    import base64
+    import gzip
+
+    from xrec.notebook.html_page import vega_bundle
+
+    # Wrapped in a function so that running the loader twice cannot redeclare the bundle's
+    # top-level names; the bundle sets window.vegaEmbed / vega / vegaLite itself.
+    code = "(function(){" + vega_bundle() + "\n})();"
+    packed = base64.b64encode(gzip.compress(code.encode("utf-8"), 9, mtime=0)).decode("ascii")
+    note = "xrec: chart libraries loaded (offline, once for this notebook)."
+    script = (
+        "(function(){"
+        f"function drain(){{var q=window.{_QUEUE}||[];window.{_QUEUE}=[];q.forEach(function(f){{f();}});}}"
+        "if(window.vegaEmbed){drain();return;}"
+        "if(window.xrecChartsLoading){return;}window.xrecChartsLoading=true;"
+        f'var b=atob("{packed}");var a=new Uint8Array(b.length);for(var i=0;i<b.length;i++){{a[i]=b.charCodeAt(i);}}'
+        'new Response(new Blob([a]).stream().pipeThrough(new DecompressionStream("gzip"))).text().then(function(t){'
+        "var s=document.createElement('script');s.text=t;document.head.appendChild(s);window.xrecChartsLoading=false;drain();"
+        "}).catch(function(e){window.xrecChartsLoading=false;console.error('xrec chart libraries',e);});"
+        "})();"
+    )
+    return f'<script type="text/javascript">{script}</script><small>{note}</small>'
 
 
 def offline_charts(display_libraries: bool = True) -> None:
@@ -133,10 +177,11 @@ def offline_charts(display_libraries: bool = True) -> None:
     Altair's default notebook output fetches the Vega libraries from a CDN, which fails
     offline. This registers and enables an altair renderer (``"xrec_offline"``) whose outputs
     call the libraries already in the page, and displays one output that holds them
-    (Vega, Vega-Lite and Vega-Embed, about 0.9 MB, from ``vl-convert-python``). Call it once,
-    near the top of the notebook; charts drawn later in the page (including the weight
-    mixer's) find the libraries there. Front ends that run scripts in trusted HTML outputs
-    (Jupyter Notebook, JupyterLab) are supported.
+    (Vega, Vega-Lite and Vega-Embed from ``vl-convert-python``, gzip-compressed: about 0.4 MB
+    in the saved notebook, against 0.9 MB as plain script). Call it once, near the top of the
+    notebook; every chart drawn in the page (including the weight mixer's) uses that one copy,
+    and a chart that arrives first waits for it. Front ends that run scripts in trusted HTML
+    outputs (Jupyter Notebook, JupyterLab) are supported.
 
     Parameters
     ----------
@@ -146,14 +191,12 @@ def offline_charts(display_libraries: bool = True) -> None:
     """
     import altair as alt
 
-    from xrec.notebook.html_page import vega_bundle
-
     alt.renderers.register(OFFLINE_RENDERER, _offline_renderer)
     alt.renderers.enable(OFFLINE_RENDERER)
     if display_libraries:
         from IPython.display import HTML, display
 
-        display(HTML(f'<script type="text/javascript">{vega_bundle()}</script><small>xrec: chart libraries loaded (offline).</small>'))
+        display(HTML(libraries_html()))
 
 
 def _formatters(ipython: Any) -> Any:

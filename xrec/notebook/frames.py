@@ -11,10 +11,22 @@ import pandas as pd
 from xrec.errors import ConfigError, DataError
 from xrec.evaluate._stats import normal_interval
 
-__all__ = ["DIFFERENCE_COLUMNS", "SUMMARY_COLUMNS", "comparison_frame", "interval_frame", "summary_frame", "verdicts"]
+__all__ = ["DIFFERENCE_COLUMNS", "SUMMARY_COLUMNS", "comparison_frame", "interval_frame", "metric_label", "summary_frame", "verdicts"]
 
 SUMMARY_COLUMNS = ["scorer", "metric", "mean", "ci_low", "ci_high", "n_users"]
 DIFFERENCE_COLUMNS = ["candidate", "metric", "difference", "ci_low", "ci_high", "verdict"]
+
+# How each metric reads in titles, tables and tooltips (trade names; field names stay in the data).
+_METRIC_WORDS = {"hit_rate": "hit rate", "ndcg": "NDCG", "recall": "recall", "mrr": "MRR", "coverage": "coverage", "popularity": "popularity"}
+
+
+def metric_label(column: str) -> str:
+    """A ``"metric@K"`` column as people write it: ``"hit_rate@10"`` -> ``"hit rate@10"``, ``"ndcg@20"`` -> ``"NDCG@20"``.
+
+    Names it does not know come back unchanged.
+    """
+    name, at, k = str(column).partition("@")
+    return f"{_METRIC_WORDS.get(name, name)}{at}{k}"
 
 
 def _summary_rows(name: str, summary: pd.DataFrame) -> pd.DataFrame:
