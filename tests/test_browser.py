@@ -184,8 +184,7 @@ def test_export_button_writes_a_blend_file_that_loads(notebook, lab):
     for slider in page.locator(".widget-slider").all():
         name = slider.locator(".widget-label").inner_text().strip()
         weights[name] = float(slider.locator(".noUi-handle").first.get_attribute("aria-valuenow"))
-    target = lab.tmp / "from-the-browser" / "browser-blend.toml"
-    target.parent.mkdir(parents=True, exist_ok=True)
+    target = lab.tmp / "from-the-browser" / "browser-blend.toml"  # a folder the export creates
     box = page.locator(".widget-text").filter(has=page.locator(".widget-label", has_text="blend file")).locator("input")
     box.fill(str(target))
     box.press("Tab")
@@ -194,13 +193,14 @@ def test_export_button_writes_a_blend_file_that_loads(notebook, lab):
     while not target.exists() and time.monotonic() < deadline:
         time.sleep(0.2)
     assert target.exists(), "the export button wrote no file"
-    # Python's own TOML parser (tomllib, standard library) reads the same weights the sliders show.
+    # The mixer's status line names the file it wrote.
+    page.locator(".xrec-mixer").get_by_text(f"wrote {target}").first.wait_for(timeout=30_000)
+    # Python's own TOML parser (tomllib, standard library) reads the weights the sliders show
+    # (aria-valuenow), in the [sources.<name>] tables the blend file's schema documents.
     raw = tomllib.loads(target.read_text(encoding="utf-8"))
+    assert {n: t["weight"] for n, t in raw["sources"].items()} == pytest.approx(weights, abs=1e-9)
     spec = read_blend(target)
-    assert set(spec.sources) == set(weights)
-    for name, source in spec.sources.items():
-        assert source.weight == pytest.approx(weights[name], abs=1e-9), name
-    assert raw, "tomllib read an empty file"
+    assert {n: s.weight for n, s in spec.sources.items()} == pytest.approx(weights, abs=1e-9)
     # load_blend refits every source on the recreated fold and, when the file holds a rankings
     # check, recomputes it (raising on any difference).
     runtime = xrec.load_blend(target, load_demo_shop())
