@@ -35,6 +35,7 @@ CHROMIUM_ARGS = [
 ]  # fmt: skip
 
 # DOM hooks agreed between the notebook widgets and this test.
+MIXER = ".xrec-mixer"
 CHART = ".xrec-mixer-chart"
 GALLERY = ".xrec-gallery"
 EXPLORER = ".xrec-explorer"
@@ -393,8 +394,8 @@ def kernel_value(page: Any, expression: str, timeout: float = 30.0) -> str:
 
 
 def slider_handle(page: Any, name: str) -> Any:
-    """The keyboard-focusable handle of the ipywidgets slider labelled ``name``."""
-    slider = page.locator(".widget-slider").filter(has=page.locator(".widget-label").get_by_text(name, exact=True))
+    """The keyboard-focusable handle of the mixer's slider labelled ``name``."""
+    slider = page.locator(f"{MIXER} .widget-slider").filter(has=page.locator(".widget-label").get_by_text(name, exact=True))
     return slider.first.locator(".noUi-handle").first
 
 

@@ -32,6 +32,7 @@ from _jupyter_browser import (
     CHROMIUM,
     EXPLORER,
     GALLERY,
+    MIXER,
     LabServer,
     NotebookPage,
     cell_errors,
@@ -181,20 +182,21 @@ def test_export_button_writes_a_blend_file_that_loads(notebook, lab):
 
     page = notebook.page
     weights = {}
-    for slider in page.locator(".widget-slider").all():
+    mixer = page.locator(MIXER)
+    for slider in mixer.locator(".widget-slider").all():
         name = slider.locator(".widget-label").inner_text().strip()
         weights[name] = float(slider.locator(".noUi-handle").first.get_attribute("aria-valuenow"))
     target = lab.tmp / "from-the-browser" / "browser-blend.toml"  # a folder the export creates
-    box = page.locator(".widget-text").filter(has=page.locator(".widget-label", has_text="blend file")).locator("input")
+    box = mixer.locator(".widget-text").filter(has=page.locator(".widget-label", has_text="blend file")).locator("input")
     box.fill(str(target))
     box.press("Tab")
-    page.get_by_role("button", name="Export blend file").click()
+    mixer.get_by_role("button", name="Export blend file").click()
     deadline = time.monotonic() + 60
     while not target.exists() and time.monotonic() < deadline:
         time.sleep(0.2)
     assert target.exists(), "the export button wrote no file"
     # The mixer's status line names the file it wrote.
-    page.locator(".xrec-mixer").get_by_text(f"wrote {target}").first.wait_for(timeout=30_000)
+    mixer.get_by_text(f"wrote {target}").first.wait_for(timeout=30_000)
     # Python's own TOML parser (tomllib, standard library) reads the weights the sliders show
     # (aria-valuenow), in the [sources.<name>] tables the blend file's schema documents.
     raw = tomllib.loads(target.read_text(encoding="utf-8"))
