@@ -198,3 +198,31 @@ def test_recommend_unknown_user_error_or_popular_list(tmp_path, capsys):
     # The fallback list is the most-bought items (counted on the training rows, so compare loosely:
     # every listed item is among the catalogue's best sellers).
     assert len(recs) == 4 and all(counts[r["item"]] >= counts.iloc[9] for r in recs)
+
+
+def test_run_on_a_mixed_split_prints_known_and_new_parts(tmp_path, capsys):
+    spec = _write_files_spec(tmp_path)
+    text = spec.read_text(encoding="utf-8").replace('rule = "leave_last"', 'rule = "mixed_last"\nnew_share = 0.25')
+    text += '[blends.gated]\nsources = ["pop", "knn", "kind"]\nweights = "learn"\ngated = true\nobjective = "sides"\nmetric = "ndcg@5"\n'
+    spec.write_text(text, encoding="utf-8")
+    assert main(["run", str(spec), "-q"]) == 0
+    out = capsys.readouterr().out
+    assert "Known items and new items" in out and "new items (n=" in out and "gated band weights (objective" in out
+    assert main(["run", str(spec), "--json"]) == 0
+    payload = json.loads(capsys.readouterr().out)
+    from xrec.experiment import run_experiment
+    from xrec.spec import load_spec
+
+    result = run_experiment(load_spec(spec))
+    fold = result.split.test
+    # the parts by pandas: a user is on the new side when the held-out item has no training row
+    trained = set(fold.train["item_idx"])
+    side = fold.heldout.groupby("user_idx")["item_idx"].agg(lambda s: "new items" if not set(s) & trained else "known items")
+    assert payload["known_new"]["counts"] == side.value_counts().to_dict()
+    rows = pd.DataFrame(payload["known_new"]["rows"])
+    per_user = result.scorecards["knn"].per_user.set_index("user")["hit_rate@5"]
+    expected = per_user.groupby(side.reindex(per_user.index)).mean()  # pandas groupby of the per-user table
+    got = rows[(rows["scorer"] == "knn") & (rows["metric"] == "hit_rate@5")].set_index("part")["mean"]
+    assert got.to_dict() == pytest.approx(expected.to_dict())
+    assert set(payload["known_new"]["comparisons"]) == set(side.unique())
+    assert payload["learned"]["gated"]["bands"]["objective"] == "sides"

@@ -98,6 +98,14 @@ def test_known_and_new_items_are_reported_side_by_side(demo):
     payload = json.loads((out / "scorecards.json").read_text(encoding="utf-8"))
     assert payload["exported_blend"] == "gated blend" and payload["split"]["rule"] == "mixed_last"
     assert payload["gated"]["band_heldout"]["new"] == bands["band_heldout"]["new"]
+    # the two-sided objective was used, and its per-side validation scores are reported beside the references
+    assert bands["objective_used"] == "sides" and set(bands["side_scores"]) == {"known", "new"}
+    assert bands["side_reference"]["new"]["source"] in ("attributes", "text", "image")
+    assert bands["band_heldout"]["new"] == summary["validation_new"]["new_item_heldout_rows"] > summary["validation_new"]["new_items"] > 0
+    from xrec.demo import summary_text
+
+    text = summary_text(summary)
+    assert "learned on" in text and "distinct new items" in text and "both sides won" in text
 
 
 def test_blend_file_of_another_shop_records_its_folder(tmp_path, monkeypatch):
@@ -115,3 +123,18 @@ def test_blend_file_of_another_shop_records_its_folder(tmp_path, monkeypatch):
     spec = parse_spec({"data": hints, "sources": {"_": {"kind": "popularity"}}})
     with pytest.raises(XrecError, match="my-shop"):
         load_spec_dataset(spec)
+
+
+def test_demo_report_shows_a_gallery_of_chosen_shoppers(demo):
+    import re
+
+    out, _ = demo
+    html = (out / "report.html").read_text(encoding="utf-8")
+    assert "What the learned blend recommends" in html and "ties are broken by user id" in html
+    section = html[html.index('<div class="xrec-gallery-report">'):]
+    reasons = re.findall(r"<b>User [^<]+</b> · (biggest win|biggest loss|new-item case)", section)
+    # The mixed split holds many new-item shoppers, so all six places are filled.
+    assert reasons == ["biggest win"] * 2 + ["biggest loss"] * 2 + ["new-item case"] * 2
+    images = re.findall(r'<img src="([^"]*)"', section)
+    assert images and all(src.startswith("data:image/") for src in images)  # embedded, nothing fetched
+    assert 'class="xrec-contribution"' in section

@@ -56,3 +56,18 @@ def test_among_new_items_ranks_only_the_new_items():
     assert card.per_user["hit_rate@1"].tolist() == [0.0] and card.per_user["hit_rate@2"].tolist() == [1.0]
     plain = evaluate(scores, fold, users=np.array([1]), ks=(2,), metrics=("hit_rate",))
     assert plain.per_user["hit_rate@2"].tolist() == [0.0]
+
+
+def test_closing_note_names_the_side_not_won_and_why():
+    from xrec._demo_cold import EXPORTED, closing_note
+
+    def row(side, diff, lo, hi):
+        return {"side": side, "candidate": EXPORTED, "baseline": "b", "metric": "hit_rate@10", "candidate_mean": 0.1 + diff,
+                "baseline_mean": 0.1, "difference": diff, "ci_low": lo, "ci_high": hi, "n_users": 50}
+
+    won = closing_note([row("known", 0.02, 0.01, 0.03), row("new", 0.05, 0.02, 0.08)])
+    assert "both sides won" in won[0] and "not both" not in won[0]
+    lost = closing_note([row("known", -0.03, -0.05, -0.01), row("new", 0.05, 0.02, 0.08)])
+    assert "not both sides won" in lost[0] and "known side: NOT won, lost" in lost[1] and "new side: won" in lost[2]
+    tie = closing_note([row("known", 0.01, -0.01, 0.03), row("new", 0.05, 0.02, 0.08)])
+    assert "the CI includes 0" in tie[1]

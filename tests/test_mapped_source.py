@@ -111,3 +111,62 @@ def test_known_items_keep_their_als_factors_and_new_items_get_mapped_ones():
 def test_bad_settings_are_config_errors(setting, value):
     with pytest.raises(ConfigError, match=setting):
         make_source("mapped_factors", **{setting: value}).fit(_fold())
+
+
+def test_own_vectors_feed_the_map_alone_or_concatenated(tmp_path):
+    from sklearn.preprocessing import normalize as sk_normalize
+
+    fold = _fold()
+    rng = np.random.default_rng(3)
+    mine = rng.standard_normal((fold.n_items, 5)).astype(np.float32)
+    np.save(tmp_path / "mine.npy", mine)
+    (tmp_path / "ids.txt").write_text("\n".join(fold.catalog.item_ids.astype(str)), encoding="utf-8")
+    vectors = {"mine": {"path": str(tmp_path / "mine.npy"), "ids": str(tmp_path / "ids.txt")}}
+    als = {"factors": 6, "iterations": 5, "num_threads": 1}
+    both = make_source("mapped_factors", modalities=["attributes", "mine"], vectors=vectors, mapping="ridge", als=als).fit(fold)
+    attrs = make_source("mapped_factors", modalities=["attributes"], mapping="ridge", als=als).content_vectors(fold)
+    content = both.content_vectors(fold)
+    # the concatenation of the L2-normalized blocks (scikit-learn's normalize as the reference)
+    np.testing.assert_allclose(content, np.hstack([attrs, sk_normalize(mine)]), rtol=1e-5, atol=1e-6)
+    plain = make_source("als", **als).fit(fold)
+    new = both.new_items_
+    known = np.setdiff1d(np.arange(fold.n_items), new)
+    ref = Ridge(alpha=both.chosen["setting"]).fit(content[known], plain.item_factors_[known])  # scikit-learn's Ridge
+    np.testing.assert_allclose(both.item_factors_[new], ref.predict(content[new]), rtol=1e-3, atol=1e-5)
+    alone = make_source("mapped_factors", modalities=["mine"], vectors=vectors, als=als).fit(fold)
+    np.testing.assert_allclose(alone.content_vectors(fold), sk_normalize(mine), rtol=1e-5, atol=1e-6)
+    with pytest.raises(ConfigError, match="modalities"):
+        make_source("mapped_factors", modalities=["theirs"], vectors=vectors).fit(fold)
+
+
+def test_new_item_scale_chosen_by_the_two_sided_objective():
+    fold = _fold()
+    # half the users hold out a known item instead of a new one
+    held = fold.heldout.copy()
+    train = fold.train
+    for u in range(0, fold.n_users, 2):
+        held.loc[held["user_idx"] == u, "item_idx"] = int(train.loc[train["user_idx"] == u, "item_idx"].iloc[0])
+        train = train[~((train["user_idx"] == u) & (train["item_idx"] == held.loc[held["user_idx"] == u, "item_idx"].iloc[0]))]
+    fold = Fold(fold.catalog, fold.user_ids, train.reset_index(drop=True), held.reset_index(drop=True))
+    src = make_source("mapped_factors", modalities=["attributes"], mapping="ridge",
+                      als={"factors": 6, "iterations": 5, "num_threads": 1}).fit(fold)
+    scales = (0.5, 1.0, 3.0, 20.0)
+    best, table = choose_new_item_scale(src, fold, scales=scales, metric="hit_rate@10", objective="sides")
+    # reference: per-side means by a pandas groupby of each scale's per-user table, then the maximin by hand
+    from xrec.evaluate import evaluate
+
+    side = fold.heldout.assign(new=fold.item_train_counts[fold.heldout["item_idx"]] == 0).groupby("user_idx")["new"].any()
+    means = {}
+    for s in scales:
+        pu = evaluate(src.with_new_item_scale(s), fold, ks=(10,), metrics=("hit_rate",)).per_user.set_index("user")["hit_rate@10"]
+        means[s] = pu.groupby(side.reindex(pu.index)).mean()
+    frame = pd.DataFrame(means).T
+    expected = (frame / frame.max()).min(axis=1)
+    np.testing.assert_allclose(table["objective"].to_numpy(), expected.to_numpy())
+    assert best == expected.idxmax()
+    # the overall mean would flood the ranking with new items (the largest scale); the two-sided choice does not
+    overall = choose_new_item_scale(src, fold, scales=scales, metric="hit_rate@10")[0]
+    assert overall == scales[-1] and best != overall
+    assert table["known"].to_numpy() == pytest.approx(frame[False].to_numpy())
+    with pytest.raises(ConfigError, match="objective"):
+        choose_new_item_scale(src, fold, scales=scales, objective="both")

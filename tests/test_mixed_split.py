@@ -123,3 +123,37 @@ def test_mixed_settings_are_checked():
     again = split_dataset(ds, "mixed_last", new_share=0.2, seed=1)
     assert again.settings == split_dataset(ds, "mixed_last", new_share=0.2, seed=1).settings
     assert again.test.heldout.equals(split_dataset(ds, "mixed_last", new_share=0.2, seed=1).test.heldout)
+
+
+def _introduced_over_time(n_users=500, n_items=200, n_rows=8000, seed=0) -> Dataset:
+    """Item j is on sale from day 3j for 100 days, so the latest items are first seen after any late cutoff."""
+    rng = np.random.default_rng(seed)
+    item = rng.integers(0, n_items, n_rows)
+    day = item * 3 + rng.integers(0, 100, n_rows)
+    frame = pd.DataFrame({"user": [f"u{u}" for u in rng.integers(0, n_users, n_rows)], "item": [f"i{j}" for j in item],
+                          "timestamp": day * 86400.0 + rng.integers(0, 86400, n_rows)}).drop_duplicates(["user", "item"])
+    catalog = Catalog.from_ids([f"i{j}" for j in range(n_items)])
+    return Dataset(catalog, Interactions.from_frame(frame, catalog=catalog), name="introduced")
+
+
+def test_mixed_cutoff_validation_holds_new_items_in_the_test_proportion():
+    result = split_dataset(_introduced_over_time(), "mixed_cutoff", cutoff=0.8)
+    s = result.settings
+    valid, test = result.validation, result.test
+    # shares recomputed with pandas from the folds' rows: held-out rows on items absent from training
+    def share(fold):
+        train_items = set(fold.train["item_idx"])
+        return float((~fold.heldout["item_idx"].isin(train_items)).mean())
+
+    assert share(test) == pytest.approx(s["test_new_share_achieved"])
+    assert share(valid) == pytest.approx(s["validation_new_share_achieved"])
+    # the natural share after the inner cutoff is lower here, so items were added until it matched:
+    # at least the test share, overshooting by at most one item's held-out rows
+    assert s["validation_new_share_natural"] < s["test_new_share_achieved"]
+    assert s["validation_new_items_added_to_match"] > 0
+    most = valid.heldout["item_idx"].value_counts().max() / len(valid.heldout)
+    assert s["test_new_share_achieved"] <= share(valid) <= s["test_new_share_achieved"] + most
+    # no leakage: validation's new items have no row in its training part, and validation comes from test's training rows
+    new = set(valid.catalog.item_ids[valid.new_items].tolist())
+    assert new and not new & _items(valid, "train")
+    assert _items(valid, "heldout") <= _items(test, "train")

@@ -34,7 +34,7 @@ def data():
 def mixer(data, tmp_path):
     dataset, fold, sources = data
     return WeightMixer(
-        sources, fold, baseline="pop", ks=(10,), dataset=dataset, data_location={"dataset": "movielens"},
+        sources, fold, baseline="pop", ks=(10, 20), dataset=dataset, data_location={"dataset": "movielens"},
         export_path=tmp_path / "chosen.toml", sample_size=120, seed=1,
     )  # fmt: skip
 
@@ -68,6 +68,14 @@ def test_slow_steps_say_so_before_they_start(mixer):
     mixer.normalizer_menu.value = "zscore"  # prepared already: no message
     assert mixer.wait(timeout=60)
     assert not any("Preparing" in text for text, _ in said)
+    said.clear()
+    start = mixer.updates_
+    mixer.k_menu.value = 20  # a cut-off not drawn yet: its chart is built first (about a second)
+    assert mixer.wait(timeout=60)
+    assert "Drawing the K=20 chart" in said[0][0] and said[0][1] == start and "K 20" in mixer.status.value
+    said.clear()
+    mixer.pin_button.click()
+    assert "Pinning" in said[0][0] and said[0][1] == start + 1
 
 
 class _Cells(HTMLParser):

@@ -135,7 +135,7 @@ def test_captions_and_titles_are_escaped(tmp_path):
     tile = replace(tiles_for(cat, [0])[0], marks=("hit", "<odd>"), score=1.25, contributions={"a<b": 0.5, "text": -0.25})
     out = tile_html(tile)
     assert "<b>pin</b>" not in out and "&lt;b&gt;pin&lt;/b&gt; &amp; co" in out
-    assert "<odd>" not in out
+    assert "<odd>" not in out and "xrec-mark-other" in out
     parser = _Collect()
     parser.feed(out)
     # The parser gives the unescaped text back exactly (html.parser, standard library).
@@ -160,9 +160,10 @@ def test_text_tile_and_strip(tmp_path):
 
 def test_bar_lengths_share_one_scale_across_a_strip():
     tiles = [Tile(item="a", caption="a", contributions={"s": 1.0}), Tile(item="b", caption="b", contributions={"s": -0.5})]
-    widths = [float(w) for w in re.findall(r"width:([0-9.]+)px;height:4px;background:#0072B2", strip_html(tiles, size=80))]
-    # Half the width (40 px) stands for the strip's largest contribution, 1.0; -0.5 gets half of that.
-    assert widths == [40.0, 20.0]
+    spans = re.findall(r"#eee ([0-9.]+)px,#0072B2 ([0-9.]+)px ([0-9.]+)px", strip_html(tiles, size=80))
+    # Half the width (40 px) stands for the strip's largest contribution, 1.0, drawn right of the
+    # centre; -0.5 gets half of that, drawn left of it.
+    assert [tuple(map(float, s)) for s in spans] == [(40.0, 40.0, 80.0), (20.0, 20.0, 40.0)]
 
 
 def test_source_colours_are_stable_and_distinct():

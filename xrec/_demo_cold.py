@@ -16,7 +16,7 @@ from xrec.evaluate.compare import compare
 from xrec.evaluate.known_new import restrict
 from xrec.evaluate.scorecard import Scorecard
 
-__all__ = ["EXPORTED", "best_on", "parts_chart", "side_comparisons", "side_rows", "sides_text"]
+__all__ = ["EXPORTED", "best_on", "closing_note", "parts_chart", "side_comparisons", "side_rows", "sides_text"]
 
 #: The blend the demo writes to ``blend.toml`` and judges on both sides.
 EXPORTED = "gated blend"
@@ -85,6 +85,38 @@ def sides_text(rows: Sequence[dict], metric: str = "hit_rate@10") -> list[str]:
         lines.append(f"  [{r['side']}] {r['candidate']} vs {r['baseline']}: {r['candidate_mean']:.3f} vs {r['baseline_mean']:.3f}, "
                      f"{r['difference']:+.3f} [{r['ci_low']:+.3f}, {r['ci_high']:+.3f}] ({verdict}, n={r['n_users']})")
     return lines
+
+
+def _excludes_zero(r: dict) -> bool:
+    return r["ci_low"] > 0 or r["ci_high"] < 0
+
+
+def closing_note(rows: Sequence[dict], metric: str = "hit_rate@10") -> list[str]:
+    """Whether the exported blend won each side (paired 95% CI above zero), with the numbers.
+
+    A side not won is named with its difference and interval, and why: a loss (CI below
+    zero) is the price of the other side (new items shown to known-item users take top-10
+    places from known items, and the reverse), a tie (CI across zero) is too small to tell.
+    """
+    lines = []
+    won = {}
+    for side in ("known", "new"):
+        r = next((r for r in rows if r["side"] == side and r["candidate"] == EXPORTED and r["metric"] == metric), None)
+        if r is None:
+            continue
+        won[side] = r["ci_low"] > 0
+        numbers = (f"{r['candidate_mean']:.3f} vs {r['baseline']} {r['baseline_mean']:.3f}, {r['difference']:+.3f} "
+                   f"[{r['ci_low']:+.3f}, {r['ci_high']:+.3f}], n={r['n_users']}")
+        if won[side]:
+            lines.append(f"  {side} side: won ({numbers})")
+        elif _excludes_zero(r):
+            other = "new" if side == "known" else "known"
+            lines.append(f"  {side} side: NOT won, lost ({numbers}): the price of the {other} side, whose items take "
+                         f"top-10 places from {side} items in the one mixed ranking")
+        else:
+            lines.append(f"  {side} side: NOT won, no difference shown ({numbers}): the CI includes 0")
+    head = "both sides won" if won and all(won.values()) else "not both sides won"
+    return [f"The {EXPORTED} on {metric} (test split, paired 95% CI): {head}", *lines]
 
 
 def parts_chart(frame: pd.DataFrame, metric: str = "hit_rate@10"):

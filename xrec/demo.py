@@ -8,10 +8,14 @@ code doubles as a worked example of a full study:
    purchases are on new items; validation carved from training the same way);
 2. fit every source twice: on the validation fold's training rows (to choose weights)
    and on the test fold's training rows (to report); the mapped source's
-   ``new_item_scale`` is chosen on the validation split;
+   ``new_item_scale`` is chosen on the validation split by the two-sided objective (its
+   worse side, known-item or new-item users, relative to the best scale on that side);
 3. learn blend weights on the validation split (coordinate ascent, corners included),
-   then popularity-gated weights starting from them (the new-item band is learned on the
-   validation split's new items and reports their count);
+   then popularity-gated weights starting from them with the two-sided objective
+   (``objective="sides"``: the maximin gain over known-item and new-item validation users,
+   the known side against its best single source, the new side against its best content-only
+   source, as the comparisons below), so the new-item band is learned on the
+   validation split's new items (their count is reported) without the known side outvoting it;
 4. evaluate every single source, the learned blend, the gated blend and reciprocal rank
    fusion on the test split (full ranking) and compare them, paired, with the best single
    source (chosen on validation) and with popularity; then side by side on known-item and
@@ -53,8 +57,11 @@ DEMO_SOURCES: dict[str, tuple[str, dict[str, Any]]] = {
 CONTENT_SOURCES = ("attributes", "text", "image")
 #: The mixed protocol of the demo: leave-last, with this share of the held-out rows on new items.
 NEW_SHARE = 0.2
-#: Candidate ``new_item_scale`` of the mapped source, chosen on the validation split.
-MAPPED_SCALES = (1.0, 1.5, 2.0, 3.0, 4.0)
+#: Candidate ``new_item_scale`` of the mapped source, chosen on the validation split (two-sided objective).
+MAPPED_SCALES = (1.0, 1.5, 2.0, 3.0, 4.0, 6.0)
+#: What the gated search and the mapped source's scale maximize: the worse side's gain, known vs new items
+#: (:func:`xrec.blend.gating.learn_gated_weights`, ``objective="sides"``).
+OBJECTIVE = "sides"
 METRIC = "ndcg@10"
 KS = (10, 20)
 TASTE_SIGNAL = {"look": "image", "theme": "text", "spec": "attributes", "circle": "collaborative", "noise": "none"}
@@ -191,7 +198,8 @@ def run_demo(
         split = split_dataset(dataset, "mixed_last", validation=True, seed=seed, new_share=NEW_SHARE)
     with clock.step("fitting sources on the validation split (encodes images and text, cached)"):
         valid_sources = _fit_sources(split.validation, cache_dir, progress)
-        scale, scale_table = choose_new_item_scale(valid_sources["mapped"], split.validation, MAPPED_SCALES, metric=METRIC)
+        scale, scale_table = choose_new_item_scale(valid_sources["mapped"], split.validation, MAPPED_SCALES, metric=METRIC,
+                                                   objective=OBJECTIVE)
         valid_sources["mapped"] = valid_sources["mapped"].with_new_item_scale(scale)
     with clock.step("fitting sources on the test split"):
         test_sources = _fit_sources(split.test, cache_dir, progress)
@@ -204,6 +212,7 @@ def run_demo(
         learned = learn_weights(valid_engine, method="coordinate_ascent", seed=seed, test_fold=split.test, progress=progress,
                                 test_sources=test_sources, **options)
         gated = learn_gated_weights(valid_engine, start=learned.weights, seed=seed, test_engine=test_engine, progress=progress,
+                                    objective=OBJECTIVE, side_baselines={"new": list(CONTENT_SOURCES)},
                                     **({"n_restarts": 0, "max_sweeps": 2} if quick else {}))
         # which single source is best on known items, and which content source on new items: chosen on validation
         valid_parts = known_new_labels(split.validation)
@@ -233,7 +242,8 @@ def run_demo(
     with clock.step("writing scorecards, blend file and report"):
         study = {"parts": part_table, "sides": sides, "best_known": best_known, "best_content_new": best_content_new,
                  "mapped_scale": scale, "mapped_scales": scale_table, "mapped_choice": test_sources["mapped"].chosen,
-                 "part_counts": parts.value_counts().to_dict()}
+                 "part_counts": parts.value_counts().to_dict(),
+                 "validation_new": {k: split.settings[f"validation_{k}"] for k in ("new_items", "new_item_heldout_rows")}}
         paths = _write_outputs(
             out, dataset, split, cards, learned, gated, vs_best, vs_pop, tastes, study, gated_blend, best_single,
             dataset_load=_load_hints(shop),
@@ -334,6 +344,8 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
         "Known vs new items": parts_chart(study["parts"]),
         "Known-item and new-item comparisons (paired, 95% CI)": sides.round(4).to_html(index=False),
         f"Paired differences vs the best single source ({best_single})": comparison_chart(vs_best, [METRIC, "hit_rate@10"]),
+        f"What the learned blend recommends, next to {best_single}": _gallery_section(dataset, split.test, blend.sources, learned.weights,
+                                                                                     best_single, cards),
         "Learned blend weights": weight_profile(learned.weights, normalizers="zscore"),
         "Gated blend band weights": pd.DataFrame(gated.band_weights).round(3).to_html(),
         "Which signal finds which taste": _taste_chart(tastes, 10),
@@ -352,9 +364,20 @@ def _write_outputs(out, dataset, split, cards, learned, gated, vs_best, vs_pop, 
     return {"scorecards": scorecard_path, "blend": blend_path, "report": report_path, "bundle": bundle_path}
 
 
+def _gallery_section(dataset, fold, sources, weights, best_single, cards) -> str:
+    """Six shoppers' top 10 as thumbnails: the learned blend beside the best single source, with
+    each source's contribution; shoppers chosen by the rule the section states (wins, losses, new items)."""
+    from xrec.notebook.gallery import Gallery, report_gallery
+
+    gallery = Gallery(sources, fold, dataset=dataset, baseline=best_single, weights=weights, normalizer="zscore", k=10)
+    return report_gallery(gallery, cards["learned blend"], cards[best_single], metric=METRIC)
+
+
 def _band_details(gated) -> dict[str, Any]:
-    """Band weights' provenance: validation held-out purchases per band, learned and not learned bands."""
-    return {k: gated.details[k] for k in ("band_heldout", "learned_bands", "unlearned_bands", "min_band_heldout", "head_min")}
+    """Band weights' provenance: validation held-out purchases per band, learned and not learned bands, the objective."""
+    from xrec.blend.gating import band_provenance
+
+    return band_provenance(gated)
 
 
 def _summary(cards, learned, gated, vs_best, best_single, paths, clock, study) -> dict[str, Any]:
@@ -382,6 +405,7 @@ def _summary(cards, learned, gated, vs_best, best_single, paths, clock, study) -
         "sides": side_rows(study["sides"]),
         "gated_band_weights": gated.band_weights,
         "gated_bands": _band_details(gated),
+        "validation_new": study["validation_new"],
         "mapped_new_item_scale": study["mapped_scale"],
         "mapped_mapping": study["mapped_choice"],
         "seconds": {**{k: round(v, 2) for k, v in clock.steps.items()}, "total": round(clock.total, 2)},
@@ -403,14 +427,27 @@ def summary_text(summary: dict[str, Any]) -> str:
         lines.append("Hit rate@10 on known items | on new items (test split, mixed protocol):")
         for name, v in parts.items():
             lines.append(f"  {name:<14} {v.get('known items', float('nan')):.3f} | {v.get('new items', float('nan')):.3f}")
+        from xrec.blend.gating import band_weights_text
+
         bands = summary["gated_bands"]
-        lines.append(f"Gated blend bands learned on validation purchases {bands['learned_bands']}; "
-                     f"not learned (fewer than {bands['min_band_heldout']}): {bands['unlearned_bands'] or 'none'}")
+        vnew = summary["validation_new"]
+        lines.append(f"Gated blend band weights (objective {bands.get('objective_used', 'overall')}; validation purchases per band "
+                     f"{bands['band_heldout']}, a band needs {bands['min_band_heldout']} to be learned; the new band's "
+                     f"{vnew['new_item_heldout_rows']} purchases are on {vnew['new_items']} distinct new items):")
+        lines.extend(band_weights_text(summary["gated_band_weights"], bands))
+        if "side_scores" in bands:
+            refs = bands["side_reference"]
+            lines.append("  validation " + summary["metric"] + " per side: " + ", ".join(
+                f"{s} {bands['side_scores'][s]:.4f} vs {refs[s]['source']} alone {refs[s]['value']:.4f} (n={bands['side_users'][s]})"
+                for s in ("known", "new")))
         from xrec._demo_cold import sides_text
 
         lines.append(f"Known side vs {summary['best_single_known_items']}, new side vs {summary['best_content_new_items']} "
                      f"(chosen on validation), hit rate@10:")
         lines.extend(sides_text(summary["sides"]))
+        from xrec._demo_cold import closing_note
+
+        lines.extend(closing_note(summary["sides"]))
     lines.append("Wrote: " + ", ".join(summary["paths"].values()))
     lines.append(f"Total {summary['seconds']['total']:.1f} s")
     return "\n".join(lines)

@@ -327,7 +327,7 @@ def _build_blend(spec, table, sources, split, valid_sources, learned, name, prog
 
     from xrec._validation import parse_metric_column
     from xrec.blend.engine import BlendEngine
-    from xrec.blend.gating import GatedBlend, learn_gated_weights
+    from xrec.blend.gating import GatedBlend, band_provenance, learn_gated_weights
     from xrec.blend.learn import learn_weights
 
     if split.validation is None:
@@ -353,8 +353,11 @@ def _build_blend(spec, table, sources, split, valid_sources, learned, name, prog
               "best_single": result.best_single[0] if result.best_single else None,
               "best_single_validation": result.best_single[1] if result.best_single else None}
     if table.get("gated", False):
-        gated = learn_gated_weights(engine, start=result.weights, seed=seed, progress=progress)
-        record.update(band_weights=gated.band_weights, validation=gated.valid_score, head_min=int(gated.details["head_min"]))
+        objective = table.get("objective", "overall")
+        gated = learn_gated_weights(engine, start=result.weights, seed=seed, progress=progress, objective=objective,
+                                    side_baselines=table.get("side_baselines"))
+        record.update(band_weights=gated.band_weights, validation=gated.valid_score, head_min=int(gated.details["head_min"]),
+                      bands=band_provenance(gated))
         learned[name] = record
         return GatedBlend(chosen, gated.band_weights, normalizer, head_min=int(gated.details["head_min"])).fit(fold)
     learned[name] = record

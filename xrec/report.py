@@ -68,6 +68,14 @@ def format_experiment(result: ExperimentResult) -> str:
         gated = " (gated by item popularity; start weights shown)" if "band_weights" in rec else ""
         parts += ["", f"{name}: {rec['method']} on the validation split, {rec['metric']} = {rec['validation']:.4f} "
                   f"(best single source {rec['best_single']}: {rec['best_single_validation']:.4f}); weights {weights}{gated}"]
+        if "bands" in rec:
+            from xrec.blend.gating import band_weights_text
+
+            bands = rec["bands"]
+            used = bands.get("objective_used", "overall")
+            why = f" ({bands['reason']})" if "reason" in bands else ""
+            parts += [f"{name} band weights (objective {used}{why}):", *band_weights_text(rec["band_weights"], bands)]
+    parts += known_new_text(result)
     if result.comparison is not None:
         parts += ["", format_comparison(result.comparison, HEADLINE_METRICS), "(every metric's comparison: --json)"]
     if "segments" in result.extras:
@@ -84,6 +92,51 @@ def format_experiment(result: ExperimentResult) -> str:
         if "top_lists" in run:
             parts.append(run["top_lists"].describe())
     return "\n".join(parts)
+
+
+def known_new_parts(result: ExperimentResult) -> dict[str, Any] | None:
+    """Known-item and new-item results of a mixed split (``None`` for other splits).
+
+    Returns ``{"counts": {part: users}, "table": <per scorer, part and headline metric: mean and
+    bootstrap 95% CI>, "comparisons": {part: Comparison against the baseline on that part's users}}``
+    (comparisons only when the spec has a baseline). Parts: see
+    :func:`xrec.evaluate.known_new.known_new_labels`.
+    """
+    if not str(result.split.settings.get("rule", "")).startswith("mixed"):
+        return None
+    from xrec.evaluate import compare
+    from xrec.evaluate.known_new import known_new_labels, known_new_table, restrict
+
+    k = min(result.spec.ks)
+    metrics = tuple(f"{m}@{k}" for m in HEADLINE_METRICS)
+    cards = {n: c for n, c in result.scorecards.items() if all(m in c.per_user for m in metrics)}
+    labels = known_new_labels(result.split.test)
+    seed = int(result.spec.evaluate.get("seed", 0))
+    out: dict[str, Any] = {"counts": {str(p): int(n) for p, n in labels.value_counts().items()},
+                           "table": known_new_table(cards, labels, metrics, seed=seed), "comparisons": {}}
+    base = result.comparison.baseline if result.comparison is not None else None
+    if base in cards and len(cards) > 1:
+        for part in out["counts"]:
+            users = labels.index[labels == part].to_numpy()
+            others = [restrict(c, users, part) for n, c in cards.items() if n != base]
+            out["comparisons"][part] = compare(restrict(cards[base], users, part), *others, metrics=list(metrics), seed=seed)
+    return out
+
+
+def known_new_text(result: ExperimentResult, parts: dict[str, Any] | None = None) -> list[str]:
+    """Lines for :func:`format_experiment`: every scorer on known-item and new-item users, and the
+    paired differences against the baseline on each part (mixed splits only)."""
+    parts = known_new_parts(result) if parts is None else parts
+    if parts is None:
+        return []
+    lines = ["", "Known items and new items (mixed split; users by what they hold out; mean [95% bootstrap CI]):"]
+    t = parts["table"]
+    for metric, block in t.groupby("metric", sort=False):
+        cells = {(r["scorer"], f"{r['part']} (n={r['n_users']})"): _fmt(r["mean"], r["ci_low"], r["ci_high"]) for _, r in block.iterrows()}
+        lines += [f"{metric}:", pd.Series(cells).unstack().loc[block["scorer"].unique()].to_string()]
+    for part, comparison in parts["comparisons"].items():
+        lines += ["", format_comparison(comparison)]
+    return lines
 
 
 def format_segments(table: pd.DataFrame, metric: str) -> str:
@@ -186,6 +239,11 @@ def experiment_payload(result: ExperimentResult) -> dict[str, Any]:
         out["comparison"] = result.comparison.to_dict()
     if result.extras.get("learned"):
         out["learned"] = result.extras["learned"]
+    parts = known_new_parts(result)
+    if parts is not None:
+        # users per part, every scorer's headline metrics per part, and per-part comparisons with the baseline
+        out["known_new"] = {"counts": parts["counts"], "rows": parts["table"].to_dict(orient="records"),
+                            "comparisons": {p: c.to_dict() for p, c in parts["comparisons"].items()}}
     if "segments" in result.extras:
         # One row per (breakdown, segment, metric, scorer); small segments have no interval (null).
         rows = result.extras["segments"].astype(object).where(result.extras["segments"].notna(), None)

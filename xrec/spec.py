@@ -45,6 +45,9 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     method = "coordinate_ascent" # coordinate_ascent | optuna | logistic
     metric = "ndcg@10"
     # gated = true               # separate weights for new / tail / head items
+    # objective = "sides"        # gated only: "overall" (default) | "sides" (do well on known
+    #                            # AND new items: maximin gain over each side's best source)
+    # side_baselines = { new = ["attributes", "text"] }  # sides only: a side's reference sources
 
     [blends.rrf]                 # a tuning-free fusion rule
     fusion = "rrf"               # rrf (k = 60) | combsum | combmnz (depth = 100)
@@ -109,8 +112,9 @@ _EVAL_KEYS = {
     "ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size",
     "scheduler", "workers", "shard_size", "overlap", "pairs",
 }
-_BLEND_KEYS = {"weights", "normalizer", "sources", "method", "metric", "gated", "fusion", "k", "depth", "seed"}
+_BLEND_KEYS = {"weights", "normalizer", "sources", "method", "metric", "gated", "objective", "side_baselines", "fusion", "k", "depth", "seed"}
 _LEARN_METHODS = ("coordinate_ascent", "optuna", "logistic")
+_OBJECTIVES = ("overall", "sides")  # xrec.blend.gating.OBJECTIVES
 _FUSIONS = ("rrf", "combsum", "combmnz")
 _TOP_KEYS = {"data", "split", "evaluate", "sources", "blends", "name"}
 
@@ -205,11 +209,25 @@ def _check_blend(table: dict, where: str, sources: dict, *, learning_allowed: bo
                 raise ConfigError(f"{where}.weights.{src}: no source of that name; sources: {sorted(sources)}")
             if not isinstance(w, (int, float)) or isinstance(w, bool):
                 raise ConfigError(f"{where}.weights.{src}: must be a number, got {w!r}")
-        for key in ("method", "metric", "gated", "seed"):
+        for key in ("method", "metric", "gated", "objective", "side_baselines", "seed"):
             if key in table:
                 raise ConfigError(f"{where}.{key}: only for learned weights (weights = \"learn\")")
     if "gated" in table and not isinstance(table["gated"], bool):
         raise ConfigError(f"{where}.gated: must be true or false, got {table['gated']!r}")
+    if "objective" in table:
+        if not table.get("gated", False):
+            raise ConfigError(f"{where}.objective: only for gated blends (gated = true)")
+        if table["objective"] not in _OBJECTIVES:
+            raise ConfigError(f"{where}.objective: must be one of {list(_OBJECTIVES)}, got {table['objective']!r}")
+    if "side_baselines" in table:
+        given = table["side_baselines"]
+        if table.get("objective") != "sides":
+            raise ConfigError(f"{where}.side_baselines: only with objective = \"sides\"")
+        if not isinstance(given, dict) or any(k not in ("known", "new") for k in given):
+            raise ConfigError(f"{where}.side_baselines: a table with keys 'known' and/or 'new', got {given!r}")
+        for side, names in given.items():
+            if not isinstance(names, list) or not names or any(n not in sources for n in names):
+                raise ConfigError(f"{where}.side_baselines.{side}: a non-empty list of source names; sources: {sorted(sources)}")
     if not isinstance(table.get("metric", ""), str):
         raise ConfigError(f"{where}.metric: must be a string such as 'ndcg@10', got {table['metric']!r}")
     _check_int(table, "seed", 0, where)

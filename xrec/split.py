@@ -123,7 +123,13 @@ def split_dataset(
         - ``"mixed_cutoff"`` (mixed protocol, known and new items held out together): one global
           cutoff as for ``"time_cutoff"``; items first seen at or after it are *new*: they never
           appear in training. Held-out users without training rows are *cold users*, handled
-          by ``cold_users`` (never dropped silently).
+          by ``cold_users`` (never dropped silently). The validation fold is carved at the
+          same share of rows; where its rows after the cutoff hold fewer new-item rows than the
+          test split's share, the most recently introduced of its held-out items are made new
+          too (as for ``"mixed_last"``) until the shares match, so the weights learned on
+          validation see new items in the proportion the test split holds
+          (``validation_new_share_natural``, ``validation_new_items_added_to_match``). Where the
+          natural share is already higher, it is kept (at least the test share, never fewer).
         - ``"mixed_last"`` (mixed protocol, leave-last variant): each user's latest interaction
           is held out as for ``"leave_last"``; then the most recently introduced items among
           the held-out ones (latest first interaction first; ties in seeded random order) are
@@ -222,6 +228,8 @@ def split_dataset(
     val_fold = None
     if validation:
         share = info.get("share_before_cutoff")
+        if rule == "mixed_cutoff":  # validation holds new items in the test split's proportion
+            mixed = {**mixed, "match_share": info["new_share_achieved"]}
         inner, val_held, vinfo = _apply(
             rule, train, len(user_ids), val_seed, test_fraction, share if rule in ("time_cutoff", "mixed_cutoff") else cutoff,
             cold_fraction, min_train, "validation", mixed,
@@ -392,28 +400,54 @@ def _leave_last_mask(rows: _Rows, n_users: int, min_train: int) -> np.ndarray:
     return last & (counts[rows.user] > min_train)
 
 
-def _apply_mixed(rule, rows: _Rows, n_users, seed, fraction, cutoff, min_train, part, *, new_share, cold_users):
-    """The mixed protocol: held-out rows on known and new items together (see :func:`split_dataset`)."""
+def _newest_until(rows: _Rows, held: np.ndarray, eligible: np.ndarray, share: float, seed: int, part: str, what: str) -> np.ndarray:
+    """Item mask: the most recently introduced held-out items among ``eligible`` ones (latest first
+    interaction first; ties in seeded random order), taken until their held-out rows, together with
+    those already on new items (``held & ~eligible[item]``), are at least ``share`` of ``held``."""
+    first_seen = np.full(len(eligible), np.inf)
+    np.minimum.at(first_seen, rows.item, rows.time)
+    already = int((held & ~eligible[rows.item]).sum())
+    need = share * held.sum() - already
+    new = np.zeros(len(eligible), dtype=bool)
+    if need <= 0:
+        return new
+    candidates = np.unique(rows.item[held & eligible[rows.item]])
+    per_item = np.bincount(rows.item[held], minlength=len(first_seen))[candidates]
+    # newest first; equal first-seen times in seeded random order
+    order = np.lexsort((np.random.default_rng(seed).random(len(candidates)), -first_seen[candidates]))
+    reached = np.cumsum(per_item[order]) >= need
+    n_new = int(np.argmax(reached)) + 1 if reached.any() else len(candidates)
+    if n_new >= len(candidates):
+        raise ConfigError(f"{what} would make every held-out item of the {part} split new")
+    new[candidates[order[:n_new]]] = True
+    return new
+
+
+def _apply_mixed(rule, rows: _Rows, n_users, seed, fraction, cutoff, min_train, part, *, new_share, cold_users, match_share=None):
+    """The mixed protocol: held-out rows on known and new items together (see :func:`split_dataset`).
+
+    ``match_share`` (``"mixed_cutoff"`` validation): when the rows after the cutoff hold a
+    smaller share on new items than this (the test split's), the most recently introduced
+    known held-out items are made new too, until the share is matched.
+    """
     info: dict = {}
+    n_slots = int(rows.item.max()) + 1
     removed = np.zeros(len(rows), dtype=bool)  # rows of new items that are not held out
     if rule == "mixed_cutoff":
         held = _cutoff_mask(rows, cutoff, fraction, info)
+        if match_share is not None and held.any():
+            natural = np.zeros(n_slots, dtype=bool)  # items with no row before the cutoff
+            natural[np.unique(rows.item[held])] = True
+            natural[rows.item[~held]] = False
+            info["new_share_natural"] = float(natural[rows.item[held]].mean())
+            extra = _newest_until(rows, held, ~natural, match_share, seed, part, f"matching the test split's new share {match_share:.3f}")
+            removed = extra[rows.item] & ~held
+            info["new_items_added_to_match"] = int(extra.sum())
     else:
         held = _leave_last_mask(rows, n_users, min_train)
         if not held.any():
             raise ConfigError(f"the {part} split holds out no rows (rule='mixed_last', min_train={min_train})")
-        first_seen = np.full(int(rows.item.max()) + 1, np.inf)
-        np.minimum.at(first_seen, rows.item, rows.time)
-        candidates = np.unique(rows.item[held])
-        per_item = np.bincount(rows.item[held], minlength=len(first_seen))[candidates]
-        # newest first; equal first-seen times in seeded random order
-        order = np.lexsort((np.random.default_rng(seed).random(len(candidates)), -first_seen[candidates]))
-        reached = np.cumsum(per_item[order]) >= new_share * held.sum()
-        n_new = int(np.argmax(reached)) + 1
-        if n_new >= len(candidates):
-            raise ConfigError(f"new_share={new_share} would make every held-out item of the {part} split new")
-        new = np.zeros(len(first_seen), dtype=bool)
-        new[candidates[order[:n_new]]] = True
+        new = _newest_until(rows, held, np.ones(n_slots, dtype=bool), new_share, seed, part, f"new_share={new_share}")
         removed = new[rows.item] & ~held
     in_train = ~held & ~removed
     has_train = np.bincount(rows.user[in_train], minlength=n_users) > 0
@@ -421,7 +455,7 @@ def _apply_mixed(rule, rows: _Rows, n_users, seed, fraction, cutoff, min_train, 
     train = rows.take(in_train)
     keep = held & ~cold if cold_users == "drop" else held
     kept = rows.take(keep)
-    seen = np.zeros(max(int(rows.item.max()) + 1, 1), dtype=bool)
+    seen = np.zeros(max(n_slots, 1), dtype=bool)
     seen[train.item] = True
     is_new = ~seen[kept.item]
     info.update({

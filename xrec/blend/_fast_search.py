@@ -101,7 +101,7 @@ class HalvingAscent:
 
     def __init__(self, engine: Any, to_weights: Callable, moves: Sequence[tuple[str, np.ndarray | None]], labels: Sequence[str], *,
                  grid: Sequence[float], refine: int, max_sweeps: int, tol: float, stop_z: float, min_users: int,
-                 sample: bool, seed: int, progress: bool, desc: str) -> None:
+                 sample: bool, seed: int, progress: bool, desc: str, objective: Callable | None = None) -> None:
         grid = sorted({float(g) for g in grid})
         if not grid or grid[0] < 0 or grid[-1] > 1:
             raise ConfigError(f"grid: shares must lie in [0, 1], got {grid}")
@@ -113,6 +113,8 @@ class HalvingAscent:
         self.engine, self.to_weights, self.moves, self.labels = engine, to_weights, list(moves), list(labels)
         self.grid, self.refine, self.max_sweeps, self.tol = grid, int(refine), int(max_sweeps), float(tol)
         self.stop_z, self.seed = float(stop_z), int(seed)
+        # objective(evaluator, per-user values) -> score per row of values; default the weighted mean
+        self.objective = objective or (lambda ev, values: ev.mean(values))
         self.rows: list[dict] = []
         self.bar = tqdm(desc=desc, unit="line", disable=not progress)
         n = len(engine.users_)
@@ -132,7 +134,7 @@ class HalvingAscent:
 
     def point(self, ev: LineEvaluator, v: np.ndarray, phase: str) -> np.ndarray:
         values = ev.point(self.to_weights(v))
-        self._record(v, float(ev.mean(values)), phase, len(ev.rows))
+        self._record(v, float(self.objective(ev, values)), phase, len(ev.rows))
         return values
 
     def _line(self, ev: LineEvaluator, v: np.ndarray, c: int, phase: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -164,7 +166,7 @@ class HalvingAscent:
 
         shares = list(self.grid)
         values = evaluate(shares)
-        scores = ev.mean(values)
+        scores = self.objective(ev, values)
         for _level in range(self.refine):
             k = _best_plateau(scores, self.tol)
             lo = shares[k - 1] if k > 0 else shares[k]
@@ -175,7 +177,7 @@ class HalvingAscent:
             new_values = evaluate(new)
             shares += new
             values = np.vstack([values, new_values])
-            scores = np.concatenate([scores, ev.mean(new_values)])
+            scores = np.concatenate([scores, self.objective(ev, new_values)])
             order = np.argsort(shares, kind="stable")
             shares = [shares[i] for i in order]
             values, scores = values[order], scores[order]
@@ -197,7 +199,7 @@ class HalvingAscent:
         """Sweeps of line searches from ``v`` on one user set; ``(v, score, per-user values)``."""
         v = v / v.sum()
         values = self.point(ev, v, phase)
-        score = float(ev.mean(values))
+        score = float(self.objective(ev, values))
         for _ in range(self.max_sweeps):
             start_values, start_score, improved = values, score, False
             for c in rng.permutation(coords) if len(coords) > 1 else coords:
@@ -230,7 +232,7 @@ class HalvingAscent:
             if i > 0:
                 last = i == len(self.sizes) - 1
                 keep = 1 if last else max(1, math.ceil(len(alive) / 2))
-                ranked = sorted(alive, key=lambda item: (-float(ev.mean(self.point(ev, item[1], "screen"))), item[0]))
+                ranked = sorted(alive, key=lambda item: (-float(self.objective(ev, self.point(ev, item[1], "screen"))), item[0]))
                 alive = ranked[:keep]
             plan.append({"users": len(ev.rows), "starts": [r for r, _ in alive]})
             finals = []
@@ -333,25 +335,29 @@ def gated_climb(
     sample: bool = True,
     min_users: int = 300,
     stop_z: float = 2.0,
+    objective: Callable | None = None,
 ) -> tuple[np.ndarray, float, float, Any, dict]:
     """The fast search behind :func:`xrec.blend.gating.learn_gated_weights`.
 
     ``starts[0]`` is the ungated start; it is scored on all users and kept when no climb
-    beats it there. Returns ``(v, score, start score, history, details)`` with ``v`` on the simplex.
+    beats it there. ``objective(evaluator, per-user values)`` replaces the weighted mean as
+    what is maximized (e.g. :class:`xrec.blend._sides.SideObjective`). Returns
+    ``(v, score, start score, history, details)`` with ``v`` on the simplex and the scores
+    in the objective's units.
     """
     search = HalvingAscent(
         engine, to_weights, moves, labels, grid=grid, refine=refine, max_sweeps=max_sweeps, tol=1e-12, stop_z=stop_z,
-        min_users=min_users, sample=sample, seed=seed, progress=progress, desc="gated coordinate ascent",
+        min_users=min_users, sample=sample, seed=seed, progress=progress, desc="gated coordinate ascent", objective=objective,
     )
     first = np.asarray(starts[0], dtype=np.float64)
     first = first / first.sum()
-    start_score = float(search.full.mean(search.point(search.full, first, "ungated start")))
+    start_score = float(search.objective(search.full, search.point(search.full, first, "ungated start")))
     finals, plan = search.run(starts, coords)
     score, _, v = max(finals, key=lambda t: (t[0], -t[1]))
     if score < start_score:
         v = first
     v = v / v.sum()
-    score = float(search.full.mean(search.full.point(to_weights(v))))
+    score = float(search.objective(search.full, search.full.point(to_weights(v))))
     return v, score, start_score, _history(search.rows), plan
 
 

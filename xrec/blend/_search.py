@@ -43,8 +43,11 @@ class Tracker:
     engine's weights; ``labels`` name its coordinates in the history.
     """
 
-    def __init__(self, engine: BlendEngine, progress: bool, desc: str, *, to_weights: Any = None, labels: Sequence[str] | None = None) -> None:
+    def __init__(self, engine: BlendEngine, progress: bool, desc: str, *, to_weights: Any = None, labels: Sequence[str] | None = None,
+                 objective: Any = None) -> None:
         self.engine = engine
+        # objective(engine weights) -> float; default the engine's main metric
+        self.objective = objective or engine.score
         self.labels = list(labels) if labels is not None else list(engine.names_)
         self.to_weights = to_weights or (lambda w: dict(zip(engine.names_, w.tolist(), strict=True)))
         self.rows: list[dict] = []
@@ -56,7 +59,7 @@ class Tracker:
         key = tuple(np.round(w, 12))
         if key in self.cache:
             return self.cache[key]
-        score = float(self.engine.score(self.to_weights(w)))
+        score = float(self.objective(self.to_weights(w)))
         self.cache[key] = score
         self.rows.append({**dict(zip(self.labels, w.tolist(), strict=True)), "score": score, "phase": phase})
         self.bar.update()

@@ -35,12 +35,13 @@ import pandas as pd
 
 from xrec._validation import check_int, check_number
 from xrec.blend._base import check_sources
+from xrec.blend._sides import OBJECTIVES, SideObjective, check_objective
 from xrec.blend._search import DEFAULT_GRID, LearnResult, Tracker, ascend, coordinate_ascent, simplex
 from xrec.blend.blend import Blend, check_normalizers, check_one_per_source, check_weight
 from xrec.errors import ConfigError
 from xrec.fold import Fold
 
-__all__ = ["BANDS", "GatedBlend", "PopularityBands", "learn_gated_weights"]
+__all__ = ["BANDS", "OBJECTIVES", "GatedBlend", "PopularityBands", "band_provenance", "band_weights_text", "learn_gated_weights"]
 
 #: Band names, in order of their index in :meth:`PopularityBands.assign`.
 BANDS: tuple[str, ...] = ("new", "tail", "head")
@@ -222,6 +223,30 @@ class GatedBlend(Blend):
         return f"GatedBlend({parts})"
 
 
+_PROVENANCE = ("band_heldout", "learned_bands", "unlearned_bands", "min_band_heldout", "head_min", "objective", "objective_used",
+               "reason", "side_users", "side_reference", "side_scores", "objective_value")
+
+
+def band_provenance(result: LearnResult) -> dict[str, Any]:
+    """Where a gated result's weights come from: validation held-out rows per band, learned and
+    not learned bands (with counts), the objective used and, for ``"sides"``, its side sizes,
+    references and scores. Plain values, ready for JSON."""
+    return {k: result.details[k] for k in _PROVENANCE if k in result.details}
+
+
+def band_weights_text(band_weights: Mapping[str, Mapping[str, float]], provenance: Mapping[str, Any]) -> list[str]:
+    """One line per band: its weights, and the validation rows it was learned on or
+    ``not learned (n=..)`` when it had fewer than ``min_band_heldout``."""
+    lines = []
+    for band in BANDS:
+        n = provenance["band_heldout"][band]
+        how = f"learned on {n} validation rows" if band in provenance["learned_bands"] else \
+            f"not learned (n={n} < {provenance['min_band_heldout']}): start weights"
+        weights = ", ".join(f"{s}={w:.3f}" for s, w in band_weights[band].items())
+        lines.append(f"  {band:<5} {how}: {weights}")
+    return lines
+
+
 def _flat_to_band_weights(v: np.ndarray, names: Sequence[str]) -> dict[str, dict[str, float]]:
     table = np.asarray(v, dtype=np.float64).reshape(len(BANDS), len(names))
     return {b: dict(zip(names, table[i].tolist(), strict=True)) for i, b in enumerate(BANDS)}
@@ -242,6 +267,8 @@ def learn_gated_weights(
     progress: bool = False,
     search: str = "fast",
     min_band_heldout: int = 20,
+    objective: str = "overall",
+    side_baselines: Mapping[str, Sequence[str]] | None = None,
     **fast_options: Any,
 ) -> Any:
     """Learn band × source weights jointly by coordinate ascent on the validation metric.
@@ -269,6 +296,19 @@ def learn_gated_weights(
         reported in ``details["unlearned_bands"]`` with its count, never silently. On a
         leave-last validation split the new band is usually empty; on a mixed split
         (``split_dataset(..., "mixed_last")``) it holds ``new_share`` of the rows.
+    objective
+        What the search maximizes. ``"overall"``: the metric's mean over all validation
+        users (every user counts once, so on a mixed split the known-item users, usually
+        most of them, decide the weights). ``"sides"``: the maximin relative gain over the
+        two sides of a mixed split, known-item users and new-item users, each measured
+        against the best single source on that side (:mod:`xrec.blend._sides`), so one
+        blend is chosen to do well on both; every user still ranks the whole catalog. Falls
+        back to ``"overall"`` (reported in ``details["objective_used"]`` with the reason)
+        when a side has fewer than ``min_band_heldout`` validation users.
+    side_baselines
+        ``objective="sides"`` only: the sources each side's reference is chosen among, e.g.
+        ``{"new": ["attributes", "text", "image"]}`` to judge the new side against the best
+        content-only source; a side not named uses every source.
     **fast_options
         ``sample``, ``min_users``, ``stop_z`` of the fast search.
     test_engine
@@ -282,6 +322,10 @@ def learn_gated_weights(
         ``details["learned_bands"]`` and ``details["unlearned_bands"]`` (band -> count);
         ``best_single`` holds ``("ungated start", its validation score)`` and
         ``best_single_test`` its test score, so the gain of gating shows on both folds.
+        ``valid_score`` is always the overall metric; with ``objective="sides"``,
+        ``details`` also hold ``objective_value`` (``J``, start and chosen),
+        ``side_users``, ``side_reference`` and ``side_scores`` (the chosen blend's metric
+        per side on validation).
     """
     names = list(engine.names_)
     n_src = len(names)
@@ -298,6 +342,11 @@ def learn_gated_weights(
 
     if search not in ("fast", "exhaustive"):
         raise ConfigError(f"search must be 'fast' or 'exhaustive', got {search!r}")
+    sides, side_details = None, {}
+    if check_objective(objective) == "sides":
+        sides, side_details = SideObjective.build(engine, int(min_band_heldout), side_baselines)
+    elif side_baselines is not None:
+        raise ConfigError("side_baselines: only with objective='sides'")
     if start is None:
         base = coordinate_ascent(engine, n_restarts=1, seed=seed, progress=progress, search=search, **fast_options)
         start_w = np.array([base.weights[n] for n in names])
@@ -316,24 +365,27 @@ def learn_gated_weights(
         "band_heldout": {b: int(held_per_band[i]) for i, b in enumerate(BANDS)}, "min_band_heldout": int(min_band_heldout),
         "learned_bands": {b: int(held_per_band[i]) for i, b in enumerate(BANDS) if present[i]},
         "unlearned_bands": {b: int(held_per_band[i]) for i, b in enumerate(BANDS) if not present[i]},
+        "objective": objective, "objective_used": "sides" if sides is not None else "overall", **side_details,
     }  # fmt: skip
+    judge = sides if sides is not None else engine.score
     if search == "fast":
         from xrec.blend._fast_search import gated_climb
 
         moves = [(names[i % n_src], item_band == i // n_src) for i in range(len(labels))]
         v, score, start_score, history, plan = gated_climb(
             engine, to_weights, moves, labels, starts, coords, grid=DEFAULT_GRID if grid is None else grid, refine=refine,
-            max_sweeps=max_sweeps, seed=seed, progress=progress, **fast_options,
+            max_sweeps=max_sweeps, seed=seed, progress=progress, objective=sides.of_values if sides is not None else None,
+            **fast_options,
         )
         details.update(plan)
         # the engine's own sum order, so the reported score is exactly what a re-evaluation gives
-        score = float(engine.score(to_weights(np.asarray(v))))
+        score = float(judge(to_weights(np.asarray(v))))
         if score < start_score:  # only by rounding: keep the start
             v, score = simplex(first), start_score
     else:
         if fast_options:
             raise ConfigError(f"options {sorted(fast_options)} apply to search='fast' only")
-        track = Tracker(engine, progress, "gated coordinate ascent", to_weights=to_weights, labels=labels)
+        track = Tracker(engine, progress, "gated coordinate ascent", to_weights=to_weights, labels=labels, objective=sides)
         start_score = track(first, "ungated start")
         finals = ascend(track, starts, coords, DEFAULT_GRID if grid is None else grid, refine, max_sweeps, 1e-12, rng)
         best = max(finals, key=lambda t: (t[0], -t[1]))
@@ -341,6 +393,11 @@ def learn_gated_weights(
         if score < start_score:
             v, score = simplex(first), start_score
         history = track.history()
+    if sides is not None:
+        details["objective_value"] = {"start": float(start_score), "chosen": float(score)}
+        details["side_scores"] = sides.per_side(to_weights(np.asarray(v)))
+        score = float(engine.score(to_weights(np.asarray(v))))
+        start_score = float(engine.score(to_weights(np.asarray(first))))
     result = LearnResult(
         method="gated_coordinate_ascent",
         metric=engine.metric,

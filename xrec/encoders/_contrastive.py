@@ -20,12 +20,12 @@ import numpy as np
 from xrec._files import write_bytes_atomic
 from xrec._validation import check_choice, check_int, check_number
 from xrec.encoders._bridge_base import Bridge, as_matrix, paired_rows
-from xrec.errors import DataError
+from xrec.errors import ConfigError, DataError
 
 __all__ = ["ContrastiveBridge", "symmetric_info_nce"]
 
 # bump when the training changes, so that cached heads of the old training are not reused
-_VERSION = 1
+_VERSION = 2
 _STATE = ("x_mean_", "y_mean_", "x_axes_", "image_head_", "text_head_")
 
 
@@ -52,10 +52,14 @@ class ContrastiveBridge(Bridge):
     """Linear heads on frozen image features and text vectors, trained with symmetric InfoNCE.
 
     Both sides are centred on the training pairs' mean; the image side is optionally
-    reduced to its top principal axes first. The heads are trained full-batch with
-    AdamW on a seeded share of the pairs; the rest (``val_fraction``) picks the step
-    whose held-out loss is lowest (early stopping: with a few hundred pairs the heads
-    overfit within tens of steps). Training is seeded and deterministic; the fitted
+    reduced to its top principal axes first. By default the image head is the ridge
+    map into the text space and stays fixed, and only the text head (starting as the
+    identity) is trained: with a few hundred pairs, training the large image head as
+    well overfits within a few steps. The heads are trained full-batch with AdamW on a
+    seeded share of the pairs; the rest (``val_fraction``) picks the step whose
+    held-out loss is lowest (early stopping); then, with ``refit``, the heads are
+    trained again from the start on every pair for that many steps, so no pair is
+    left out of the final heads. Training is seeded and deterministic; the fitted
     heads are written to ``<cache>/bridges/`` as safetensors under a sha256 of the
     pairs and the settings, and a later fit on the same pairs reads them back.
 
@@ -66,6 +70,9 @@ class ContrastiveBridge(Bridge):
         (scikit-learn's ``Ridge`` with ``alpha``) and the text head as the identity, so
         the loss fine-tunes the ridge bridge; ``"random"``: both heads start as seeded
         Gaussian matrices of width ``dim``.
+    train_heads
+        ``"text"``: only the text head is trained (the image head keeps the ridge map);
+        ``"both"``: both heads are (required with ``init="random"``).
     dim
         Width of the shared space for ``init="random"`` (``"ridge"`` uses the text dimension).
     pca_components
@@ -81,6 +88,9 @@ class ContrastiveBridge(Bridge):
         Stop after this many steps without a lower held-out loss.
     val_fraction
         Share of the pairs held out for early stopping, in (0, 0.5].
+    refit
+        After early stopping, train again on all pairs for the chosen number of steps
+        (``False`` keeps the heads trained without the held-out share).
     alpha
         Ridge penalty of ``init="ridge"``.
     seed
@@ -98,7 +108,7 @@ class ContrastiveBridge(Bridge):
         Centring of each side and the image side's ``(image dim, k)`` principal axes
         (``None`` without PCA).
     best_step_
-        Step whose heads were kept (0 = the start).
+        Step with the lowest held-out loss (0 = the start); the number of steps of the refit.
     from_cache_
         Whether :meth:`fit` read the heads from the cache.
     """
@@ -108,20 +118,23 @@ class ContrastiveBridge(Bridge):
     def __init__(
         self,
         init: str = "ridge",
+        train_heads: str = "text",
         dim: int = 256,
         pca_components: int | None = None,
-        temperature: float = 0.05,
-        learning_rate: float = 1e-3,
+        temperature: float = 0.1,
+        learning_rate: float = 3e-4,
         weight_decay: float = 0.1,
         max_steps: int = 500,
         patience: int = 50,
         val_fraction: float = 0.15,
+        refit: bool = True,
         alpha: float = 1.0,
         seed: int = 0,
         cache: bool = True,
         cache_dir: str | None = None,
     ) -> None:
         self.init = init
+        self.train_heads = train_heads
         self.dim = dim
         self.pca_components = pca_components
         self.temperature = temperature
@@ -130,6 +143,7 @@ class ContrastiveBridge(Bridge):
         self.max_steps = max_steps
         self.patience = patience
         self.val_fraction = val_fraction
+        self.refit = refit
         self.alpha = alpha
         self.seed = seed
         self.cache = cache
@@ -139,8 +153,9 @@ class ContrastiveBridge(Bridge):
 
     def _checked_settings(self) -> dict[str, Any]:
         label = "contrastive setting"
-        return {
+        out = {
             "init": check_choice(self.init, f"{label} 'init'", ("ridge", "random")),
+            "train_heads": check_choice(self.train_heads, f"{label} 'train_heads'", ("text", "both")),
             "dim": check_int(self.dim, f"{label} 'dim'", low=1, expected="a positive int"),
             "pca_components": check_int(self.pca_components, f"{label} 'pca_components'", low=1, allow_none=True),
             "temperature": check_number(self.temperature, f"{label} 'temperature'", low=0, low_open=True),
@@ -149,10 +164,14 @@ class ContrastiveBridge(Bridge):
             "max_steps": check_int(self.max_steps, f"{label} 'max_steps'", low=1),
             "patience": check_int(self.patience, f"{label} 'patience'", low=1),
             "val_fraction": check_number(self.val_fraction, f"{label} 'val_fraction'", low=0, high=0.5, low_open=True),
+            "refit": bool(check_choice(self.refit, f"{label} 'refit'", (True, False))),
             "alpha": check_number(self.alpha, f"{label} 'alpha'", low=0),
             "seed": check_int(self.seed, f"{label} 'seed'", low=0),
             "version": _VERSION,
         }
+        if out["init"] == "random" and out["train_heads"] != "both":
+            raise ConfigError(f"{label} 'train_heads': a random start trains both heads; set train_heads='both' with init='random'")
+        return out
 
     def _cache_path(self, x: np.ndarray, y: np.ndarray, settings: dict[str, Any]) -> Path:
         from xrec.encoders.cache import EmbeddingCache
@@ -208,8 +227,6 @@ class ContrastiveBridge(Bridge):
         return self
 
     def _train(self, x: np.ndarray, y: np.ndarray, settings: dict[str, Any], n_val: int) -> None:
-        import torch
-
         self.x_mean_ = x.mean(axis=0, dtype=np.float64).astype(np.float32)
         self.y_mean_ = y.mean(axis=0, dtype=np.float64).astype(np.float32)
         xc, yc = x - self.x_mean_, y - self.y_mean_
@@ -219,41 +236,19 @@ class ContrastiveBridge(Bridge):
         rng = np.random.default_rng(settings["seed"])
         order = rng.permutation(len(x))
         val, train = np.sort(order[:n_val]), np.sort(order[n_val:])
-        if settings["init"] == "ridge":
-            from sklearn.linear_model import Ridge
-
-            ridge = Ridge(alpha=settings["alpha"], fit_intercept=False).fit(xc[train].astype(np.float64), yc[train].astype(np.float64))
-            wx0 = np.ascontiguousarray(ridge.coef_.T, dtype=np.float32)
-            wy0 = np.eye(y.shape[1], dtype=np.float32)
-        else:
+        start = None
+        if settings["init"] == "random":
             d = settings["dim"]
-            wx0 = (rng.standard_normal((xc.shape[1], d)) / np.sqrt(xc.shape[1])).astype(np.float32)
-            wy0 = (rng.standard_normal((yc.shape[1], d)) / np.sqrt(yc.shape[1])).astype(np.float32)
-        wx, wy = torch.tensor(wx0, requires_grad=True), torch.tensor(wy0, requires_grad=True)
-        xt, yt = torch.from_numpy(np.ascontiguousarray(xc[train])), torch.from_numpy(np.ascontiguousarray(yc[train]))
-        xv, yv = torch.from_numpy(np.ascontiguousarray(xc[val])), torch.from_numpy(np.ascontiguousarray(yc[val]))
-        opt = torch.optim.AdamW([wx, wy], lr=settings["learning_rate"], weight_decay=settings["weight_decay"])
-        tau = settings["temperature"]
-
-        def held_out() -> float:
-            with torch.no_grad():
-                return float(symmetric_info_nce(xv @ wx, yv @ wy, tau))
-
-        best, best_step, best_heads, since = held_out(), 0, (wx0, wy0), 0
-        for step in range(1, settings["max_steps"] + 1):
-            opt.zero_grad()
-            symmetric_info_nce(xt @ wx, yt @ wy, tau).backward()
-            opt.step()
-            loss = held_out()
-            if loss < best:
-                best, best_step, since = loss, step, 0
-                best_heads = (wx.detach().numpy().copy(), wy.detach().numpy().copy())
-            else:
-                since += 1
-                if since >= settings["patience"]:
-                    break
-        self.image_head_, self.text_head_ = best_heads
-        self.best_step_ = best_step
+            start = (
+                (rng.standard_normal((xc.shape[1], d)) / np.sqrt(xc.shape[1])).astype(np.float32),
+                (rng.standard_normal((yc.shape[1], d)) / np.sqrt(yc.shape[1])).astype(np.float32),
+            )
+        heads, self.best_step_ = _descend(xc, yc, train, val, start or _ridge_start(xc, yc, train, settings), settings)
+        if settings["refit"]:
+            # the step count is chosen; train again on every pair (the held-out share included)
+            every = np.arange(len(x))
+            heads, _ = _descend(xc, yc, every, None, start or _ridge_start(xc, yc, every, settings), settings, steps=self.best_step_)
+        self.image_head_, self.text_head_ = heads
 
     def transform(self, image: np.ndarray) -> np.ndarray:
         """Image features → the shared space ``(n, d)``."""
@@ -279,3 +274,64 @@ def _principal_axes(xc: np.ndarray, k: int | None) -> np.ndarray | None:
     # fix each axis's sign (largest entry positive) so refits give the same axes
     signs = np.sign(vt[np.arange(k), np.abs(vt[:k]).argmax(axis=1)])
     return np.ascontiguousarray((vt[:k] * signs[:, None]).T, dtype=np.float32)
+
+
+def _ridge_start(xc: np.ndarray, yc: np.ndarray, rows: np.ndarray, settings: dict[str, Any]) -> tuple[np.ndarray, np.ndarray]:
+    """The ridge map of ``rows`` (image → centred text) and the identity: the heads' ridge start."""
+    from sklearn.linear_model import Ridge
+
+    ridge = Ridge(alpha=settings["alpha"], fit_intercept=False).fit(xc[rows].astype(np.float64), yc[rows].astype(np.float64))
+    return np.ascontiguousarray(ridge.coef_.T, dtype=np.float32), np.eye(yc.shape[1], dtype=np.float32)
+
+
+def _descend(
+    xc: np.ndarray,
+    yc: np.ndarray,
+    rows: np.ndarray,
+    val: np.ndarray | None,
+    start: tuple[np.ndarray, np.ndarray],
+    settings: dict[str, Any],
+    steps: int | None = None,
+) -> tuple[tuple[np.ndarray, np.ndarray], int]:
+    """Full-batch AdamW on the symmetric InfoNCE loss of the pairs ``rows``, from the heads ``start``.
+
+    With ``val``: stops ``patience`` steps after the lowest loss on the pairs ``val`` and
+    returns the heads of that step and its number (0 = the start). Without: runs
+    ``steps`` steps and returns the last heads.
+    """
+    import torch
+
+    wx, wy = (torch.tensor(w, requires_grad=True) for w in start)
+    trained = [wy] if settings["train_heads"] == "text" else [wx, wy]
+    opt = torch.optim.AdamW(trained, lr=settings["learning_rate"], weight_decay=settings["weight_decay"])
+    tau = settings["temperature"]
+    xt, yt = torch.from_numpy(np.ascontiguousarray(xc[rows])), torch.from_numpy(np.ascontiguousarray(yc[rows]))
+
+    def snapshot() -> tuple[np.ndarray, np.ndarray]:
+        return wx.detach().numpy().copy(), wy.detach().numpy().copy()
+
+    if val is None:
+        for _ in range(int(steps or 0)):
+            opt.zero_grad()
+            symmetric_info_nce(xt @ wx, yt @ wy, tau).backward()
+            opt.step()
+        return snapshot(), int(steps or 0)
+    xv, yv = torch.from_numpy(np.ascontiguousarray(xc[val])), torch.from_numpy(np.ascontiguousarray(yc[val]))
+
+    def held_out() -> float:
+        with torch.no_grad():
+            return float(symmetric_info_nce(xv @ wx, yv @ wy, tau))
+
+    best, best_step, best_heads, since = held_out(), 0, snapshot(), 0
+    for step in range(1, settings["max_steps"] + 1):
+        opt.zero_grad()
+        symmetric_info_nce(xt @ wx, yt @ wy, tau).backward()
+        opt.step()
+        loss = held_out()
+        if loss < best:
+            best, best_step, best_heads, since = loss, step, snapshot(), 0
+        else:
+            since += 1
+            if since >= settings["patience"]:
+                break
+    return best_heads, best_step

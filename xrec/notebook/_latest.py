@@ -75,3 +75,34 @@ class LatestOnly:
                     self.runs += 1
                     self._busy = False
                     self._cond.notify_all()
+
+
+class Listeners:
+    """Callbacks called with one argument, in the order added; one that raises is reported, the rest still run.
+
+    Parameters
+    ----------
+    report
+        Called with a message naming the callback and its error.
+    """
+
+    def __init__(self, report: Callable[[str], None]) -> None:
+        self._report = report
+        self._callbacks: list[Callable[[object], None]] = []
+
+    def add(self, callback: Callable[[object], None]) -> None:
+        """Register ``callback`` (a :class:`~xrec.errors.ConfigError` if it cannot be called)."""
+        from xrec.errors import ConfigError
+
+        if not callable(callback):
+            raise ConfigError(f"on_change needs a callable, got {type(callback).__name__}")
+        self._callbacks.append(callback)
+
+    def call(self, value: object) -> None:
+        """Call every callback with ``value``."""
+        for callback in list(self._callbacks):
+            try:
+                callback(value)
+            except Exception as exc:  # a listener's bug must not break its caller
+                name = getattr(callback, "__qualname__", repr(callback))
+                self._report(f"on_change callback {name} failed: {type(exc).__name__}: {exc}")

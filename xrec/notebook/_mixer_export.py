@@ -80,3 +80,11 @@ def write_blend(
     return written_or_error(
         lambda p: save(p, blend, dataset=dataset, split_settings=split_settings, evidence=dict(evidence), dataset_load=hints), target, typed
     )
+
+
+def baseline_record(name: str, pinned_weights: Mapping[str, float] | None, pinned_normalizer: str | None) -> dict[str, Any]:
+    """Evidence keys naming the baseline: its name, or a pinned blend's normalizer and weights spelled out."""
+    if pinned_weights is None:
+        return {"baseline": name}
+    spelled = ", ".join(f"{n} {float(v):.2f}" for n, v in pinned_weights.items())
+    return {"baseline": f"pinned blend ({pinned_normalizer}: {spelled})", "baseline_weights": dict(pinned_weights), "baseline_normalizer": pinned_normalizer}

@@ -28,12 +28,12 @@ import pandas as pd
 from xrec._validation import check_number
 from xrec.errors import ConfigError, XrecError
 from xrec.fold import Fold
-from xrec.notebook._latest import LatestOnly
+from xrec.notebook._latest import LatestOnly, Listeners
 from xrec.notebook._mixer_chart import baseline_frame, chart_output, chart_template, filled_spec, mixer_frames
-from xrec.notebook._mixer_export import data_hints, write_blend
+from xrec.notebook._mixer_export import baseline_record, data_hints, write_blend
 from xrec.notebook._mixer_settings import WaitedValue, check_metrics, pick_users, start_weights
 from xrec.notebook._mixer_widgets import build_controls
-from xrec.notebook._mixer_table import numbers_table, refresh_picture, show_with_picture, static_picture, weights_text
+from xrec.notebook._mixer_table import StillPicture, numbers_table, static_picture, weights_text
 from xrec.notebook.frames import interval_frame
 
 __all__ = ["WeightMixer", "interval_frame"]
@@ -158,7 +158,7 @@ class WeightMixer:
         self._data_location = data_location
         if data_location is not None:
             data_hints(dataset, data_location)  # checked now, not at the first export
-        self._listeners: list[Any] = []
+        self._listeners = Listeners(lambda text: self._say(text, error=True))
         self.threads = threads
         self.progress = progress
         start = start_weights(weights, list(self._sources))
@@ -200,7 +200,7 @@ class WeightMixer:
         self.unpin_button.on_click(lambda _b: self.unpin_baseline())
         self._updates = 0
         self._last_seconds = 0.0
-        self._picture: str | None = None  # display id of the still picture, once shown
+        self._picture = StillPicture(lambda: self.static_html_, lambda: repr(self))
         self._redraw()
 
     # ------------------------------------------------------------------ setup helpers
@@ -259,17 +259,7 @@ class WeightMixer:
         (the mixer's update thread for slider moves); one that raises is reported in the
         status line and the others still run.
         """
-        if not callable(callback):
-            raise ConfigError(f"on_change needs a callable, got {type(callback).__name__}")
-        self._listeners.append(callback)
-
-    def _notify(self) -> None:
-        for callback in list(self._listeners):
-            try:
-                callback(self)
-            except Exception as exc:  # a listener's bug must not break the mixer
-                name = getattr(callback, "__qualname__", repr(callback))
-                self._say(f"on_change callback {name} failed: {type(exc).__name__}: {exc}", error=True)
+        self._listeners.add(callback)
 
     def _current_per_user(self) -> pd.DataFrame:
         with self._lock:
@@ -386,7 +376,7 @@ class WeightMixer:
             self._muted = False
         self._worker.request()
         self._worker.wait()
-        self._refresh_picture()
+        self._picture.refresh()
 
     def pin_baseline(self) -> None:
         """Make the current blend the baseline the chart compares against (:meth:`unpin_baseline` undoes it)."""
@@ -399,7 +389,7 @@ class WeightMixer:
             self.pinned_weights_ = dict(self._weights)
             self.pinned_normalizer_ = self.normalizer
             self._redraw()
-        self._refresh_picture()
+        self._picture.refresh()
 
     def unpin_baseline(self) -> None:
         """Go back to the baseline the mixer was built with."""
@@ -409,14 +399,11 @@ class WeightMixer:
             self.pinned_weights_ = None
             self.pinned_normalizer_ = None
             self._redraw()
-        self._refresh_picture()
+        self._picture.refresh()
 
     def baseline_record(self) -> dict[str, Any]:
         """What the baseline is, for the blend file's evidence: a name, or the pinned weights spelled out."""
-        if self.pinned_weights_ is None:
-            return {"baseline": self.baseline_name_}
-        spelled = f"pinned blend ({self.pinned_normalizer_}: {weights_text(self.pinned_weights_)})"
-        return {"baseline": spelled, "baseline_weights": dict(self.pinned_weights_), "baseline_normalizer": self.pinned_normalizer_}
+        return baseline_record(self.baseline_name_, self.pinned_weights_, self.pinned_normalizer_)
 
     # ------------------------------------------------------------------ drawing
     def _frames(self) -> tuple[pd.DataFrame, pd.DataFrame]:
@@ -445,7 +432,8 @@ class WeightMixer:
             self.table.value = numbers_table(summary, diffs, self.baseline_name_, self.confidence)
             self._updates += 1
             self._say(f"weights: {html.escape(weights_text(self._weights))} · normalizer {html.escape(self.normalizer)} · K {self.k}")
-        self._notify()
+        self._listeners.call(self)
+        self._picture.refresh_later()
 
     def _say(self, text: str, *, error: bool = False) -> None:
         color = "#b00020" if error else "#555"
@@ -495,21 +483,16 @@ class WeightMixer:
             return
         note = "" if data_hints(self._dataset, self._data_location) else " (no data location recorded: pass data_location= for xrec recommend)"
         self._say(f"wrote {html.escape(str(written))}{html.escape(note)}")
+        self._picture.refresh()
 
     # ------------------------------------------------------------------ display
     def _ipython_display_(self) -> None:
-        """Show the live panel, then a still picture of the state (see :func:`~xrec.notebook._mixer_table.show_with_picture`)."""
-        self._picture = show_with_picture(self.widget, self.static_html_, repr(self), self._picture)
+        """Show the live panel, then a still picture of the last state (see :class:`~xrec.notebook._mixer_table.StillPicture`)."""
+        self._picture.show(self.widget)
 
     def _repr_mimebundle_(self, **kwargs: Any) -> Any:
         """The live panel, with the still picture as ``text/html`` for front ends without widgets."""
-        bundle = self.widget._repr_mimebundle_(**kwargs)
-        return {**bundle, "text/html": self.static_html_}
-
-    def _refresh_picture(self) -> None:
-        """Bring the still picture up to date (from code run in a cell: front ends route the update by cell)."""
-        if self._picture is not None:
-            refresh_picture(self._picture, self.static_html_, repr(self))
+        return {**self.widget._repr_mimebundle_(**kwargs), "text/html": self.static_html_}
 
     def __repr__(self) -> str:
         w = ", ".join(f"{n}={v:.2f}" for n, v in self._wanted.items())

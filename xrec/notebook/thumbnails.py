@@ -32,6 +32,7 @@ __all__ = [
     "Tile",
     "caption_column",
     "item_captions",
+    "largest_contribution",
     "source_colors",
     "strip_html",
     "thumbnail_uri",
@@ -205,32 +206,42 @@ def tiles_for(
     return tiles
 
 
+def largest_contribution(tiles: Sequence[Tile]) -> float:
+    """The largest absolute finite contribution over ``tiles`` (0 when there is none)."""
+    return max((abs(float(v)) for t in tiles for v in t.contributions.values() if math.isfinite(float(v))), default=0.0)
+
+
 def _fmt(value: float) -> str:
     return f"{value:+.3f}" if math.isfinite(value) else str(value)
 
 
 def _contribution_bars(contributions: Mapping[str, float], colors: Mapping[str, str], scale: float, width: int) -> str:
-    """One row per source: a bar from the centre line, right for positive, left for negative."""
+    """One row per source: a bar from the centre line, right for positive, left for negative.
+
+    Each row is one ``div`` painted by a CSS gradient (compact: reports hold hundreds of them);
+    one line over the rows marks zero.
+    """
     half = width / 2
     rows = []
     for name, value in contributions.items():
         v = float(value)
         share = 0.0 if not (math.isfinite(v) and scale > 0) else min(abs(v) / scale, 1.0)
-        length = share * half
-        left = half if v >= 0 else half - length
+        lo, hi = (half, half + share * half) if v >= 0 else (half - share * half, half)
         color = html.escape(colors.get(name, "#777"))
-        tip = html.escape(f"{name}: {_fmt(v)}")
         rows.append(
-            f'<div class="xrec-contribution" data-source="{html.escape(name)}" data-value="{v:.6g}" title="{tip}" '
-            f'style="position:relative;height:4px;margin:1px 0;background:#f0f0f0">'
-            f'<div style="position:absolute;left:{left:.1f}px;width:{length:.1f}px;height:4px;background:{color}"></div>'
-            f'<div style="position:absolute;left:{half:.0f}px;width:1px;height:4px;background:#999"></div></div>'
+            f'<div class="xrec-contribution" data-source="{html.escape(name)}" data-value="{v:.6g}" '
+            f'title="{html.escape(f"{name}: {_fmt(v)}")}" style="height:4px;margin:1px 0;'
+            f'background:linear-gradient(90deg,#eee {lo:.1f}px,{color} {lo:.1f}px {hi:.1f}px,#eee {hi:.1f}px)"></div>'
         )
-    return f'<div class="xrec-contributions" style="width:{width}px;margin-top:2px">{"".join(rows)}</div>'
+    zero = f'<div style="position:absolute;left:{half:.0f}px;top:0;bottom:0;width:1px;background:#999"></div>'
+    return f'<div class="xrec-contributions" style="position:relative;width:{width}px;margin-top:2px">{"".join(rows)}{zero}</div>'
 
 
 def tile_html(tile: Tile, *, size: int = DEFAULT_SIZE, colors: Mapping[str, str] | None = None, scale: float | None = None) -> str:
     """One tile as an inline-block ``<div class="xrec-tile">`` (every text escaped).
+
+    The element carries ``data-item`` (the item id) and ``data-marks`` (the marks,
+    space-separated, with spaces inside a mark written ``_``: ``"hit blend_#3"``).
 
     Parameters
     ----------
@@ -259,8 +270,8 @@ def tile_html(tile: Tile, *, size: int = DEFAULT_SIZE, colors: Mapping[str, str]
             f'padding:4px;box-sizing:border-box">{caption}</div>'
         )
     badges = "".join(
-        f'<span class="xrec-mark xrec-mark-{html.escape(m)}" style="display:inline-block;margin:1px 2px 0 0;padding:0 3px;'
-        f'border-radius:3px;font-size:10px;color:#fff;background:{MARK_STYLES.get(m, (m, "#777"))[1]}">'
+        f'<span class="xrec-mark xrec-mark-{m if m in MARK_STYLES else "other"}" style="display:inline-block;margin:1px 2px 0 0;padding:0 3px;'
+        f'border-radius:3px;font-size:10px;line-height:14px;color:#fff;background:{MARK_STYLES.get(m, (m, "#777"))[1]}">'
         f"{html.escape(MARK_STYLES.get(m, (m, ''))[0])}</span>"
         for m in marks
     )
@@ -269,11 +280,12 @@ def tile_html(tile: Tile, *, size: int = DEFAULT_SIZE, colors: Mapping[str, str]
     if tile.contributions:
         top = max((abs(float(v)) for v in tile.contributions.values() if math.isfinite(float(v))), default=0.0)
         bars = _contribution_bars(tile.contributions, colors, top if scale is None else scale, size)
-    marks_attr = html.escape(" ".join(marks))
+    # Space-separated, so CSS can select [data-marks~="hit"]; spaces inside a mark become "_".
+    marks_attr = html.escape(" ".join("_".join(m.split()) for m in marks))
     return (
         f'<div class="xrec-tile" data-item="{item}" data-marks="{marks_attr}" title="{item}: {caption}" '
         f'style="display:inline-block;vertical-align:top;width:{size + 8}px;margin:3px;padding:3px;'
-        f'border:2px solid {border};border-radius:4px;font-family:system-ui,sans-serif;{dim}">'
+        f'border:2px solid {border};border-radius:4px;{dim}">'
         f'{picture}<div class="xrec-caption" style="font-size:11px;line-height:1.2;height:2.4em;overflow:hidden;'
         f'margin-top:2px">{caption}</div>{score}{badges}{bars}</div>'
     )
@@ -286,20 +298,21 @@ def strip_html(
     size: int = DEFAULT_SIZE,
     colors: Mapping[str, str] | None = None,
     empty: str = "no items",
+    scale: float | None = None,
 ) -> str:
     """A titled row of tiles (wrapping), with one contribution scale shared by all tiles.
 
-    ``title`` and every caption are escaped; an empty ``tiles`` shows ``empty``.
+    ``title`` and every caption are escaped; an empty ``tiles`` shows ``empty``. ``scale``
+    (default: the largest absolute contribution in the strip) is the contribution that
+    fills half a bar; pass the same value to several strips to compare them.
     """
     if colors is None:
         names = list(dict.fromkeys(name for t in tiles for name in t.contributions))
         colors = source_colors(names)
-    scale = max(
-        (abs(float(v)) for t in tiles for v in t.contributions.values() if math.isfinite(float(v))),
-        default=0.0,
-    )
+    if scale is None:
+        scale = largest_contribution(tiles)
     body = "".join(tile_html(t, size=size, colors=colors, scale=scale) for t in tiles)
     if not tiles:
         body = f'<div style="color:#777;font-size:12px;padding:4px">{html.escape(empty)}</div>'
     head = f'<div class="xrec-strip-title" style="font-weight:600;font-size:13px;margin:4px 0 2px">{html.escape(title)}</div>' if title else ""
-    return f'<div class="xrec-strip">{head}<div style="display:flex;flex-wrap:wrap">{body}</div></div>'
+    return f'<div class="xrec-strip" style="font-family:system-ui,sans-serif;line-height:1.25">{head}<div style="display:flex;flex-wrap:wrap">{body}</div></div>'

@@ -7,9 +7,9 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from xrec._validation import check_number
+from xrec._validation import check_choice, check_number
 from xrec.data.catalog import Catalog
-from xrec.errors import ConfigError
+from xrec.errors import ConfigError, DataError
 from xrec.sources._item_vectors import image_vectors, text_vectors
 from xrec.sources._profiles import ProfileSource, l2_normalize
 from xrec.sources.vectors import vectors_from_setting
@@ -17,6 +17,8 @@ from xrec.sources.vectors import vectors_from_setting
 __all__ = ["FUSION_MODALITIES", "EarlyFusionSource"]
 
 FUSION_MODALITIES = ("text", "image", "attributes")
+# bridges fitted on the catalog's own pairs, usable on the text and image blocks
+BRIDGED = ("ridge", "cca", "contrastive")
 
 
 class EarlyFusionSource(ProfileSource):
@@ -43,6 +45,13 @@ class EarlyFusionSource(ProfileSource):
         :func:`~xrec.sources.vectors.read_item_vectors` options; e.g.
         ``modalities = ["text", "mine"]`` with ``vectors = { mine = "mine.parquet" }``.
         Paths are relative to the spec file in a spec.
+    bridge
+        ``None``: the text and image blocks are the encoders' own vectors. ``"ridge"``,
+        ``"cca"`` or ``"contrastive"``: both blocks are first put into that bridge's
+        shared space (see :mod:`xrec.encoders.bridge`), fitted on the catalog's items
+        that have both an image and a text, so the image block keeps what the images
+        share with the descriptions. The bridge's own settings are its defaults (the
+        contrastive heads are cached under ``cache_dir``).
 
     Attributes
     ----------
@@ -67,6 +76,7 @@ class EarlyFusionSource(ProfileSource):
         cache_dir: str | None = None,
         progress: bool = False,
         vectors: Mapping[str, Any] | None = None,
+        bridge: str | None = None,
     ) -> None:
         self.modalities = modalities
         self.weights = weights
@@ -78,6 +88,7 @@ class EarlyFusionSource(ProfileSource):
         self.cache_dir = cache_dir
         self.progress = progress
         self.vectors = vectors
+        self.bridge = bridge
 
     def _checked(self) -> tuple[list[str], dict[str, float], dict[str, Any]]:
         mods = [self.modalities] if isinstance(self.modalities, str) else list(self.modalities)
@@ -100,15 +111,39 @@ class EarlyFusionSource(ProfileSource):
             out[m] = check_number(weights.get(m, 1.0), f"early_fusion setting 'weights.{m}'", low=0)
         if not any(out.values()):
             raise ConfigError(f"early_fusion setting 'weights': all zero ({out})")
+        if self.bridge is not None:
+            check_choice(self.bridge, "early_fusion setting 'bridge'", BRIDGED)
+            if not {"text", "image"} & set(mods):
+                raise ConfigError(f"early_fusion setting 'bridge': it bridges the 'text' and 'image' blocks, and modalities {mods} has neither")
         return mods, out, own
+
+    def _bridged(self, catalog: Catalog, opts: dict[str, Any]) -> dict[str, np.ndarray]:
+        """The text and image blocks in the bridge's shared space (zero rows where an item lacks one)."""
+        from xrec.encoders.bridge import make_bridge
+
+        text, text_ok = text_vectors(catalog, self.text_columns, self.text_encoder, **opts)
+        image, image_ok = image_vectors(catalog, self.image_encoder, crop=self.image_crop, **opts)
+        both = text_ok & image_ok
+        if both.sum() < 2:
+            raise DataError(f"early_fusion bridge {self.bridge!r}: needs items with both an image and a text; found {int(both.sum())}")
+        settings = {"cache_dir": self.cache_dir} if self.bridge == "contrastive" else {}
+        self.bridge_ = make_bridge(str(self.bridge), **settings).fit(image[both], text[both])
+        return {
+            "text": np.where(text_ok[:, None], self.bridge_.transform_text(text), 0.0).astype(np.float32),
+            "image": np.where(image_ok[:, None], self.bridge_.transform(image), 0.0).astype(np.float32),
+        }
 
     def _vectors(self, catalog: Catalog) -> tuple[np.ndarray, np.ndarray]:
         mods, weights, own = self._checked()
         opts = {"cache_dir": self.cache_dir, "progress": self.progress}
         parts, self.blocks_ = [], {}
+        self.bridge_ = None
+        bridged = self._bridged(catalog, opts) if self.bridge is not None else {}
         start = 0
         for m in mods:
-            if m == "text":
+            if m in bridged:
+                vectors = bridged[m]
+            elif m == "text":
                 vectors, _ = text_vectors(catalog, self.text_columns, self.text_encoder, **opts)
             elif m == "image":
                 vectors, _ = image_vectors(catalog, self.image_encoder, crop=self.image_crop, **opts)

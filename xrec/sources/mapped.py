@@ -12,7 +12,7 @@ keep their own factors, and the users' ALS factors score both, so the source is 
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from typing import Any, Self
+from typing import Any, ClassVar, Self
 
 import numpy as np
 import pandas as pd
@@ -36,8 +36,14 @@ class MappedFactorsSource(LowRankSource):
     Parameters
     ----------
     modalities
-        Content the map reads: any of ``"attributes"``, ``"text"``, ``"image"``; each modality's
-        item vectors are L2-normalized and concatenated (as in ``early_fusion``).
+        Content the map reads: any of ``"attributes"``, ``"text"``, ``"image"`` and the names in
+        ``vectors``; each modality's item vectors are L2-normalized and concatenated (as in
+        ``early_fusion``), so one map can read, say, your own vectors beside the text.
+    vectors
+        Your own item vectors as extra modalities: name -> a vector file path, or a table of
+        :func:`~xrec.sources.vectors.read_item_vectors` options, e.g.
+        ``modalities = ["attributes", "mine"]`` with ``vectors = { mine = "mine.parquet" }``
+        (the ``vectors`` kind's file layouts). Paths are relative to the spec file in a spec.
     mapping
         ``"ridge"`` (linear map, ridge penalty chosen from ``alphas``), ``"knn"`` (similarity-
         weighted mean of the factors of the most content-similar known items, count chosen from
@@ -78,6 +84,7 @@ class MappedFactorsSource(LowRankSource):
     """
 
     kind = "mapped_factors"
+    path_settings: ClassVar[tuple[str, ...]] = ("vectors",)
 
     def __init__(
         self,
@@ -96,6 +103,7 @@ class MappedFactorsSource(LowRankSource):
         progress: bool = False,
         seed: int = 0,
         new_item_scale: float = 1.0,
+        vectors: Mapping[str, Any] | None = None,
     ) -> None:
         self.modalities = modalities
         self.mapping = mapping
@@ -112,12 +120,16 @@ class MappedFactorsSource(LowRankSource):
         self.progress = progress
         self.seed = seed
         self.new_item_scale = new_item_scale
+        self.vectors = vectors
 
     def _check(self) -> tuple[list[str], list[float], list[int]]:
         where = "mapped_factors setting"
         mods = [self.modalities] if isinstance(self.modalities, str) else list(self.modalities)
-        if not mods or any(m not in FUSION_MODALITIES for m in mods) or len(set(mods)) != len(mods):
-            raise ConfigError(f"{where} 'modalities' must list distinct names among {list(FUSION_MODALITIES)}, got {self.modalities!r}")
+        if self.vectors is not None and not isinstance(self.vectors, Mapping):
+            raise ConfigError(f"{where} 'vectors': a table of name = vector file, got {self.vectors!r}")
+        known = [*FUSION_MODALITIES, *(self.vectors or {})]
+        if not mods or any(m not in known for m in mods) or len(set(mods)) != len(mods):
+            raise ConfigError(f"{where} 'modalities' must list distinct names among {known}, got {self.modalities!r}")
         if self.mapping not in MAPPINGS:
             raise ConfigError(f"{where} 'mapping' must be one of {list(MAPPINGS)}, got {self.mapping!r}")
         alphas = [check_number(a, f"{where} 'alphas'", low=0, low_open=True, expected="positive numbers") for a in self.alphas]
@@ -139,6 +151,7 @@ class MappedFactorsSource(LowRankSource):
         fused = make_source(
             "early_fusion", modalities=mods, text_columns=self.text_columns, text_encoder=self.text_encoder,
             image_encoder=self.image_encoder, image_crop=self.image_crop, cache_dir=self.cache_dir, progress=self.progress,
+            vectors={m: v for m, v in (self.vectors or {}).items() if m in mods} or None,
         )  # fmt: skip
         return fused.fit(fold).item_factors_ * np.float32(np.sqrt(len(mods)))  # undo the fused row's 1/sqrt(m) norm
 
@@ -194,6 +207,7 @@ def choose_new_item_scale(
     scales: Sequence[float] = (1.0, 1.5, 2.0, 3.0, 4.0),
     *,
     metric: str = "ndcg@10",
+    objective: str = "overall",
 ) -> tuple[float, pd.DataFrame]:
     """The ``new_item_scale`` with the best ``metric`` on a (mixed) validation fold.
 
@@ -208,20 +222,44 @@ def choose_new_item_scale(
         Candidates (each > 0); ties go to the first listed.
     metric
         ``"name@k"`` of a per-user metric, full ranking.
+    objective
+        ``"overall"``: the metric's mean over every validation user. ``"sides"``: the
+        validation users are split into those holding out a new item (no training
+        interaction) and the others, and a scale is judged by its worse side relative to the
+        best any candidate scale reaches on that side, ``min_s m_s(scale) / max_c m_s(c)``
+        (the maximin of :mod:`xrec.blend._sides`, here over one setting): a scale that
+        shuts new items out, or one that pushes them over every known item, scores low.
 
     Returns
     -------
     (float, pandas.DataFrame)
-        The chosen scale and one row per candidate (``scale``, ``metric``, ``value``).
+        The chosen scale and one row per candidate (``scale``, ``metric``, ``value``, and
+        for ``"sides"`` also ``known``, ``new``, ``objective``).
     """
     from xrec._validation import check_fitted, parse_metric_column
     from xrec.evaluate import evaluate
 
+    if objective not in ("overall", "sides"):
+        raise ConfigError(f"objective: unknown {objective!r}; choose one of ['overall', 'sides']")
     name, k = parse_metric_column(metric)
+    col = f"{name}@{k}"
     check_fitted(source, how="fit the source on the validation fold first")
+    held = validation_fold.heldout
+    is_new = validation_fold.item_train_counts[held["item_idx"].to_numpy()] == 0
+    new_side = pd.Series(is_new).groupby(held["user_idx"].to_numpy()).any()
     rows = []
     for scale in scales:
         card = evaluate(source.with_new_item_scale(scale), validation_fold, ks=(k,), metrics=(name,))
-        rows.append({"scale": float(scale), "metric": metric, "value": float(card.means()[metric])})
+        per_user = card.per_user.set_index("user")[col]
+        side = new_side.reindex(per_user.index).fillna(False).to_numpy(dtype=bool)
+        rows.append({"scale": float(scale), "metric": metric, "value": float(per_user.mean()),
+                     "known": float(per_user[~side].mean()) if (~side).any() else float("nan"),
+                     "new": float(per_user[side].mean()) if side.any() else float("nan")})
     table = pd.DataFrame(rows)
-    return float(table.loc[table["value"].idxmax(), "scale"]), table
+    if objective == "sides":
+        best = table[["known", "new"]].max()
+        if not (best > 0).all():
+            raise ConfigError(f"objective 'sides': no candidate scale scores above 0 on side(s) {list(best.index[~(best > 0)])}")
+        table["objective"] = (table[["known", "new"]] / best).min(axis=1)
+        return float(table.loc[table["objective"].idxmax(), "scale"]), table
+    return float(table.loc[table["value"].idxmax(), "scale"]), table.drop(columns=["known", "new"])
