@@ -4,7 +4,7 @@ The main names are re-exported here; each subpackage documents its own:
 ``xrec.data`` (catalog, interactions, loaders), ``xrec.split``, ``xrec.sources``,
 ``xrec.encoders``, ``xrec.blend``, ``xrec.evaluate``, ``xrec.blendfile``, ``xrec.runtime``,
 ``xrec.bundle`` (blend file + learned artifacts, served without refitting), ``xrec.serve``
-(the HTTP service), ``xrec.notebook``.
+(the HTTP service), ``xrec.explore`` (search the catalog across pictures and words), ``xrec.notebook``.
 """
 
 from xrec.blend import Blend, CombMNZ, CombSum, ReciprocalRankFusion
@@ -15,6 +15,7 @@ from xrec.data.demo import load_demo_shop
 from xrec.errors import ConfigError, DataError, FingerprintMismatch, NotFittedError, XrecError
 # The evaluate() function is not re-exported: the name is the xrec.evaluate subpackage.
 from xrec.evaluate import Comparison, FullRanking, SampledNegatives, Scorecard, compare
+from xrec.explore import CatalogExplorer
 from xrec.fold import Fold
 from xrec.runtime import BlendRuntime, load_blend
 from xrec.sources import LowRankSource, Source, make_source, source_kinds
@@ -27,6 +28,7 @@ __all__ = [
     "BlendRuntime",
     "Bundle",
     "Catalog",
+    "CatalogExplorer",
     "CatalogSchema",
     "CombMNZ",
     "CombSum",

@@ -17,11 +17,13 @@ from xrec.notebook.charts import (
     wilson_interval,
 )
 from xrec.notebook.display import comparison_html, offline_charts, scorecard_html
+from xrec.notebook.explorer import ExplorerWidget
 from xrec.notebook.gallery import Gallery, choose_report_users, report_gallery
 from xrec.notebook.mixer import WeightMixer, interval_frame
 from xrec.notebook.segment_charts import segment_differences, segment_means
 
 __all__ = [
+    "ExplorerWidget",
     "Gallery",
     "WeightMixer",
     "charts_to_html",
