@@ -274,6 +274,36 @@ def _bridges_table(data: dict[str, dict]) -> str:
     return "\n".join(lines) + "\n"
 
 
+_BROWSER_GOALS_MS = {"chart": 150, "gallery": 300}  # issue 14's goals for the medians
+
+
+def _browser_text(data: dict[str, dict]) -> str:
+    """Key press -> chart / gallery redrawn in JupyterLab + headless Chromium (``bench_browser.py``)."""
+    res = data["browser.json"]
+    f = res["figures"]
+    chart, kernel, arrived = f["chart_ms"], f["kernel_ms"], f["chart_output_arrived_ms"]
+    lines = ["| key press → | median ms | max ms | moves |", "|---|---|---|---|"]
+    lines.append(f"| chart redrawn | {chart['median_ms']:.0f} | {chart['max_ms']:.0f} | {chart['n']} |")
+    if f["gallery_timed"]:
+        g = f["gallery_ms"]
+        lines.append(f"| gallery redrawn | {g['median_ms']:.0f} | {g['max_ms']:.0f} | {g['n']} |")
+    lines.append(f"| new chart output in the page (not yet drawn) | {arrived['median_ms']:.0f} | {arrived['max_ms']:.0f} | {arrived['n']} |")
+    lines.append(
+        f"| of it in the kernel: re-evaluation and redraw, the gallery's callback included (`mixer.last_seconds_`) | "
+        f"{kernel['median_ms']:.0f} | {kernel['max_ms']:.0f} | {kernel['n']} |"
+    )
+    lines.append("")
+    gallery = "" if f["gallery_timed"] else " The quickstart had no gallery when this ran, so the gallery was not timed."
+    lines.append(
+        f"`{res['run']['command']}`: the quickstart run in JupyterLab {f['jupyterlab']} and headless Chromium {f['chromium'].split('.')[0]} "
+        f"on 127.0.0.1, then {f['moves']} arrow-key presses on the `{f['slider']}` slider, each awaited; times from "
+        f"`performance.now()` at the key press to a MutationObserver seeing the new drawing ({_load(res)}; "
+        f"{f['load_1min_at_end']:.1f} at the end). Goal: a median under {_BROWSER_GOALS_MS['chart']} ms for the chart and under "
+        f"{_BROWSER_GOALS_MS['gallery']} ms for the gallery.{gallery}"
+    )
+    return "\n".join(lines) + "\n"
+
+
 #: The README's benchmark blocks.
 BENCH: dict[str, BenchBlock] = {
     "scale": BenchBlock(_SCALE_RUNS, _scale_table),
@@ -285,6 +315,7 @@ BENCH: dict[str, BenchBlock] = {
     "dask": BenchBlock(("bench_dask.json",), _dask_table),
     "encoders": BenchBlock(("bench_encoders.json",), _encoders_table),
     "bridges": BenchBlock(("bench_bridges.json",), _bridges_table),
+    "browser": BenchBlock(("browser.json",), _browser_text),
 }
 
 
