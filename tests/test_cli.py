@@ -226,3 +226,26 @@ def test_run_on_a_mixed_split_prints_known_and_new_parts(tmp_path, capsys):
     assert got.to_dict() == pytest.approx(expected.to_dict())
     assert set(payload["known_new"]["comparisons"]) == set(side.unique())
     assert payload["learned"]["gated"]["bands"]["objective"] == "sides"
+
+
+def test_spec_key_by_breaks_results_down_and_the_flag_replaces_it(tmp_path, capsys):
+    import tomllib
+
+    import tomli_w
+
+    spec = _write_files_spec(tmp_path)
+    table = tomllib.loads(spec.read_text(encoding="utf-8"))
+    table["evaluate"]["by"] = ["item_segment", "kind"]
+    keyed = tmp_path / "keyed.toml"
+    keyed.write_bytes(tomli_w.dumps(table).encode("utf-8"))
+    assert main(["run", str(keyed), "--json"]) == 0
+    from_key = json.loads(capsys.readouterr().out)
+    assert main(["run", str(spec), "--json", "--by", "item_segment", "--by", "kind"]) == 0
+    from_flags = json.loads(capsys.readouterr().out)
+    assert from_key["segments"] == from_flags["segments"] and from_key["comparison"] == from_flags["comparison"]
+    assert main(["run", str(keyed), "--json", "--by", "user_segment"]) == 0
+    assert {r["by"] for r in json.loads(capsys.readouterr().out)["segments"]} == {"user_segment"}
+    table["evaluate"]["by"] = "kind"
+    keyed.write_bytes(tomli_w.dumps(table).encode("utf-8"))
+    assert main(["run", str(keyed), "-q"]) == 2
+    assert "evaluate.by" in capsys.readouterr().err

@@ -208,8 +208,9 @@ def run_experiment(
     ``"user_segment"`` or catalog column names) every scorecard and the comparison are also
     broken down by those segments (:func:`xrec.evaluate.segments.segment_labels`):
     ``extras["segments"]`` holds the per-segment scorecard table, the comparison its
-    ``segments`` table.
+    ``segments`` table. Without ``by``, the spec's ``evaluate.by`` list is used.
     """
+    by = tuple(by) if by else tuple(spec.evaluate.get("by", ()))
     with spec_cluster(spec) as client:
         return _run_experiment(spec, progress=progress, dataset=dataset, only=only, by=by, client=client)
 
@@ -465,7 +466,8 @@ def compare_specs(
 ):
     """Paired comparison of the primary scorers of two specs; both must use the same data and split.
 
-    ``by`` breaks the comparison down by segments too, as in :func:`run_experiment`.
+    ``by`` breaks the comparison down by segments too, as in :func:`run_experiment`
+    (default: the baseline spec's ``evaluate.by``).
     With ``overlap`` (default: the baseline spec's ``evaluate.overlap``) the comparison's
     ``top_lists`` also holds the candidate's top-K overlap with the baseline per user.
     """
@@ -488,6 +490,7 @@ def compare_specs(
     if b_card.name == c_card.name:
         c_card.name = f"{c_card.name} ({candidate.name})"
         b_card.name = f"{b_card.name} ({baseline.name})"
+    by = tuple(by) if by else tuple(baseline.evaluate.get("by", ()))
     labels = [segment_labels(base.split.test, name) for name in dict.fromkeys(by)]
     comparison = compare(b_card, c_card, seed=int(baseline.evaluate.get("seed", 0)), by=labels or None)
     k = overlap if overlap is not None else int(baseline.evaluate.get("overlap", 0))

@@ -20,6 +20,7 @@ Example (``xrec/specs/movielens.toml`` is a complete one)::
     # protocol = "sampled"       # full ranking unless asked; sampled takes `negatives`
     # overlap = 10               # also report each scorer's top-10 overlap with the baseline
     # pairs = [["als", "als_genres"]]  # extra paired comparisons, each against its own baseline
+    # by = ["item_segment", "user_segment"]  # also break results down by segment (`--by` replaces it)
     # workers = 2                # evaluate on a local Dask cluster of 2 processes, sharded by users
     #                            # (catalog texts and images missing from the cache are encoded there too)
     # scheduler = "tcp://scheduler-host:8786"  # or on a running Dask cluster (not with `workers`)
@@ -110,7 +111,7 @@ from xrec.errors import ConfigError
 _SPLIT_KEYS = {"rule", "seed", "validation", "test_fraction", "cutoff", "cold_fraction", "min_train", "new_share", "cold_users"}
 _EVAL_KEYS = {
     "ks", "metrics", "baseline", "primary", "protocol", "negatives", "seed", "chunk_size",
-    "scheduler", "workers", "shard_size", "overlap", "pairs",
+    "scheduler", "workers", "shard_size", "overlap", "pairs", "by",
 }
 _BLEND_KEYS = {"weights", "normalizer", "sources", "method", "metric", "gated", "objective", "side_baselines", "fusion", "k", "depth", "seed"}
 _LEARN_METHODS = ("coordinate_ascent", "optuna", "logistic")
@@ -306,6 +307,11 @@ def parse_spec(raw: dict[str, Any], base_dir: Path | None = None) -> ExperimentS
         for value in pair:
             if value not in sources and value not in blends:
                 raise ConfigError(f"evaluate.pairs: {value!r} is neither a source nor a blend")
+    by = evaluate.get("by", [])
+    if not isinstance(by, list) or not all(isinstance(b, str) and b.strip() for b in by):
+        raise ConfigError(
+            f"evaluate.by: a list of segment names (item_segment, user_segment or catalog columns), got {by!r}"
+        )
     return ExperimentSpec(
         data=data,
         split=split,
