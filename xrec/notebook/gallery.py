@@ -30,6 +30,7 @@ from xrec.fold import Fold
 from xrec.notebook._gallery_html import PanelStyle, view_html
 from xrec.notebook._gallery_pick import PICKS, REPORT_RULE, choose_report_users, find_user, pick_by_outcome, segment_groups
 from xrec.notebook._gallery_rank import RowCache, UserView, user_view
+from xrec.notebook._still import StillPicture
 from xrec.notebook.thumbnails import source_colors
 
 __all__ = ["Gallery", "choose_report_users", "report_gallery"]
@@ -157,7 +158,7 @@ class Gallery:
         self.last_seconds_ = 0.0
         self._note = ""
         self._widget: Any = None
-        self._picture: Any = None  # the still picture (StillPicture), once shown
+        self._picture = StillPicture(lambda: self.static_html_, lambda: repr(self))
         self._muted = False  # set while the user box is filled from code
         self._html = ""
         if user is not None:
@@ -374,17 +375,12 @@ class Gallery:
 
     def _ipython_display_(self) -> None:
         """Show the live panel, then a still picture that front ends without the widget show instead."""
-        from xrec.notebook._mixer_table import StillPicture
-
-        if self._picture is None:
-            self._picture = StillPicture(lambda: self.static_html_, lambda: repr(self))
         self._picture.show(self.widget)
 
     def _refresh_picture(self) -> None:
         # From code run in a cell (show, pick) the front end routes the update to the picture's
         # cell at once; redraws that follow moves made in the page refresh it once they pause.
-        if self._picture is None:
-            return
+        # Before the gallery is shown, both do nothing.
         if threading.current_thread() is threading.main_thread():
             self._picture.refresh()
         else:

@@ -33,7 +33,8 @@ from xrec.notebook._mixer_chart import baseline_frame, chart_output, chart_templ
 from xrec.notebook._mixer_export import baseline_record, data_hints, write_blend
 from xrec.notebook._mixer_settings import WaitedValue, check_metrics, pick_users, start_weights
 from xrec.notebook._mixer_widgets import build_controls
-from xrec.notebook._mixer_table import StillPicture, numbers_table, static_picture, weights_text
+from xrec.notebook._mixer_table import numbers_table, static_picture, weights_text
+from xrec.notebook._still import StillPicture
 from xrec.notebook.frames import interval_frame
 
 __all__ = ["WeightMixer", "interval_frame"]
@@ -487,7 +488,7 @@ class WeightMixer:
 
     # ------------------------------------------------------------------ display
     def _ipython_display_(self) -> None:
-        """Show the live panel, then a still picture of the last state (see :class:`~xrec.notebook._mixer_table.StillPicture`)."""
+        """Show the live panel, then a still picture of the last state (see :class:`~xrec.notebook._still.StillPicture`)."""
         self._picture.show(self.widget)
 
     def _repr_mimebundle_(self, **kwargs: Any) -> Any:
