@@ -245,6 +245,8 @@ def test_spec_key_by_breaks_results_down_and_the_flag_replaces_it(tmp_path, caps
     assert from_key["segments"] == from_flags["segments"] and from_key["comparison"] == from_flags["comparison"]
     assert main(["run", str(keyed), "--json", "--by", "user_segment"]) == 0
     assert {r["by"] for r in json.loads(capsys.readouterr().out)["segments"]} == {"user_segment"}
+    assert main(["compare", str(keyed), str(keyed), "--json"]) == 0  # the baseline spec's list
+    assert {r["by"] for r in json.loads(capsys.readouterr().out)["segments"]} == {"item_segment", "kind"}
     table["evaluate"]["by"] = "kind"
     keyed.write_bytes(tomli_w.dumps(table).encode("utf-8"))
     assert main(["run", str(keyed), "-q"]) == 2

@@ -23,7 +23,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     from xrec.spec import load_spec
 
     spec = _with_cluster_flags(load_spec(args.spec), args)
-    result = run_experiment(spec, progress=not args.quiet and not args.json, by=args.by or ())
+    result = run_experiment(spec, progress=not args.quiet and not args.json, by=args.by)
     if args.json:
         _print_json(experiment_payload(result))
     else:
@@ -54,7 +54,7 @@ def _cmd_compare(args: argparse.Namespace) -> int:
         from xrec.errors import ConfigError
 
         raise ConfigError(f"--overlap: must be at least 1, got {args.overlap}")
-    comparison = compare_specs(baseline, candidate, progress=not args.quiet and not args.json, by=args.by or (),
+    comparison = compare_specs(baseline, candidate, progress=not args.quiet and not args.json, by=args.by,
                                overlap=args.overlap)
     if args.json:
         _print_json(comparison.to_dict())

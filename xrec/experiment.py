@@ -199,7 +199,7 @@ def run_experiment(
     progress: bool = False,
     dataset: Dataset | None = None,
     only: str | None = None,
-    by: Sequence[str] = (),
+    by: Sequence[str] | None = None,
 ) -> ExperimentResult:
     """Fit every source on the test fold's training rows, evaluate sources and blends, compare with the baseline.
 
@@ -208,9 +208,10 @@ def run_experiment(
     ``"user_segment"`` or catalog column names) every scorecard and the comparison are also
     broken down by those segments (:func:`xrec.evaluate.segments.segment_labels`):
     ``extras["segments"]`` holds the per-segment scorecard table, the comparison its
-    ``segments`` table. Without ``by``, the spec's ``evaluate.by`` list is used.
+    ``segments`` table. ``by=None`` takes the spec's ``evaluate.by`` list; ``()`` breaks
+    nothing down.
     """
-    by = tuple(by) if by else tuple(spec.evaluate.get("by", ()))
+    by = tuple(spec.evaluate.get("by", ()) if by is None else by)
     with spec_cluster(spec) as client:
         return _run_experiment(spec, progress=progress, dataset=dataset, only=only, by=by, client=client)
 
@@ -444,7 +445,7 @@ def export_spec(
             raise ConfigError(f"--bundle: folder {str(bundle.parent)!r} does not exist")
         if bundle.exists() and not bundle.is_dir():
             raise ConfigError(f"--bundle: {str(bundle)!r} exists and is not a folder")
-    result = run_experiment(spec, progress=progress)
+    result = run_experiment(spec, progress=progress, by=())  # the blend file keeps no segment tables
     name, blend = _scorer_for(result, scorer)
     evidence = evidence_summary(result, name)
     options = {
@@ -462,23 +463,29 @@ def export_spec(
 
 
 def compare_specs(
-    baseline: ExperimentSpec, candidate: ExperimentSpec, *, progress: bool = False, by: Sequence[str] = (), overlap: int | None = None
+    baseline: ExperimentSpec,
+    candidate: ExperimentSpec,
+    *,
+    progress: bool = False,
+    by: Sequence[str] | None = None,
+    overlap: int | None = None,
 ):
     """Paired comparison of the primary scorers of two specs; both must use the same data and split.
 
     ``by`` breaks the comparison down by segments too, as in :func:`run_experiment`
-    (default: the baseline spec's ``evaluate.by``).
+    (``None``: the baseline spec's ``evaluate.by``).
     With ``overlap`` (default: the baseline spec's ``evaluate.overlap``) the comparison's
     ``top_lists`` also holds the candidate's top-K overlap with the baseline per user.
     """
     from xrec.evaluate import compare
     from xrec.evaluate.segments import segment_labels
 
-    # only each spec's primary scorer (and the sources it blends) is fitted and evaluated
-    base = run_experiment(baseline, progress=progress, only=baseline.primary)
+    # only each spec's primary scorer (and the sources it blends) is fitted and evaluated;
+    # segments are broken down once, below, for the comparison
+    base = run_experiment(baseline, progress=progress, only=baseline.primary, by=())
     # Relative paths are compared resolved: the same "items.csv" next to two specs may be two files.
     same_data = baseline.data.same_data(candidate.data)
-    cand = run_experiment(candidate, progress=progress, dataset=base.dataset if same_data else None, only=candidate.primary)
+    cand = run_experiment(candidate, progress=progress, dataset=base.dataset if same_data else None, only=candidate.primary, by=())
     if base.dataset.fingerprint() != cand.dataset.fingerprint():
         raise ConfigError("the two specs read different data (dataset fingerprints differ); a paired comparison needs the same data")
     if base.split.settings != cand.split.settings:
@@ -490,7 +497,7 @@ def compare_specs(
     if b_card.name == c_card.name:
         c_card.name = f"{c_card.name} ({candidate.name})"
         b_card.name = f"{b_card.name} ({baseline.name})"
-    by = tuple(by) if by else tuple(baseline.evaluate.get("by", ()))
+    by = tuple(baseline.evaluate.get("by", ()) if by is None else by)
     labels = [segment_labels(base.split.test, name) for name in dict.fromkeys(by)]
     comparison = compare(b_card, c_card, seed=int(baseline.evaluate.get("seed", 0)), by=labels or None)
     k = overlap if overlap is not None else int(baseline.evaluate.get("overlap", 0))
