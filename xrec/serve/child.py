@@ -7,6 +7,7 @@ import socket
 import subprocess
 import sys
 import time
+import urllib.request
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -33,17 +34,17 @@ class ChildService:
 
 
 def _wait_healthy(process: subprocess.Popen, url: str, timeout: float) -> None:
-    import httpx
-
+    # The standard library's client: httpx is only a test dependency.
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
         if process.poll() is not None:
             err = process.stderr.read().decode(errors="replace") if process.stderr else ""
             raise XrecError(f"xrec serve exited with code {process.returncode} before answering: {err.strip()[-2000:]}")
         try:
-            if httpx.get(f"{url}/health", timeout=1).status_code == 200:
-                return
-        except httpx.TransportError:
+            with urllib.request.urlopen(f"{url}/health", timeout=1) as answer:
+                if answer.status == 200:
+                    return
+        except OSError:  # refused while starting (URLError is an OSError), or a timeout
             time.sleep(0.1)
     raise XrecError(f"xrec serve did not answer {url}/health within {timeout:g} s")
 
