@@ -14,11 +14,11 @@ import pandas as pd
 import pytest
 
 from xrec.blend import Blend
+from xrec.bundle import top_k
 from xrec.data.demo import load_demo_shop
 from xrec.errors import ConfigError, DataError
 from xrec.evaluate import evaluate
 from xrec.evaluate.scorecard import Scorecard
-from xrec.notebook._gallery_rank import top_k
 from xrec.notebook.gallery import Gallery, choose_report_users, report_gallery
 from xrec.sources import ALSSource, AttributeSource, PopularitySource
 from xrec.split import split_dataset

@@ -8,9 +8,10 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from xrec.bundle import top_k
 from xrec.errors import ConfigError, DataError
 from xrec.fold import Fold
-from xrec.notebook._gallery_rank import RowCache, top_k, user_heldout
+from xrec.notebook._gallery_rank import RowCache, user_heldout
 
 __all__ = ["PICKS", "REPORT_RULE", "choose_report_users", "find_user", "pick_by_outcome", "segment_groups"]
 

@@ -17,32 +17,14 @@ from typing import Any
 
 import numpy as np
 
+from xrec.bundle import top_k
 from xrec.errors import ConfigError
 from xrec.fold import Fold
 
 #: Float32 values the row cache and one scoring batch may hold (128 MiB).
 CELL_BUDGET = 1 << 25
 
-__all__ = ["CELL_BUDGET", "Histories", "Ranked", "RowCache", "UserView", "top_k", "user_heldout", "user_view"]
-
-
-def top_k(scores: np.ndarray, candidates: np.ndarray, k: int) -> np.ndarray:
-    """Positions of the ``k`` best candidates, best first; ties go to the lower item position.
-
-    Selects with :func:`numpy.argpartition` and sorts only the selection, so a large
-    catalog is not sorted in full. Fewer than ``k`` positions when there are fewer candidates.
-    """
-    keyed = np.where(candidates, scores.astype(np.float64), -np.inf)
-    n_cand = int(candidates.sum())
-    k = min(int(k), n_cand)
-    if k <= 0:
-        return np.zeros(0, dtype=np.int64)
-    part = np.argpartition(-keyed, k - 1)[:k]
-    threshold = keyed[part].min()
-    above = np.flatnonzero(keyed > threshold)
-    tied = np.flatnonzero(keyed == threshold)[: k - len(above)]
-    chosen = np.concatenate([above, tied])
-    return chosen[np.lexsort((chosen, -keyed[chosen]))].astype(np.int64)
+__all__ = ["CELL_BUDGET", "Histories", "Ranked", "RowCache", "UserView", "user_heldout", "user_view"]
 
 
 class RowCache:
